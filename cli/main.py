@@ -1,0 +1,112 @@
+"""Root ``envelope`` command: logging, --debug, lazy sub-commands, errors to one line + exit 2."""
+
+from __future__ import annotations
+
+import importlib
+import logging
+import click
+
+from envelope import __version__
+from envelope.errors import EnvelopeError
+
+# command name -> "module:function"; modules are imported only when the command runs,
+# so `envelope --help` stays instant (no xarray/matplotlib import).
+COMMANDS = {
+    "info": "envelope.cli.info:info",
+    "fit": "envelope.cli.fit:fit",
+    "inspect": "envelope.cli.inspect:inspect",
+    "project": "envelope.cli.project:project",
+    "change": "envelope.cli.change:change",
+    "reach": "envelope.cli.reach:reach",
+    "bioclim": "envelope.cli.bioclim:bioclim",
+    "delta": "envelope.cli.delta:delta",
+    "demo": "envelope.cli.demo:demo",
+    "records": "envelope.cli.records:records",
+}
+
+SUMMARIES = {
+    "info": "Describe a grid: CRS, shape, variables, nodata share, true area.",
+    "fit": "Fit and cross-validate a presence/background model.",
+    "inspect": "Print what a model file holds.",
+    "project": "Project a model onto climate grids, with MESS.",
+    "change": "Classify and measure range change between two suitability maps.",
+    "reach": "Habitat-gated dispersal through the transient climate.",
+    "bioclim": "Compute the 19 bioclimatic variables from monthly grids.",
+    "delta": "Build scenario grids by the delta (change-factor) method.",
+    "demo": "Run the bundled fictional study.",
+    "records": "Clean occurrence records against a grid and report drops.",
+}
+
+
+class LazyGroup(click.Group):
+    """A group whose sub-commands are imported on first use."""
+
+    def list_commands(self, ctx):
+        return [name for name, target in COMMANDS.items() if _module_exists(target)]
+
+    def get_command(self, ctx, name):
+        target = COMMANDS.get(name)
+        if target is None or not _module_exists(target):
+            return None
+        module_name, attr = target.split(":")
+        return getattr(importlib.import_module(module_name), attr)
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except EnvelopeError as exc:
+            if (ctx.obj or {}).get("debug"):
+                raise
+            click.echo(f"Error: {_one_line(exc)}", err=True)
+            ctx.exit(2)
+
+    def format_commands(self, ctx, formatter):
+        rows = [(name, SUMMARIES.get(name, "")) for name in self.list_commands(ctx)]
+        if rows:
+            with formatter.section("Commands"):
+                formatter.write_dl(rows)
+
+
+def _module_exists(target: str) -> bool:
+    import importlib.util
+
+    return importlib.util.find_spec(target.split(":")[0]) is not None
+
+
+@click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, "--version", prog_name="envelope")
+@click.option("-v", "--verbose", count=True, help="More log output (-v info, -vv debug).")
+@click.option("--debug", is_flag=True, help="Show full tracebacks on errors.")
+@click.pass_context
+def cli(ctx, verbose, debug):
+    """Where will the climate suit a species, and which of those places can it reach?
+
+    envelope fits presence/background species-distribution models to gridded climate,
+    evaluates them with spatially blocked cross-validation, projects them onto scenario
+    grids with novel-climate warnings, measures range change in true areas, and steps
+    habitat-gated dispersal through the transient climate.
+
+    \b
+    Examples:
+      $ envelope info sample_grids/demo/baseline.tif
+      $ envelope fit --presences records.csv --climate baseline.tif --out model.envm
+      $ envelope --debug info broken.nc
+    """
+    level = logging.WARNING - 10 * verbose
+    logging.basicConfig(level=max(level, logging.DEBUG), format="%(levelname)s %(name)s: %(message)s")
+    ctx.ensure_object(dict)
+    ctx.obj["debug"] = debug
+    ctx.obj["verbose"] = verbose
+
+
+def _one_line(exc: Exception) -> str:
+    return " ".join(str(exc).split())
+
+
+def main(argv=None):
+    """Console entry point (``envelope``)."""
+    cli.main(args=argv, prog_name="envelope")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

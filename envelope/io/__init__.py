@@ -1,0 +1,1 @@
+"""I/O layer: all knowledge of file formats lives here."""

@@ -1,0 +1,1 @@
+"""Pure NumPy/SciPy kernels: no I/O, no xarray."""

@@ -1,0 +1,1 @@
+"""Presence/background estimators (scikit-learn compatible, 2-D tables only)."""
