@@ -1,0 +1,45 @@
+"""The root command: version, help with examples, error handling contract."""
+
+import click
+from click.testing import CliRunner
+
+import envelope
+from envelope.cli import main as main_mod
+from envelope.cli.main import cli
+from envelope.errors import InputError
+
+
+def test_version():
+    result = CliRunner().invoke(cli, ["--version"])
+    assert result.exit_code == 0
+    assert envelope.__version__ in result.output
+
+
+def test_help_has_examples():
+    result = CliRunner().invoke(cli, ["--help"])
+    assert result.exit_code == 0
+    assert "$ envelope" in result.output
+
+
+def test_library_error_is_one_line_and_exit_2(monkeypatch):
+    @click.command()
+    def boom():
+        raise InputError("grid.tif: band 3 has no description\n(expected a variable name)")
+
+    monkeypatch.setitem(main_mod.COMMANDS, "boom", "tests_fake:boom")
+    monkeypatch.setattr(main_mod, "_module_exists", lambda target: True)
+    real_import = main_mod.importlib.import_module
+    monkeypatch.setattr(main_mod.importlib, "import_module",
+                        lambda name: type("M", (), {"boom": boom}) if name == "tests_fake" else real_import(name))
+    result = CliRunner().invoke(cli, ["boom"])
+    assert result.exit_code == 2
+    assert result.output.strip() == "Error: grid.tif: band 3 has no description (expected a variable name)"
+
+    debug = CliRunner().invoke(cli, ["--debug", "boom"])
+    assert isinstance(debug.exception, InputError)  # --debug lets the traceback through
+
+
+def test_unknown_command_is_usage_error():
+    result = CliRunner().invoke(cli, ["no-such-command"])
+    assert result.exit_code == 2
+    assert "No such command" in result.output
