@@ -1,1 +1,97 @@
-"""Presence/background estimators (scikit-learn compatible, 2-D tables only)."""
+"""Presence/background estimators (scikit-learn compatible, 2-D tables only) and their registry."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from envelope.errors import InputError
+from envelope.models.ensemble import SkillWeightedEnsemble
+from envelope.models.percentile import PercentileEnvelope
+from envelope.models.pointprocess import PointProcessModel
+from envelope.models.trees import BoostedTrees, DownsampledForest
+
+__all__ = [
+    "METHODS", "BoostedTrees", "DownsampledForest", "PercentileEnvelope", "PointProcessModel",
+    "SkillWeightedEnsemble", "make_estimator", "response_curves",
+]
+
+# method name (as given on the command line / in a study file) -> estimator class
+METHODS = {
+    "pointprocess": PointProcessModel,
+    "envelope": PercentileEnvelope,
+    "brt": BoostedTrees,
+    "forest": DownsampledForest,
+    "ensemble": SkillWeightedEnsemble,
+}
+
+
+def make_estimator(method: str, **params):
+    """A new, unfitted estimator for ``method`` (a key of :data:`METHODS`) with ``params``.
+
+    Unknown methods or parameters raise InputError naming them and what is allowed.
+
+    Examples
+    --------
+    >>> make_estimator("pointprocess", C=5.0)
+    PointProcessModel(C=5.0)
+    """
+    if method not in METHODS:
+        raise InputError(f"method: got {method!r}; expected one of {', '.join(METHODS)}")
+    cls = METHODS[method]
+    allowed = cls().get_params(deep=False)
+    unknown = [p for p in params if p not in allowed]
+    if unknown:
+        raise InputError(f"method {method!r}: unknown parameter {unknown[0]!r} "
+                         f"(expected one of {', '.join(allowed) or 'none'})")
+    return cls(**params)
+
+
+def response_curves(estimator, X_reference, feature_names, n_points: int = 50) -> dict:
+    """Suitability along each variable with the others held at their median.
+
+    Each variable is varied over ``n_points`` evenly spaced values between its minimum
+    and maximum in ``X_reference`` while every other variable is fixed at its median in
+    ``X_reference`` (the usual one-at-a-time response curve; Elith et al. 2005 call these
+    "evaluation strips").
+
+    Parameters
+    ----------
+    estimator : fitted estimator with ``predict_proba``
+    X_reference : array-like of shape (n_samples, n_variables)
+        E.g. the background sample; NaN rows are ignored.
+    feature_names : sequence of str, length n_variables
+    n_points : int, default=50
+
+    Returns
+    -------
+    dict of str -> dict with "value" (n_points,) and "suitability" (n_points,)
+
+    References
+    ----------
+    Elith, J., Ferrier, S., Huettmann, F. & Leathwick, J. (2005) The evaluation strip: a
+    new and robust method for plotting predicted responses from species distribution
+    models. Ecological Modelling 186: 280–289.
+    """
+    X = np.asarray(X_reference, dtype=np.float64)
+    names = [str(n) for n in feature_names]
+    if X.ndim != 2 or X.shape[1] != len(names):
+        raise InputError(f"X_reference: got shape {X.shape}; expected (n, {len(names)}) for "
+                         f"variables {', '.join(names)}")
+    X = X[np.isfinite(X).all(axis=1)]
+    if X.shape[0] == 0:
+        raise InputError("X_reference: every row holds NaN; expected some complete rows")
+    if n_points < 2:
+        raise InputError(f"n_points: got {n_points}; expected at least 2")
+    median = np.median(X, axis=0)
+    grids = [np.linspace(X[:, j].min(), X[:, j].max(), n_points) for j in range(len(names))]
+    # one call for all curves: row block j varies variable j
+    rows = np.tile(median, (len(names) * n_points, 1))
+    for j, g in enumerate(grids):
+        rows[j * n_points:(j + 1) * n_points, j] = g
+    if hasattr(estimator, "feature_names_in_"):
+        import pandas as pd
+
+        rows = pd.DataFrame(rows, columns=names)
+    s = estimator.predict_proba(rows)[:, 1]
+    return {n: {"value": grids[j], "suitability": s[j * n_points:(j + 1) * n_points]}
+            for j, n in enumerate(names)}

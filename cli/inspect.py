@@ -1,0 +1,80 @@
+"""`envelope inspect`: print what a model file holds, without loading the estimator."""
+
+from __future__ import annotations
+
+import json
+
+import click
+
+from envelope.cli.options import json_opt
+
+
+@click.command()
+@click.argument("model_file", type=click.Path(dir_okay=False))
+@json_opt
+def inspect(model_file, as_json):
+    """Print what a model file holds.
+
+    Shows the method, the variables with their units and training range, the threshold
+    and its rule, the cross-validation summary and the provenance (input checksums,
+    seed, software versions). Only the JSON manifest is read, so inspecting a file
+    never runs code from it.
+
+    \b
+    Examples:
+      $ envelope inspect model.envm
+      $ envelope inspect model.envm --json > model.json
+    """
+    from envelope.io.modelfile import model_summary, read_manifest
+
+    summary = model_summary(read_manifest(model_file))
+    if as_json:
+        click.echo(json.dumps(summary, indent=2, default=str))
+        return
+    for line in _text_lines(model_file, summary):
+        click.echo(line)
+
+
+def _fmt(value) -> str:
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    return "-" if value is None else str(value)
+
+
+def _text_lines(path, s: dict):
+    yield f"Model file   {path}"
+    yield f"Format       {s['file_format']}, created {_fmt(s['created'])}"
+    yield f"Method       {s['method']} ({s['estimator']})"
+    params = ", ".join(f"{k}={v}" for k, v in s["estimator_params"].items())
+    if params:
+        yield f"Parameters   {params}"
+    yield "Variables"
+    for v in s["variables"]:
+        units = f" [{v['units']}]" if v.get("units") else ""
+        rng = f"  training range {_fmt(v.get('min'))} .. {_fmt(v.get('max'))}" if "min" in v or "max" in v else ""
+        yield f"  {v['name']}{units}{rng}"
+    t = s["threshold"]
+    if isinstance(t, dict):
+        yield f"Threshold    {_fmt(t.get('value'))} (rule: {t.get('rule', '-')})"
+    else:
+        yield f"Threshold    {_fmt(t)}"
+    cv = s["cv"]
+    if isinstance(cv, dict):
+        head = ", ".join(f"{k} {cv[k]}" for k in ("scheme", "n_folds") if k in cv)
+        yield f"Cross-validation  {head or '-'}"
+        for name, m in (cv.get("metrics") or {}).items():
+            if isinstance(m, dict):
+                yield f"  {name:<10} {_fmt(m.get('mean'))} ± {_fmt(m.get('sd'))}"
+            else:
+                yield f"  {name:<10} {_fmt(m)}"
+    else:
+        yield "Cross-validation  -"
+    prov = s["provenance"]
+    yield "Provenance"
+    if isinstance(prov, dict):
+        for name, digest in (prov.get("inputs") or {}).items():
+            yield f"  {name}  sha256 {str(digest)[:16]}…"
+        for k, v in prov.items():
+            if k != "inputs":
+                yield f"  {k}: {_fmt(v)}"
+    yield "  software: " + ", ".join(f"{k} {v}" for k, v in s["software"].items())

@@ -1,0 +1,49 @@
+"""`envelope inspect`: text and JSON output, bad files."""
+
+import json
+
+import numpy as np
+from click.testing import CliRunner
+
+from envelope.cli.main import cli
+from envelope.io.modelfile import save_model
+from envelope.models import PercentileEnvelope
+
+META = {"variables": [{"name": "bio1", "units": "degC", "min": -2.0, "max": 3.0}],
+        "threshold": {"value": 0.42, "rule": "max_sss"},
+        "cv": {"scheme": "spatial blocks", "n_folds": 5, "metrics": {"auc": {"mean": 0.81, "sd": 0.03}}},
+        "provenance": {"inputs": {"records.csv": "ab" * 32}, "seed": 7}}
+
+
+def _model(tmp_path):
+    X = np.r_[np.linspace(0, 1, 20), np.linspace(-1, 2, 50)][:, None]
+    y = np.r_[np.ones(20), np.zeros(50)]
+    return save_model(tmp_path / "m.envm", PercentileEnvelope().fit(X, y), META)
+
+
+def test_text_output(tmp_path):
+    # Common practice, no source: the summary names method, variables, threshold, CV, provenance
+    result = CliRunner().invoke(cli, ["inspect", str(_model(tmp_path))])
+    assert result.exit_code == 0, result.output
+    for phrase in ["envelope (envelope.models.percentile.PercentileEnvelope)", "bio1 [degC]",
+                   "training range -2 .. 3", "0.42 (rule: max_sss)", "auc", "0.81 ± 0.03",
+                   "records.csv", "seed: 7"]:
+        assert phrase in result.output
+
+
+def test_json_output_keys(tmp_path):
+    # Common practice, no source
+    result = CliRunner().invoke(cli, ["inspect", str(_model(tmp_path)), "--json"])
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.output)
+    assert {"method", "variables", "threshold", "cv", "provenance", "software", "file_format"} <= set(data)
+    assert data["method"] == "envelope" and data["threshold"]["rule"] == "max_sss"
+
+
+def test_bad_file_exit_2(tmp_path):
+    # Common practice, no source: EnvelopeError -> one line on stderr, exit status 2
+    bad = tmp_path / "bad.envm"
+    bad.write_text("not a model")
+    result = CliRunner().invoke(cli, ["inspect", str(bad)])
+    assert result.exit_code == 2
+    assert "bad.envm: not an envelope model file" in result.output

@@ -1,0 +1,158 @@
+"""Model file: round trip, and refusal of tampered, foreign, pickled and untrusted content."""
+
+import hashlib
+import json
+import pickle
+import zipfile
+
+import numpy as np
+import pytest
+import skops.io as sio
+
+from envelope.errors import InputError, ModelError, OutputExistsError
+from envelope.io.modelfile import MANIFEST_NAME, PAYLOAD_NAME, load_model, read_manifest, save_model
+from envelope.models import (BoostedTrees, DownsampledForest, PercentileEnvelope,
+                             PointProcessModel, SkillWeightedEnsemble)
+
+
+def _data():
+    rng = np.random.default_rng(0)
+    X = np.r_[rng.normal(1, 0.5, (60, 2)), rng.normal(0, 1, (400, 2))]
+    return X, np.r_[np.ones(60), np.zeros(400)]
+
+
+META = {"variables": [{"name": "bio1", "units": "degC", "min": -2.1, "max": 3.0},
+                      {"name": "bio12", "units": "mm", "min": -3.0, "max": 2.5}],
+        "threshold": {"value": 0.42, "rule": "max_sss"},
+        "cv": {"scheme": "spatial blocks", "n_folds": 5, "metrics": {"auc": {"mean": 0.81, "sd": 0.03}}},
+        "provenance": {"inputs": {"records.csv": "0" * 64}, "seed": 7}}
+
+
+@pytest.mark.parametrize("estimator", [
+    PointProcessModel(random_state=0), PercentileEnvelope(), BoostedTrees(max_iter=20, random_state=0),
+    DownsampledForest(n_estimators=5, random_state=0),
+    SkillWeightedEnsemble(members=[("e", PercentileEnvelope()), ("p", PointProcessModel(random_state=0))],
+                          weights_from={"e": 0.8, "p": 0.9}),
+])
+def test_round_trip_identical_predictions(tmp_path, estimator):
+    # Common practice, no source: what is saved predicts exactly the same after loading
+    X, y = _data()
+    estimator.fit(X, y)
+    path = save_model(tmp_path / "m.envm", estimator, META)
+    loaded, meta = load_model(path)
+    np.testing.assert_array_equal(loaded.predict_proba(X), estimator.predict_proba(X))
+    assert meta == META
+    manifest = read_manifest(path)
+    assert manifest["format"] == "envelope-model" and manifest["format_version"] == 1
+
+
+def test_refuses_overwrite_and_bad_metadata(tmp_path):
+    # Common practice, no source: no silent overwrite; metadata must match the estimator
+    X, y = _data()
+    m = PercentileEnvelope().fit(X, y)
+    path = save_model(tmp_path / "m.envm", m, META)
+    with pytest.raises(OutputExistsError, match="--overwrite"):
+        save_model(path, m, META)
+    save_model(path, m, META, overwrite=True)
+    with pytest.raises(InputError, match="2 variables"):
+        save_model(tmp_path / "x.envm", PercentileEnvelope().fit(X[:, :1], y), META)
+    assert not (tmp_path / "x.envm").exists()
+
+
+def _rewrite(path, out, manifest=None, payload=None):
+    with zipfile.ZipFile(path) as zf:
+        man = json.loads(zf.read(MANIFEST_NAME))
+        pay = zf.read(PAYLOAD_NAME)
+    with zipfile.ZipFile(out, "w") as zf:
+        zf.writestr(MANIFEST_NAME, json.dumps(manifest if manifest is not None else man))
+        zf.writestr(PAYLOAD_NAME, payload if payload is not None else pay)
+    return man, pay
+
+
+@pytest.fixture
+def saved(tmp_path):
+    X, y = _data()
+    return save_model(tmp_path / "m.envm", PointProcessModel(random_state=0).fit(X, y), META)
+
+
+def test_flipped_byte_refused(saved, tmp_path):
+    # Common practice, no source: SHA-256 of the payload must match the manifest
+    man, pay = _rewrite(saved, tmp_path / "copy.envm")
+    tampered = bytearray(pay)
+    tampered[len(tampered) // 2] ^= 0xFF
+    _rewrite(saved, tmp_path / "t.envm", payload=bytes(tampered))
+    with pytest.raises(ModelError, match="t.envm: estimator checksum does not match"):
+        load_model(tmp_path / "t.envm")
+    # a flipped byte in the raw container is refused too (zip CRC or checksum)
+    raw = bytearray(saved.read_bytes())
+    raw[len(raw) // 2] ^= 0xFF
+    (tmp_path / "raw.envm").write_bytes(bytes(raw))
+    with pytest.raises(ModelError, match="raw.envm"):
+        load_model(tmp_path / "raw.envm")
+
+
+def test_pickle_inside_zip_refused(saved, tmp_path):
+    # Common practice, no source: a pickle is never unpickled, even with a matching checksum
+    blob = pickle.dumps(PercentileEnvelope())
+    man, _ = _rewrite(saved, tmp_path / "copy.envm")
+    man["payload"]["sha256"] = hashlib.sha256(blob).hexdigest()
+    _rewrite(saved, tmp_path / "p.envm", manifest=man, payload=blob)
+    with pytest.raises(ModelError, match="p.envm: estimator payload is not a skops file"):
+        load_model(tmp_path / "p.envm")
+    with zipfile.ZipFile(tmp_path / "only_pickle.envm", "w") as zf:
+        zf.writestr("model.pkl", blob)
+    with pytest.raises(ModelError, match="only_pickle.envm: not an envelope model file"):
+        load_model(tmp_path / "only_pickle.envm")
+
+
+def test_random_and_foreign_files_refused(tmp_path):
+    # Common practice, no source
+    (tmp_path / "r.envm").write_bytes(np.random.default_rng(0).bytes(500))
+    with pytest.raises(ModelError, match="r.envm: not an envelope model file"):
+        read_manifest(tmp_path / "r.envm")
+    with zipfile.ZipFile(tmp_path / "f.envm", "w") as zf:
+        zf.writestr(MANIFEST_NAME, json.dumps({"format": "something-else", "format_version": 1}))
+    with pytest.raises(ModelError, match="format 'something-else'"):
+        load_model(tmp_path / "f.envm")
+    with pytest.raises(InputError, match="not found"):
+        load_model(tmp_path / "missing.envm")
+
+
+def test_newer_format_version_refused(saved, tmp_path):
+    # Common practice, no source
+    man, _ = _rewrite(saved, tmp_path / "copy.envm")
+    man["format_version"] = 99
+    _rewrite(saved, tmp_path / "v.envm", manifest=man)
+    with pytest.raises(ModelError, match="newer envelope"):
+        read_manifest(tmp_path / "v.envm")
+
+
+class Intruder:
+    """A class skops does not know: stands for any foreign object in a payload."""
+
+    def __init__(self):
+        self.payload = [1, 2, 3]
+
+
+def test_untrusted_type_refused(saved, tmp_path):
+    # Source: skops.io trust model (get_untrusted_types); a foreign class must not load
+    blob = sio.dumps(Intruder())
+    assert sio.get_untrusted_types(data=blob)  # the premise of this test
+    man, _ = _rewrite(saved, tmp_path / "copy.envm")
+    man["payload"]["sha256"] = hashlib.sha256(blob).hexdigest()
+    _rewrite(saved, tmp_path / "u.envm", manifest=man, payload=blob)
+    with pytest.raises(ModelError, match="u.envm: refusing to load untrusted type"):
+        load_model(tmp_path / "u.envm")
+
+
+def test_untrusted_callable_refused_at_save(tmp_path):
+    # Common practice, no source: what cannot be loaded safely is not written
+    X, y = _data()
+
+    def my_score(est, X_, y_, groups):
+        return 0.9
+
+    ens = SkillWeightedEnsemble(members=[("e", PercentileEnvelope())], score_func=my_score).fit(X, y)
+    with pytest.raises(ModelError, match="cannot store type"):
+        save_model(tmp_path / "e.envm", ens, META)
+    assert not (tmp_path / "e.envm").exists()

@@ -1,0 +1,129 @@
+"""PointProcessModel: Fithian & Hastie (2013) convergence to the Poisson point process, a simulated niche."""
+
+import time
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from sklearn.metrics import roc_auc_score
+
+from envelope.errors import InputError
+from envelope.models import PointProcessModel, response_curves
+
+# Source: REFERENCES.md item 9 (Fithian & Hastie 2013; values COMPUTED with statsmodels)
+PRESENCES = np.array([0.10, 0.35, 0.50, 0.62, 0.70, 0.78, 0.85, 0.90, 0.93, 0.97])
+QUADRATURE = (np.arange(1000) + 0.5) / 1000
+BETA_IPP = 2.1990261
+ALPHA_IPP = 1.0091318
+
+
+def _linear_ipp_fit(W):
+    """Unpenalised, raw-scale linear-feature fit; total background weight W * n."""
+    X = np.r_[PRESENCES, QUADRATURE][:, None]
+    y = np.r_[np.ones(10), np.zeros(1000)]
+    return PointProcessModel(classes=("linear",), standardize=False, C=np.inf,
+                             background_weight=W * 10 / 1000).fit(X, y)
+
+
+def test_berman_turner_reference_matches_item_9():
+    # Source: REFERENCES.md item 9, Berman–Turner Poisson GLM via statsmodels (1.0091319, 2.1990259)
+    z = np.r_[np.ones(10), np.zeros(1000)]
+    w = np.r_[np.full(10, 1e-8), np.full(1000, 1e-3)]
+    x = np.r_[PRESENCES, QUADRATURE]
+    glm = sm.GLM(z / w, sm.add_constant(x), family=sm.families.Poisson(), var_weights=w).fit(tol=1e-12)
+    alpha, beta = glm.params
+    assert abs(beta - BETA_IPP) < 1e-5 and abs(alpha - ALPHA_IPP) < 1e-5
+    # the estimator at W = 1e6 agrees with this GLM
+    m = _linear_ipp_fit(1e6)
+    assert abs(m.coef_[0] - beta) < 1e-5
+    assert abs(m.intercept_ + np.log(1e6 * 10) - alpha) < 1e-5
+
+
+def test_weighted_logistic_converges_to_ipp():
+    # Source: REFERENCES.md item 9 table (W, beta) and Fithian & Hastie (2013)
+    table = {1: (2.128166, 1.050479), 10: (2.188720, 1.015121), 100: (2.197978, 1.009740),
+             1e3: (2.198921, 1.009193), 1e4: (2.199016, 1.009138), 1e6: (2.199026, 1.009132)}
+    gaps = []
+    for W, (beta, alpha_shifted) in table.items():
+        m = _linear_ipp_fit(W)
+        assert m.coef_[0] == pytest.approx(beta, abs=2e-6)
+        assert m.intercept_ + np.log(W * 10) == pytest.approx(alpha_shifted, abs=2e-6)
+        assert m.total_background_weight_ == pytest.approx(W * 10)
+        gaps.append(abs(m.coef_[0] - BETA_IPP))
+    assert all(a > b for a, b in zip(gaps, gaps[1:]))  # monotone towards the IPP slope
+    assert gaps[-1] < 1e-5
+
+
+def test_moment_matching_and_log_intensity():
+    # Source: REFERENCES.md item 9 corollary (i): fitted Gibbs density reproduces the presence mean 0.67
+    m = _linear_ipp_fit(1e6)
+    lam = np.exp(m.log_intensity(QUADRATURE[:, None]))
+    assert np.sum(lam * QUADRATURE) / np.sum(lam) == pytest.approx(0.67, abs=1e-6)
+    # Analytic: with quadrature weight 1/1000 the IPP intensity integrates to n = 10
+    assert np.sum(lam) / 1000 == pytest.approx(10.0, rel=1e-5)
+    # Analytic: eta = log(lambda / n) under the documented offset, so exp(eta) averages 1
+    eta = m.decision_function(QUADRATURE[:, None]) + np.log(np.log(2.0))
+    assert np.mean(np.exp(eta)) == pytest.approx(1.0, rel=1e-9)
+
+
+def _virtual_species(seed=0, n_cells=20000, n_presence=300, n_background=5000):
+    # Analytic: known simulated niche, Gaussian response in two variables
+    rng = np.random.default_rng(seed)
+    cells = rng.uniform(-3, 3, size=(n_cells, 2))
+    p_true = np.exp(-((cells[:, 0] - 0.8) ** 2) / 0.8 - ((cells[:, 1] + 0.5) ** 2) / 1.5)
+    occupied = rng.random(n_cells) < p_true
+    presences = cells[rng.choice(np.flatnonzero(occupied), n_presence, replace=False)]
+    background = cells[rng.choice(n_cells, n_background, replace=False)]
+    X = np.r_[presences, background]
+    y = np.r_[np.ones(n_presence), np.zeros(n_background)]
+    return X, y, cells, occupied
+
+
+def test_virtual_species_auc():
+    # Analytic: known simulated niche; AUC of suitability against true presence/absence
+    X, y, cells, occupied = _virtual_species()
+    m = PointProcessModel(random_state=0).fit(X, y)
+    assert roc_auc_score(occupied, m.predict_proba(cells)[:, 1]) >= 0.85
+    s = m.predict_proba(cells)[:, 1]
+    assert s.min() >= 0 and s.max() <= 1
+    # response curve peaks near the true optimum 0.8 of variable a
+    curves = response_curves(m, X[y == 0], ["a", "b"], n_points=61)
+    assert abs(curves["a"]["value"][np.argmax(curves["a"]["suitability"])] - 0.8) < 0.5
+
+
+def test_cv_choice_of_C_with_groups():
+    # Common practice, no source: C="cv" picks the grid value with the best held-out AUC
+    X, y, _, _ = _virtual_species(n_presence=150, n_background=1500)
+    groups = (X[:, 0] > 0).astype(int) * 2 + (X[:, 1] > 0).astype(int)
+    m = PointProcessModel(C="cv", Cs=[0.5, 5.0, 50.0], random_state=0).fit(X, y, groups=groups)
+    res = m.cv_results_
+    assert m.C_ == res["C"][int(np.argmax(res["mean_auc"]))]
+    assert len(res["fold_auc"]) == 4  # one row per spatial group with both kinds of row
+    # Analytic: at C = 0.5 the L1 penalty removes every slope, so the ranking is random (AUC 0.5)
+    assert res["mean_auc"][0] == pytest.approx(0.5)
+    assert max(res["mean_auc"]) > 0.8
+
+
+def test_elasticnet_and_errors():
+    # Common practice, no source: parameter and input errors name the key
+    X, y, _, _ = _virtual_species(n_presence=60, n_background=600)
+    m = PointProcessModel(penalty="elasticnet", l1_ratio=0.5, random_state=0).fit(X, y)
+    assert np.isfinite(m.coef_).all()
+    with pytest.raises(InputError, match="penalty"):
+        PointProcessModel(penalty="l3").fit(X, y)
+    with pytest.raises(ValueError, match="NaN"):
+        m.predict_proba(np.array([[np.nan, 0.0]]))
+    with pytest.raises(ValueError, match="2 features"):
+        m.predict_proba(np.zeros((1, 3)))
+    with pytest.raises(InputError, match="only one class"):
+        PointProcessModel().fit(X[y == 1], y[y == 1])
+
+
+def test_fit_speed_l1():
+    # Common practice, no source: 1 000 presences x 10 000 background x 8 variables in seconds
+    rng = np.random.default_rng(0)
+    P = rng.normal(size=(1000, 8)) * 0.6 + 0.5
+    B = rng.normal(size=(10000, 8))
+    t = time.perf_counter()
+    PointProcessModel(random_state=0).fit(np.r_[P, B], np.r_[np.ones(1000), np.zeros(10000)])
+    assert time.perf_counter() - t < 20
