@@ -1,0 +1,202 @@
+"""Multivariate environmental similarity surface (MESS) and most-dissimilar variable against a training reference."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from envelope.errors import InputError
+
+__all__ = ["PERCENTILE_LEVELS", "MessReference", "reference_from_training", "mess"]
+
+#: Percentile levels kept per variable for the model file's description of the training climate.
+PERCENTILE_LEVELS = (0.0, 1.0, 5.0, 10.0, 25.0, 50.0, 75.0, 90.0, 95.0, 99.0, 100.0)
+
+#: Default cap on reference values kept per variable (see :func:`reference_from_training`).
+MAX_REFERENCE_VALUES = 10_000
+
+
+@dataclass(frozen=True)
+class MessReference:
+    """The training climate MESS compares against, small enough for a model file.
+
+    Attributes
+    ----------
+    values : ndarray, shape (n_kept, n_variables)
+        Each column sorted ascending: all reference values, or evenly spaced order
+        statistics of them when there were more than the cap (first and last row are the
+        exact minimum and maximum).
+    minimum, maximum : ndarray, shape (n_variables,)
+    percentile_levels : tuple of float
+    percentiles : ndarray, shape (len(percentile_levels), n_variables)
+        ``numpy.percentile`` (linear) of the full reference, for describing the model.
+    n_source : int
+        Number of complete reference rows before any thinning.
+    """
+
+    values: np.ndarray
+    minimum: np.ndarray
+    maximum: np.ndarray
+    percentile_levels: tuple = field(default=PERCENTILE_LEVELS)
+    percentiles: np.ndarray | None = None
+    n_source: int = 0
+
+    @property
+    def n_variables(self) -> int:
+        return int(self.values.shape[1])
+
+    def to_dict(self) -> dict:
+        """JSON-ready dict (lists of floats) for the model file's ``mess_reference``."""
+        return {
+            "kind": "sorted-reference",
+            "n_source": int(self.n_source),
+            "values": self.values.T.tolist(),  # one list per variable
+            "minimum": self.minimum.tolist(),
+            "maximum": self.maximum.tolist(),
+            "percentile_levels": list(self.percentile_levels),
+            "percentiles": None if self.percentiles is None else self.percentiles.T.tolist(),
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "MessReference":
+        """Inverse of :meth:`to_dict`; InputError naming the key when something is missing."""
+        try:
+            values = np.asarray(data["values"], dtype=np.float64).T
+            minimum = np.asarray(data["minimum"], dtype=np.float64)
+            maximum = np.asarray(data["maximum"], dtype=np.float64)
+        except KeyError as exc:
+            raise InputError(f"mess_reference: key {exc.args[0]!r} is missing; expected 'values', "
+                             "'minimum' and 'maximum'") from None
+        except (TypeError, ValueError):
+            raise InputError("mess_reference['values']: expected one equally long list of numbers "
+                             "per variable") from None
+        if values.ndim != 2 or values.shape[0] == 0 or minimum.shape != (values.shape[1],) \
+                or maximum.shape != minimum.shape:
+            raise InputError(f"mess_reference: values of shape {values.shape[::-1]} (variables, values) "
+                             f"and {minimum.size} minima / {maximum.size} maxima do not agree")
+        pct = data.get("percentiles")
+        return cls(values=np.sort(values, axis=0), minimum=minimum, maximum=maximum,
+                   percentile_levels=tuple(data.get("percentile_levels", PERCENTILE_LEVELS)),
+                   percentiles=None if pct is None else np.asarray(pct, dtype=np.float64).T,
+                   n_source=int(data.get("n_source", values.shape[0])))
+
+
+def reference_from_training(X_ref, *, max_values: int = MAX_REFERENCE_VALUES) -> MessReference:
+    """Summarise the training climate (background + presences) as a MESS reference.
+
+    Rows with any NaN are dropped. Design choice: MESS needs the share of reference values
+    below a point (f below), so the model file keeps the sorted reference itself rather than
+    a few quantiles. Up to ``max_values`` rows it keeps every value, so :func:`mess` is exact;
+    above that it keeps ``max_values`` evenly spaced order statistics (ranks
+    ``round(linspace(0, n − 1, max_values))``, including the exact minimum and maximum), and
+    f is then off by at most about 100/``max_values`` percentage points.
+
+    Parameters
+    ----------
+    X_ref : array_like, shape (n_records, n_variables)
+    max_values : int, default=10 000
+
+    References
+    ----------
+    Elith, J., Kearney, M. & Phillips, S. (2010) The art of modelling range-shifting species.
+    Methods Ecol. Evol. 1: 330–342 (MESS, supporting information).
+    """
+    X = np.asarray(X_ref, dtype=np.float64)
+    if X.ndim == 1:
+        X = X[:, None]
+    if X.ndim != 2:
+        raise InputError(f"X_ref: array of {X.ndim} dimensions; expected (records, variables)")
+    X = X[~np.isnan(X).any(axis=1)]
+    if X.shape[0] == 0:
+        raise InputError("X_ref: no complete rows (every record has a NaN); expected training "
+                         "climate values")
+    if not np.isfinite(X).all():
+        raise InputError("X_ref: infinite values; expected finite climate values")
+    max_values = int(max_values)
+    if max_values < 2:
+        raise InputError(f"max_values: {max_values}; expected at least 2")
+    ordered = np.sort(X, axis=0)
+    n = ordered.shape[0]
+    kept = ordered if n <= max_values else ordered[np.round(np.linspace(0, n - 1, max_values)).astype(np.intp)]
+    return MessReference(values=kept, minimum=ordered[0].copy(), maximum=ordered[-1].copy(),
+                         percentile_levels=PERCENTILE_LEVELS,
+                         percentiles=np.percentile(X, PERCENTILE_LEVELS, axis=0), n_source=n)
+
+
+def _similarity(p: np.ndarray, ref: np.ndarray, lo: float, hi: float) -> np.ndarray:
+    """Per-variable similarity S_i of Elith et al. (2010) for values ``p`` against sorted ``ref``."""
+    # f = % of reference values strictly smaller than p (side="left" counts those < p)
+    f = 100.0 * np.searchsorted(ref, p, side="left") / ref.size
+    span = hi - lo
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s = np.where(f <= 50.0, 2.0 * f, 2.0 * (100.0 - f))
+        if span > 0:
+            s = np.where(f == 0.0, 100.0 * (p - lo) / span, s)
+            s = np.where(f == 100.0, 100.0 * (hi - p) / span, s)
+        else:
+            # a constant reference variable: similar only at that value, otherwise fully novel
+            s = np.where(p == lo, 0.0, -100.0)
+    return s
+
+
+def mess(X, reference: MessReference):
+    """MESS value and most-dissimilar variable for each row of ``X``.
+
+    For variable i with reference values r, f_i = 100 × #(r < p_i)/n and
+    S_i = 100 (p_i − min)/(max − min) if f_i = 0; 2 f_i if 0 < f_i ≤ 50;
+    2 (100 − f_i) if 50 < f_i < 100; 100 (max − p_i)/(max − min) if f_i = 100.
+    MESS = min_i S_i (negative: at least one variable outside the reference range) and the
+    most dissimilar variable is the argmin (first on ties). Because f counts values
+    strictly below p, a point at the reference maximum gets 2 (100 − f) > 0, not 0: S jumps
+    from that value to ≤ 0 just above the maximum. A zero-range reference variable gives
+    S = 0 at its value and −100 elsewhere (a convention of this library).
+
+    Parameters
+    ----------
+    X : array_like, shape (n_cells, n_variables)
+        Climate values, columns in the reference's variable order. Memory O(n_cells):
+        the loop runs over variables, vectorised over cells.
+    reference : MessReference
+
+    Returns
+    -------
+    mess_values : ndarray of float64, shape (n_cells,)
+        NaN where any variable is NaN.
+    most_dissimilar_index : ndarray of int64, shape (n_cells,)
+        Column index of the most dissimilar variable; −1 where the row has a NaN.
+
+    References
+    ----------
+    Elith, J., Kearney, M. & Phillips, S. (2010) The art of modelling range-shifting species.
+    Methods Ecol. Evol. 1: 330–342 (Appendix S3).
+
+    Examples
+    --------
+    >>> ref = reference_from_training(np.arange(1.0, 11.0))
+    >>> mess(np.array([[3.5], [12.0]]), ref)[0].round(4).tolist()
+    [60.0, -22.2222]
+    """
+    if not isinstance(reference, MessReference):
+        raise InputError(f"reference: got {type(reference).__name__}; expected a MessReference "
+                         "(reference_from_training or MessReference.from_dict)")
+    X = np.asarray(X)
+    if X.ndim == 1:
+        X = X[:, None]
+    if X.ndim != 2 or X.shape[1] != reference.n_variables:
+        raise InputError(f"X: shape {X.shape}; expected (cells, {reference.n_variables}) with the "
+                         "reference's variables as columns")
+    n = X.shape[0]
+    best = np.full(n, np.inf)
+    best_idx = np.zeros(n, dtype=np.int64)
+    missing = np.zeros(n, dtype=bool)
+    for i in range(X.shape[1]):
+        p = X[:, i].astype(np.float64, copy=False)
+        missing |= np.isnan(p)
+        s = _similarity(p, reference.values[:, i], float(reference.minimum[i]), float(reference.maximum[i]))
+        lower = s < best  # strict: the first variable wins ties
+        best = np.where(lower, s, best)
+        best_idx[lower] = i
+    best[missing] = np.nan
+    best_idx[missing] = -1
+    return best, best_idx
