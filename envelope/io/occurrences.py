@@ -1,0 +1,205 @@
+"""Reading occurrence tables (CSV/TSV, Darwin Core or user-named coordinate columns)."""
+
+from __future__ import annotations
+
+import csv
+import os
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from envelope.errors import InputError
+from envelope.occurrences import (
+    DWC_LATITUDE,
+    DWC_LONGITUDE,
+    DWC_TERMS,
+    MALFORMED_FLAG,
+    to_float,
+    crs_name,
+    parse_crs,
+)
+
+_CANDIDATE_DELIMITERS = (",", "\t", ";", "|")
+_SUFFIX_DELIMITERS = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": "\t"}
+
+
+def read_occurrences(
+    path: str | os.PathLike,
+    *,
+    x_column: str | None = None,
+    y_column: str | None = None,
+    crs=None,
+    delimiter: str | None = None,
+) -> pd.DataFrame:
+    """Read an occurrence table from a delimited text file.
+
+    Coordinates come from the Darwin Core columns ``decimalLongitude``/``decimalLatitude``
+    (EPSG:4326 implied; names matched regardless of case), or from ``x_column``/``y_column``
+    with a stated ``crs``. Other Darwin Core terms are kept and read by the cleaning
+    (``coordinateUncertaintyInMeters``, ``eventDate``, ``year``, ``occurrenceStatus``,
+    ``basisOfRecord``, ``occurrenceID``); every other column is kept as text.
+
+    Broken rows (wrong number of fields, coordinates missing or not numbers) are kept and
+    flagged in the boolean column ``malformed`` so that
+    :func:`envelope.occurrences.clean_occurrences` counts them; only a file without a single
+    usable row is an error.
+
+    Parameters
+    ----------
+    path : path-like
+        CSV, TSV or other delimited text, UTF-8 (a byte-order mark is allowed).
+    x_column, y_column : str, optional
+        Coordinate columns when they are not Darwin Core; then ``crs`` is required.
+    crs : str, optional
+        CRS of the coordinates, anything pyproj understands ("EPSG:3035"); default EPSG:4326
+        for Darwin Core columns.
+    delimiter : str, optional
+        Field separator; by default the one of ``, TAB ; |`` found most often in the header
+        line (ties broken by the file suffix: .csv comma, .tsv/.tab/.txt tab).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Source columns (text, NaN where empty), then ``x_record``, ``y_record`` (float64),
+        ``line`` (line number in the file) and ``malformed`` (bool). ``attrs`` holds
+        ``source`` (the path), ``crs``, ``x_column`` and ``y_column``.
+
+    Raises
+    ------
+    InputError
+        Missing or empty file, no header, coordinate columns missing (the columns found are
+        listed), CRS not understood, or no usable row.
+
+    References
+    ----------
+    Wieczorek, J. et al. (2012) Darwin Core: an evolving community-developed biodiversity
+    data standard. PLoS ONE 7(1): e29715.
+
+    Examples
+    --------
+    >>> table = read_occurrences("records.csv")                              # doctest: +SKIP
+    >>> table = read_occurrences("plots.tsv", x_column="easting", y_column="northing",
+    ...                          crs="EPSG:3035")                             # doctest: +SKIP
+    """
+    path = Path(path)
+    if (x_column is None) != (y_column is None):
+        raise InputError(f"{path}: give both x_column and y_column, or neither (for {DWC_LONGITUDE}/{DWC_LATITUDE})")
+    if delimiter is not None and len(delimiter) != 1:
+        raise InputError(f"{path}: delimiter {delimiter!r}; expected a single character")
+    user_columns = x_column is not None and (x_column, y_column) != (DWC_LONGITUDE, DWC_LATITUDE)
+    if user_columns and crs is None:
+        raise InputError(f"{path}: columns {x_column!r}/{y_column!r} are not Darwin Core; state their CRS "
+                         "(e.g. crs='EPSG:3035' or --crs EPSG:3035)")
+    record_crs = parse_crs(crs if crs is not None else "EPSG:4326", str(path))
+
+    text = _read_text(path)
+    if not text.strip():
+        raise InputError(f"{path}: file is empty; expected a header line naming the columns "
+                         f"(e.g. {DWC_LONGITUDE},{DWC_LATITUDE})")
+    if delimiter is None:
+        delimiter = _sniff_delimiter(text, path)
+
+    reader = csv.reader(text.splitlines(keepends=True), delimiter=delimiter)
+    header = None
+    rows, lines, wrong_length = [], [], []
+    for fields in reader:
+        if not fields or all(not f.strip() for f in fields):
+            continue  # blank line
+        if header is None:
+            header = _header(fields, path)
+            continue
+        wrong_length.append(len(fields) != len(header))
+        # keep short rows padded and long rows cut, so other fields stay in their columns
+        fields = (fields + [""] * len(header))[: len(header)]
+        rows.append(fields)
+        lines.append(reader.line_num)
+    if not rows:
+        raise InputError(f"{path}: holds a header but no records; expected one record per line after the header")
+
+    table = pd.DataFrame(rows, columns=header, dtype=object)
+    table = table.apply(lambda s: s.str.strip()).replace("", np.nan)
+    table = _canonical_terms(table)
+
+    if x_column is None:
+        x_column, y_column = DWC_LONGITUDE, DWC_LATITUDE
+    for name in (x_column, y_column):
+        if name not in table.columns:
+            found = ", ".join(map(str, header))
+            hint = "" if user_columns else " (or name them with x_column/y_column and crs)"
+            raise InputError(f"{path}: no column {name!r}; columns found: {found}{hint}")
+
+    x = to_float(table[x_column])
+    y = to_float(table[y_column])
+    usable_xy = np.isfinite(x) & np.isfinite(y)
+    malformed = np.asarray(wrong_length, dtype=bool) | ~usable_xy
+    if malformed.all():
+        first = int(np.flatnonzero(malformed)[0])
+        raise InputError(
+            f"{path}: none of the {len(table)} records has usable coordinates in columns {x_column!r}/{y_column!r} "
+            f"(line {lines[first]}: {table[x_column].iloc[first]!r}, {table[y_column].iloc[first]!r}); "
+            "expected numbers"
+        )
+    table["x_record"] = x
+    table["y_record"] = y
+    table["line"] = np.asarray(lines, dtype=np.int64)
+    table[MALFORMED_FLAG] = malformed
+    table.attrs = {"source": str(path), "crs": crs_name(record_crs), "x_column": x_column, "y_column": y_column}
+    return table
+
+
+def _read_text(path: Path) -> str:
+    if not path.exists():
+        raise InputError(f"{path}: file not found; expected an occurrence table (CSV or TSV)")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder; expected an occurrence table (CSV or TSV)")
+    try:
+        return path.read_text(encoding="utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: not UTF-8 text (byte {exc.start}); expected a UTF-8 CSV or TSV file") from None
+
+
+def _sniff_delimiter(text: str, path: Path) -> str:
+    first = next(line for line in text.splitlines() if line.strip())
+    counts = {d: first.count(d) for d in _CANDIDATE_DELIMITERS}
+    best = max(counts.values())
+    preferred = _SUFFIX_DELIMITERS.get(path.suffix.lower(), ",")
+    if best == 0 or counts[preferred] == best:
+        return preferred
+    return next(d for d in _CANDIDATE_DELIMITERS if counts[d] == best)
+
+
+def _header(fields, path: Path) -> list[str]:
+    names = [f.strip() for f in fields]
+    if all(_is_number(n) for n in names if n):
+        raise InputError(f"{path}: first line {','.join(names)!r} holds numbers, not column names; "
+                         f"expected a header line (e.g. {DWC_LONGITUDE},{DWC_LATITUDE})")
+    names = [n or f"unnamed_{i + 1}" for i, n in enumerate(names)]
+    seen = set()
+    for name in names:
+        if name in seen:
+            raise InputError(f"{path}: column {name!r} appears twice in the header; expected unique names")
+        seen.add(name)
+    return names
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _canonical_terms(table: pd.DataFrame) -> pd.DataFrame:
+    """Spell Darwin Core terms the standard way ("decimallatitude" -> "decimalLatitude")."""
+    present = set(table.columns)
+    rename = {}
+    for term in DWC_TERMS:
+        if term in present:
+            continue
+        for column in table.columns:
+            if str(column).lower() == term.lower() and column not in rename:
+                rename[column] = term
+                break
+    return table.rename(columns=rename)

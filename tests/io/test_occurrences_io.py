@@ -1,0 +1,144 @@
+"""Reading occurrence tables: Darwin Core and user-named columns, delimiters, broken rows, bad files."""
+
+import numpy as np
+import pytest
+
+from tests.conftest import make_stack
+from envelope.errors import InputError
+from envelope.io.occurrences import read_occurrences
+from envelope.occurrences import clean_occurrences
+
+# Source: Darwin Core term names (Wieczorek et al. 2012, PLoS ONE 7: e29715; dwc quick reference guide).
+HEADER = "occurrenceID,decimalLongitude,decimalLatitude,coordinateUncertaintyInMeters,eventDate,occurrenceStatus"
+
+
+def write(tmp_path, name, text):
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def one_line_error(excinfo):
+    message = str(excinfo.value)
+    assert "\n" not in message
+    return message
+
+
+def test_darwin_core_csv(tmp_path):
+    # Source: Darwin Core terms; decimalLongitude/decimalLatitude are WGS84 (EPSG:4326) by default.
+    path = write(tmp_path, "records.csv", HEADER + "\nr1,-149.95,44.95,30,2001-05-03,present\n"
+                                                    "r2,-149.85,44.85,,2002,\n")
+    table = read_occurrences(path)
+    assert table.attrs["crs"] == "EPSG:4326" and table.attrs["source"] == str(path)
+    np.testing.assert_array_equal(table["x_record"], [-149.95, -149.85])
+    np.testing.assert_array_equal(table["y_record"], [44.95, 44.85])
+    assert table["occurrenceID"].tolist() == ["r1", "r2"]
+    assert table["line"].tolist() == [2, 3]
+    assert not table["malformed"].any()
+    assert table["coordinateUncertaintyInMeters"].isna().tolist() == [False, True]  # empty field -> NaN
+
+
+@pytest.mark.parametrize("name, sep", [("records.txt", "\t"), ("records.csv", ";"), ("records.tsv", "\t"),
+                                       ("records.csv", "\t")])
+def test_delimiter_sniffed(tmp_path, name, sep):
+    # Common practice, no source: tab-separated Darwin Core exports are often named .csv or .txt.
+    text = sep.join(["decimalLongitude", "decimalLatitude", "year"]) + "\n" + sep.join(["-149.5", "44.5", "2000"])
+    table = read_occurrences(write(tmp_path, name, text + "\n"))
+    assert table["x_record"].tolist() == [-149.5] and table["year"].tolist() == ["2000"]
+
+
+def test_term_case_is_normalised_and_bom_ignored(tmp_path):
+    # Common practice, no source: some exports write Darwin Core terms in lower case, with a BOM.
+    path = tmp_path / "lower.csv"
+    path.write_bytes("\ufeffdecimallongitude,DECIMALLATITUDE\n-149.5,44.5\n".encode("utf-8"))
+    table = read_occurrences(path)
+    assert {"decimalLongitude", "decimalLatitude"} <= set(table.columns)
+
+
+def test_user_columns_with_crs(tmp_path):
+    # Common practice, no source: projected coordinates need their CRS stated.
+    path = write(tmp_path, "plots.csv", "plot,easting,northing\np1,405000,4980000\n")
+    table = read_occurrences(path, x_column="easting", y_column="northing", crs="EPSG:32605")
+    assert table.attrs["crs"] == "EPSG:32605"
+    assert table["x_record"].tolist() == [405000.0]
+    with pytest.raises(InputError, match="state their CRS") as info:
+        read_occurrences(path, x_column="easting", y_column="northing")
+    assert "plots.csv" in one_line_error(info)
+
+
+def test_broken_rows_are_kept_and_counted_as_malformed(tmp_path):
+    # Source: constructed file; counts follow from the construction (common practice, no source).
+    text = (HEADER + "\n"
+            "r1,-149.95,44.95,30,2001,present\n"
+            "r2,-149.85,44.85\n"                      # too few fields
+            "r3,-149.75,44.75,30,2001,present,extra\n"  # too many fields
+            "r4,west,44.65,30,2001,present\n"         # not a number
+            "r5,,44.55,30,2001,present\n"             # missing
+            "r6,-149.45,144.55,30,2001,present\n"     # latitude out of range: flagged by the cleaning
+            "r7,-149.35,44.35,30,2001,present\n")
+    table = read_occurrences(write(tmp_path, "broken.csv", text))
+    assert table["malformed"].tolist() == [False, True, True, True, True, False, False]
+    records = clean_occurrences(table, make_stack())
+    assert records.dropped["malformed"] == 5
+    assert records.table["occurrenceID"].tolist() == ["r1", "r7"]
+
+
+def test_missing_file(tmp_path):
+    # Common practice, no source.
+    with pytest.raises(InputError, match="nothere.csv: file not found") as info:
+        read_occurrences(tmp_path / "nothere.csv")
+    one_line_error(info)
+
+
+def test_empty_file(tmp_path):
+    # Common practice, no source.
+    with pytest.raises(InputError, match="empty.csv: file is empty") as info:
+        read_occurrences(write(tmp_path, "empty.csv", "\n  \n"))
+    one_line_error(info)
+
+
+def test_header_only(tmp_path):
+    # Common practice, no source.
+    with pytest.raises(InputError, match="holds a header but no records") as info:
+        read_occurrences(write(tmp_path, "header.csv", HEADER + "\n"))
+    one_line_error(info)
+
+
+def test_no_header(tmp_path):
+    # Common practice, no source: a first line of numbers is data, not column names.
+    with pytest.raises(InputError, match="holds numbers, not column names") as info:
+        read_occurrences(write(tmp_path, "bare.csv", "-149.5,44.5\n-149.4,44.4\n"))
+    one_line_error(info)
+
+
+def test_missing_coordinate_columns_lists_what_exists(tmp_path):
+    # Common practice, no source: the message lists the columns found so the user can name them.
+    path = write(tmp_path, "cols.csv", "id,lon,lat\n1,-149.5,44.5\n")
+    with pytest.raises(InputError, match=r"no column 'decimalLongitude'; columns found: id, lon, lat") as info:
+        read_occurrences(path)
+    assert "cols.csv" in one_line_error(info)
+    with pytest.raises(InputError, match="no column 'northing'"):
+        read_occurrences(path, x_column="lon", y_column="northing", crs="EPSG:4326")
+
+
+@pytest.mark.parametrize("crs", ["EPSG:999999", "not a crs", "+proj=nonsense"])
+def test_nonsense_crs(tmp_path, crs):
+    # Source: pyproj.CRS.from_user_input raises CRSError for these; we turn it into one line.
+    path = write(tmp_path, "plots.csv", "easting,northing\n1,2\n")
+    with pytest.raises(InputError, match="not understood by pyproj") as info:
+        read_occurrences(path, x_column="easting", y_column="northing", crs=crs)
+    assert "plots.csv" in one_line_error(info)
+
+
+def test_no_usable_row(tmp_path):
+    # Common practice, no source: when every row is broken the file is an error, not an empty result.
+    path = write(tmp_path, "bad.csv", "decimalLongitude,decimalLatitude\nwest,north\n-149.5,\n")
+    with pytest.raises(InputError, match=r"none of the 2 records has usable coordinates.*line 2: 'west'") as info:
+        read_occurrences(path)
+    one_line_error(info)
+
+
+def test_duplicate_header_names(tmp_path):
+    # Common practice, no source.
+    with pytest.raises(InputError, match="column 'year' appears twice"):
+        read_occurrences(write(tmp_path, "dup.csv", "decimalLongitude,decimalLatitude,year,year\n1,2,3,4\n"))
