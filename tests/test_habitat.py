@@ -381,7 +381,7 @@ def test_demo_habitat_on_baseline_grid():
     assert hab.shape == (250, 250) and float(hab.min()) >= 0 and float(hab.max()) <= 1
     assert float(hab.isnull().sum()) == 0
     lc = load_habitat(demo / "landcover.tif", stack, classes=demo / "landcover_classes.csv")
-    assert set(np.unique(lc.values).round(6)) <= {1.0, 0.6, 0.05, 0.15, 0.3, 0.0}
+    assert set(np.unique(lc.values.astype(np.float64)).round(6)) <= {1.0, 0.6, 0.05, 0.15, 0.3, 0.0}
 
 
 def test_demo_fragments_poleward():

@@ -1,0 +1,328 @@
+"""Grid wrappers: grid identity checks, alignment, true cell areas and validity masks."""
+
+from __future__ import annotations
+
+import logging
+import math
+
+import numpy as np
+import xarray as xr
+import rioxarray  # noqa: F401  (registers .rio)
+
+from envelope.errors import GridMismatchError, InputError
+from envelope.kernels.areas import ellipsoid_band_area
+
+log = logging.getLogger(__name__)
+
+RESAMPLING = ("nearest", "bilinear", "average")
+
+# Projection methods that preserve area (PROJ / EPSG method names, lower case, substrings).
+# Source: Snyder (1987) Map Projections — A Working Manual, USGS PP 1395, table of properties.
+_EQUAL_AREA_METHODS = (
+    "equal area", "equal-area", "mollweide", "sinusoidal", "equal earth", "eckert ii",
+    "eckert iv", "eckert vi", "homolosine", "bonne", "hammer", "quartic authalic", "ease",
+)
+
+# Relative tolerances for calling two grids "the same": float noise in coordinates read
+# from NetCDF must not count as a difference, a real shift of a fraction of a cell must.
+_RES_RTOL = 1e-6
+_ORIGIN_CELL_TOL = 1e-4
+
+_warned_crs: set[str] = set()
+
+
+def _crs(da):
+    crs = da.rio.crs
+    if crs is None:
+        raise InputError(f"{da.name or 'grid'}: no CRS attached (expected a georeferenced grid)")
+    return crs
+
+
+def _pyproj_crs(da):
+    from pyproj import CRS
+
+    return CRS.from_user_input(_crs(da).to_wkt())
+
+
+def crs_label(crs) -> str:
+    """Short name of a CRS: ``EPSG:4326`` when it has an EPSG code, else its name."""
+    if crs is None:
+        return "none"
+    from pyproj import CRS
+
+    pcrs = CRS.from_user_input(crs.to_wkt() if hasattr(crs, "to_wkt") else crs)
+    code = pcrs.to_epsg(min_confidence=90)
+    if code is not None:
+        return f"EPSG:{code}"
+    auth = pcrs.to_authority(min_confidence=90)
+    return f"{auth[0]}:{auth[1]}" if auth else pcrs.name
+
+
+def is_geographic(da: xr.DataArray) -> bool:
+    """True when the grid's CRS is geographic (x = longitude, y = latitude, degrees)."""
+    crs = da.rio.crs
+    return bool(crs is not None and crs.is_geographic)
+
+
+def grid_signature(da: xr.DataArray) -> dict:
+    """What identifies a grid: CRS, resolution, shape (rows, columns), transform and bounds.
+
+    Returns
+    -------
+    dict
+        ``crs`` (rasterio CRS or None), ``crs_label`` (str), ``resolution`` ((dx, dy),
+        dy negative for north-up), ``shape`` ((rows, columns)), ``transform`` (affine 6-tuple),
+        ``bounds`` ((left, bottom, right, top)).
+    """
+    transform = da.rio.transform(recalc=True)
+    shape = (int(da.sizes["y"]), int(da.sizes["x"]))
+    return {
+        "crs": da.rio.crs,
+        "crs_label": crs_label(da.rio.crs),
+        "resolution": (float(transform.a), float(transform.e)),
+        "shape": shape,
+        "transform": tuple(float(v) for v in transform[:6]),
+        "bounds": tuple(float(v) for v in da.rio.bounds(recalc=True)),
+    }
+
+
+def _same_crs(a, b) -> bool:
+    if a is None or b is None:
+        return a is None and b is None
+    if a == b:
+        return True
+    from pyproj import CRS
+
+    return CRS.from_user_input(a.to_wkt()).equals(CRS.from_user_input(b.to_wkt()), ignore_axis_order=True)
+
+
+def _fmt_res(res) -> str:
+    dx, dy = abs(res[0]), abs(res[1])
+    return f"{dx:.4g}" if math.isclose(dx, dy, rel_tol=_RES_RTOL) else f"{dx:.4g} x {dy:.4g}"
+
+
+def check_same_grid(ref: xr.DataArray, other: xr.DataArray, *, ref_name: str = "baseline",
+                    other_name: str = "grid") -> None:
+    """Raise :class:`GridMismatchError` naming the first difference between two grids.
+
+    Differences are looked for in the order CRS, resolution, shape, origin/transform, so
+    the message names the most fundamental one, e.g.
+    ``"scenario high/2070: resolution 0.04167 differs from baseline 0.008333"``.
+
+    Parameters
+    ----------
+    ref, other : DataArray
+        Grids with dims (..., y, x) and CRS attached.
+    ref_name, other_name : str
+        How the two grids are named in the message.
+    """
+    a, b = grid_signature(ref), grid_signature(other)
+    if not _same_crs(a["crs"], b["crs"]):
+        raise GridMismatchError(f"{other_name}: CRS {b['crs_label']} differs from {ref_name} {a['crs_label']}")
+    ra, rb = a["resolution"], b["resolution"]
+    if not all(math.isclose(u, v, rel_tol=_RES_RTOL) for u, v in zip(np.abs(ra), np.abs(rb))):
+        raise GridMismatchError(f"{other_name}: resolution {_fmt_res(rb)} differs from {ref_name} {_fmt_res(ra)}")
+    if a["shape"] != b["shape"]:
+        raise GridMismatchError(
+            f"{other_name}: shape {b['shape'][0]} x {b['shape'][1]} (rows x columns) differs from "
+            f"{ref_name} {a['shape'][0]} x {a['shape'][1]}")
+    ta, tb = a["transform"], b["transform"]
+    tol = _ORIGIN_CELL_TOL * max(abs(ra[0]), abs(ra[1]))
+    if any(abs(u - v) > tol for u, v in zip(ta, tb)):
+        raise GridMismatchError(
+            f"{other_name}: origin/transform (x0 {tb[2]:.10g}, y0 {tb[5]:.10g}, dy {tb[4]:.4g}) differs from "
+            f"{ref_name} (x0 {ta[2]:.10g}, y0 {ta[5]:.10g}, dy {ta[4]:.4g})")
+
+
+def align_to(da: xr.DataArray, ref: xr.DataArray, *, resampling: str = "bilinear") -> xr.DataArray:
+    """Resample ``da`` onto the grid of ``ref`` (CRS, transform and shape).
+
+    Parameters
+    ----------
+    da : DataArray (..., y, x)
+        Source grid with CRS. Float grids use NaN as nodata; integer grids their
+        ``rio.nodata``.
+    ref : DataArray (..., y, x)
+        Target grid.
+    resampling : {"nearest", "bilinear", "average"}, default="bilinear"
+        ``"nearest"`` for categories (class codes), ``"bilinear"`` for continuous climate,
+        ``"average"`` for aggregating finer grids.
+
+    Returns
+    -------
+    DataArray
+        On ``ref``'s grid, with ``ref``'s exact x/y coordinates. Computed eagerly (GDAL warp);
+        re-chunked like ``da`` when ``da`` was dask-backed.
+
+    References
+    ----------
+    GDAL warp (``gdalwarp``) resampling methods, via rioxarray ``reproject_match``.
+    """
+    from rasterio.enums import Resampling
+
+    if resampling not in RESAMPLING:
+        raise InputError(f"resampling: {resampling!r} is not known (expected one of {', '.join(RESAMPLING)})")
+    _crs(da), _crs(ref)
+    src = da
+    if np.issubdtype(src.dtype, np.floating):
+        src = src.rio.write_nodata(np.nan, encoded=False)
+    chunked = src.chunks is not None
+    out = src.rio.reproject_match(ref, resampling=getattr(Resampling, resampling))
+    out = out.assign_coords(x=ref["x"].values, y=ref["y"].values)
+    if chunked:
+        out = out.chunk({"y": min(2048, out.sizes["y"]), "x": min(2048, out.sizes["x"])})
+    out.name = da.name
+    out.attrs = dict(da.attrs)
+    return out
+
+
+def is_equal_area(crs) -> bool:
+    """True when a projected CRS's projection method preserves area (name-based check)."""
+    from pyproj import CRS
+
+    pcrs = CRS.from_user_input(crs.to_wkt() if hasattr(crs, "to_wkt") else crs)
+    op = pcrs.coordinate_operation
+    method = (op.method_name if op is not None else "") or ""
+    return any(key in method.lower() for key in _EQUAL_AREA_METHODS)
+
+
+def _edges(centres: np.ndarray) -> np.ndarray:
+    """Cell edges from cell-centre coordinates (mid-points; the ends extrapolated)."""
+    c = np.asarray(centres, dtype=np.float64)
+    if c.size == 1:
+        raise InputError("grid: a single row or column cannot tell its cell size (expected 2 or more)")
+    mid = 0.5 * (c[1:] + c[:-1])
+    return np.concatenate([[c[0] - (mid[0] - c[0])], mid, [c[-1] + (c[-1] - mid[-1])]])
+
+
+def _lazy_outer(rows: np.ndarray, cols: np.ndarray, like: xr.DataArray) -> xr.DataArray:
+    """rows[:, None] * cols[None, :] as a (y, x) DataArray; dask-backed when ``like`` is."""
+    coords = {"y": like["y"].values, "x": like["x"].values}
+    if like.chunks is not None:
+        import dask.array as dsa
+
+        ychunks = like.chunksizes["y"]
+        xchunks = like.chunksizes["x"]
+        data = dsa.from_array(rows, chunks=(ychunks,))[:, None] * dsa.from_array(cols, chunks=(xchunks,))[None, :]
+    else:
+        data = rows[:, None] * cols[None, :]
+    return xr.DataArray(data, dims=("y", "x"), coords=coords, name="cell_area")
+
+
+def _geographic_areas(da: xr.DataArray, pcrs) -> xr.DataArray:
+    ell = pcrs.ellipsoid
+    a = ell.semi_major_metre
+    inv_f = ell.inverse_flattening
+    f = 0.0 if not inv_f else 1.0 / inv_f
+    lat_edges = np.clip(_edges(da["y"].values), -90.0, 90.0)
+    lon_edges = _edges(da["x"].values)
+    # a band of 1 degree of longitude per row, scaled by each column's width: the area
+    # of a graticule cell is linear in its longitude extent.
+    per_row = ellipsoid_band_area(lat_edges[:-1], lat_edges[1:], 1.0, a, f) / 1e6
+    per_col = np.abs(np.diff(lon_edges))
+    return _lazy_outer(per_row, per_col, da)
+
+
+def _projected_areas(da: xr.DataArray, pcrs) -> xr.DataArray:
+    x_edges = _edges(da["x"].values)
+    y_edges = _edges(da["y"].values)
+    unit = pcrs.axis_info[0].unit_conversion_factor if pcrs.axis_info else 1.0
+    dx = np.abs(np.diff(x_edges)) * unit
+    dy = np.abs(np.diff(y_edges)) * unit
+    if is_equal_area(pcrs):
+        return _lazy_outer(dy / 1e3, dx / 1e3, da)
+    key = pcrs.to_wkt()
+    if key not in _warned_crs:
+        _warned_crs.add(key)
+        log.warning("CRS %s is not equal-area; cell areas come from the projection's areal scale "
+                    "at cell centres", crs_label(pcrs))
+    if da.chunks is not None:
+        import dask.array as dsa
+
+        ychunks, xchunks = da.chunksizes["y"], da.chunksizes["x"]
+        ys = dsa.from_array(da["y"].values.astype(np.float64), chunks=(ychunks,))
+        xs = dsa.from_array(da["x"].values.astype(np.float64), chunks=(xchunks,))
+        wkt = pcrs.to_wkt()
+        scale = dsa.blockwise(_areal_scale_block, "yx", ys, "y", xs, "x", wkt=wkt, dtype=np.float64)
+        data = (dsa.from_array(dy, chunks=(ychunks,))[:, None] * dsa.from_array(dx, chunks=(xchunks,))[None, :]
+                / scale / 1e6)
+    else:
+        scale = _areal_scale_block(da["y"].values, da["x"].values, wkt=pcrs.to_wkt())
+        data = dy[:, None] * dx[None, :] / scale / 1e6
+    return xr.DataArray(data, dims=("y", "x"), coords={"y": da["y"].values, "x": da["x"].values},
+                        name="cell_area")
+
+
+def _areal_scale_block(ys: np.ndarray, xs: np.ndarray, *, wkt: str) -> np.ndarray:
+    """Areal scale of the projection with respect to the CRS's own ellipsoid, shape (y, x).
+
+    ``Proj.get_factors`` gives the projection's partial derivatives (in units of the
+    semi-major axis per radian); the areal scale is ``|det J| / (M N cos phi)`` with the
+    meridian (M) and prime-vertical (N) radii of curvature of the CRS's datum ellipsoid.
+    For projections defined on that ellipsoid this equals ``Factors.areal_scale``; for
+    spherical-formula projections on an ellipsoidal datum (Web Mercator, EPSG:3857) it
+    measures area on the datum ellipsoid rather than on the projection's sphere.
+
+    References
+    ----------
+    Snyder (1987) Map Projections — A Working Manual, USGS PP 1395, eqs. 4-9 to 4-13 and 4-18
+    (h, k and the areal scale factor); PROJ ``proj_factors``.
+    """
+    from pyproj import CRS, Proj, Transformer
+
+    crs = CRS.from_wkt(wkt)
+    xx, yy = np.meshgrid(np.asarray(xs, dtype=np.float64), np.asarray(ys, dtype=np.float64))
+    to_geo = Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
+    lon, lat = to_geo.transform(xx, yy)
+    factors = Proj(crs).get_factors(lon, lat)
+    a = crs.ellipsoid.semi_major_metre
+    inv_f = crs.ellipsoid.inverse_flattening
+    e2 = 0.0 if not inv_f else (1.0 / inv_f) * (2.0 - 1.0 / inv_f)
+    phi = np.deg2rad(lat)
+    w = 1.0 - e2 * np.sin(phi) ** 2
+    radius_m = (1.0 - e2) / w ** 1.5   # M / a
+    radius_n = 1.0 / np.sqrt(w)        # N / a
+    det = np.abs(np.asarray(factors.dx_dlam) * np.asarray(factors.dy_dphi)
+                 - np.asarray(factors.dx_dphi) * np.asarray(factors.dy_dlam))
+    return det / (radius_m * radius_n * np.cos(phi))
+
+
+def cell_area_km2(da: xr.DataArray) -> xr.DataArray:
+    """True area of every cell on the ground, in km², as a (y, x) DataArray.
+
+    Geographic grids: the exact area of each graticule cell on the CRS's ellipsoid (WGS84
+    when the CRS names it) from the authalic q formula; it depends only on the row, so it
+    is computed per row and broadcast lazily. Projected equal-area grids (Lambert azimuthal,
+    Albers, cylindrical equal area/EASE, Mollweide, sinusoidal, Equal Earth, ...): the pixel
+    area. Other projected grids: ``dx * dy / areal_scale`` with the projection's areal scale
+    at each cell centre (a first-order approximation that is exact as cells shrink); a
+    warning is logged once per CRS.
+
+    Parameters
+    ----------
+    da : DataArray (..., y, x)
+        Grid with CRS attached; only its coordinates are used.
+
+    Returns
+    -------
+    DataArray (y, x), float64
+        Dask-backed when ``da`` is.
+
+    References
+    ----------
+    Snyder, J.P. (1987) Map Projections — A Working Manual. USGS PP 1395 (authalic latitude
+    and areal scale factors). NIMA TR8350.2 (2000), WGS84 constants.
+    """
+    pcrs = _pyproj_crs(da)
+    if pcrs.is_geographic:
+        return _geographic_areas(da, pcrs)
+    return _projected_areas(da, pcrs)
+
+
+def valid_mask(stack: xr.DataArray) -> xr.DataArray:
+    """Cells where every variable is finite, as a lazy boolean (y, x) DataArray."""
+    finite = xr.apply_ufunc(np.isfinite, stack, dask="parallelized", output_dtypes=[bool])
+    if "variable" in finite.dims:
+        finite = finite.all("variable")
+    finite.name = "valid"
+    return finite
