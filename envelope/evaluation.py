@@ -430,7 +430,10 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
                              "background on both sides of every fold (use fewer folds or other blocks)")
         tr_idx, te_idx = np.flatnonzero(train), np.flatnonzero(test)
         est = make_estimator()
-        kw = dict(fit_params)
+        # per-record fit parameters (e.g. the spatial fold ids a model tunes its penalty
+        # on) are cut to the training rows, so inner tuning never sees the held-out fold
+        kw = {key: (np.asarray(v)[tr_idx] if np.ndim(v) == 1 and len(v) == n else v)
+              for key, v in fit_params.items()}
         if sample_weight is not None:
             kw["sample_weight"] = sample_weight[tr_idx]
         est.fit(_rows(X, tr_idx), y[tr_idx], **kw)

@@ -1,0 +1,184 @@
+"""Bioclimatic variables on grids: 12-month stacks (month, y, x) to a stack (variable, y, x), chunk by chunk."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import rioxarray  # noqa: F401  (registers the .rio accessor)
+import xarray as xr
+
+from envelope.errors import InputError
+from envelope.grids import check_same_grid
+from envelope.kernels.bioclim import bioclim_kernel, variable_long_names, variable_names, variable_units
+
+__all__ = ["bioclim", "check_monthly", "check_monthly_grids"]
+
+# Plausible monthly temperatures in °C; beyond this the stack is probably kelvin or °C x 10.
+_MAX_ABS_CELSIUS = 100.0
+
+
+def _check_monthly_dims(da, name):
+    if not isinstance(da, xr.DataArray):
+        raise InputError(f"{name}: expected an xarray.DataArray with dims (month, y, x), got {type(da).__name__}")
+    if set(da.dims) != {"month", "y", "x"}:
+        raise InputError(f"{name}: dims {da.dims}; expected (month, y, x)")
+    if da.sizes["month"] != 12:
+        raise InputError(f"{name}: {da.sizes['month']} months; expected 12 (January ... December)")
+
+
+def check_monthly_grids(arrays: dict[str, xr.DataArray]) -> None:
+    """Check that named 12-month stacks share one grid (CRS, shape and cell centres).
+
+    Raises
+    ------
+    GridMismatchError
+        Naming the first pair of stacks that differ and how.
+    """
+    items = [(n, a) for n, a in arrays.items() if a is not None]
+    for name, da in items:
+        _check_monthly_dims(da, name)
+    ref_name, ref = items[0]
+    for name, da in items[1:]:
+        check_same_grid(ref, da, ref_name=ref_name, other_name=name)
+
+
+def check_monthly(tmin, tmax, prec, tmean=None, *, names=None) -> None:
+    """Check the values of 12-month stacks before computing bioclimatic variables.
+
+    One pass over the data (dask computes a few counts; nothing is kept in memory):
+
+    - tmin > tmax in any cell-month is an error, with the count: swapped or misaligned
+      files are the usual cause, and BIO2/BIO3/BIO7 would be meaningless.
+    - negative precipitation is an error, with the count.
+    - |temperature| above 100 is an error: the stack is probably kelvin or °C x 10.
+
+    Parameters
+    ----------
+    tmin, tmax, prec, tmean : DataArray (month, y, x)
+    names : dict, optional
+        Role -> file name used in messages, e.g. ``{"prec": "prec.tif"}``.
+
+    Raises
+    ------
+    InputError
+    """
+    import dask
+
+    names = {"tmin": "tmin", "tmax": "tmax", "prec": "prec", "tmean": "tmean", **(names or {})}
+    temps = {"tmin": tmin, "tmax": tmax, **({"tmean": tmean} if tmean is not None else {})}
+    lazy = {
+        "swapped": (tmin > tmax).sum(),
+        "negative": (prec < 0).sum(),
+        **{f"abs_{k}": abs(v).max() for k, v in temps.items()},
+    }
+    values = dict(zip(lazy, dask.compute(*[v.data for v in lazy.values()])))
+    if int(values["negative"]):
+        raise InputError(f"{names['prec']}: {int(values['negative'])} cell-months of negative precipitation; "
+                         "expected monthly totals >= 0 mm")
+    for role in temps:
+        big = float(values[f"abs_{role}"])
+        if np.isfinite(big) and big > _MAX_ABS_CELSIUS:
+            raise InputError(f"{names[role]}: temperatures up to {big:g}; expected degC "
+                             "(is this stack in kelvin or degC x 10?)")
+    if int(values["swapped"]):
+        raise InputError(f"{names['tmin']} and {names['tmax']}: tmin > tmax in {int(values['swapped'])} "
+                         "cell-months; expected tmin <= tmax (files swapped or on different grids?)")
+
+
+def bioclim(
+    tmin: xr.DataArray,
+    tmax: xr.DataArray,
+    prec: xr.DataArray,
+    tmean: xr.DataArray | None = None,
+    *,
+    variables=None,
+    wrap: bool = True,
+    ddof: int = 0,
+    cv_plus_one: bool = False,
+    gdd_base: float | None = 5.0,
+) -> xr.DataArray:
+    """Bioclimatic variables BIO1-BIO19 (and growing degree days) from 12-month stacks.
+
+    Lazy: with dask-backed inputs nothing is computed until the result is written or
+    ``.compute()`` is called; each chunk of cells goes through
+    :func:`envelope.kernels.bioclim.bioclim_kernel` with all 12 months at once.
+
+    Parameters
+    ----------
+    tmin, tmax : DataArray (month, y, x)
+        Monthly mean daily minimum / maximum temperature, °C, months 1..12.
+    prec : DataArray (month, y, x)
+        Monthly total precipitation, mm.
+    tmean : DataArray (month, y, x), optional
+        Monthly mean temperature, °C; default (tmin + tmax) / 2.
+    variables : list of str, optional
+        Subset and order of the output, e.g. ``["BIO1", "BIO12", "GDD5"]``; default all.
+    wrap, ddof, cv_plus_one, gdd_base
+        Conventions, see :func:`envelope.kernels.bioclim.bioclim_kernel`.
+
+    Returns
+    -------
+    DataArray (variable, y, x), float32, named "climate"
+        Coordinate ``variable`` holds ``BIO1`` ... ``BIO19`` (and ``GDD<base>``), non-dim
+        coordinates ``units`` and ``long_name`` along it; attrs record the conventions. CRS
+        is that of ``tmin``.
+
+    References
+    ----------
+    O'Donnell, M.S. & Ignizio, D.A. (2012) U.S. Geological Survey Data Series 691.
+    """
+    inputs = {"tmin": tmin, "tmax": tmax, "prec": prec, "tmean": tmean}
+    check_monthly_grids(inputs)
+    all_names = list(variable_names(gdd_base))
+    if variables is not None:
+        unknown = [v for v in variables if v not in all_names]
+        if unknown:
+            raise InputError(f"variables: {unknown[0]!r} is not a bioclimatic variable here; "
+                             f"expected some of {', '.join(all_names)}")
+    present = [(k, v) for k, v in inputs.items() if v is not None]
+    # the kernel needs every month of a cell in one chunk; y/x chunks stay as they are
+    arrays = [v.chunk({"month": -1}) if v.chunks is not None else v for _, v in present]
+    args = [a.drop_vars([c for c in a.coords if c not in ("y", "x")]) for a in arrays]
+    has_tmean = tmean is not None
+
+    def _kernel(*blocks):
+        t_mean = blocks[3] if has_tmean else None
+        out = bioclim_kernel(blocks[0], blocks[1], blocks[2], t_mean,
+                             wrap=wrap, ddof=ddof, cv_plus_one=cv_plus_one, gdd_base=gdd_base)
+        return out.astype(np.float32)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        out = xr.apply_ufunc(
+            _kernel,
+            *args,
+            input_core_dims=[["month"]] * len(args),
+            output_core_dims=[["variable"]],
+            dask="parallelized",
+            output_dtypes=[np.float32],
+            dask_gufunc_kwargs={"output_sizes": {"variable": len(all_names)}},
+        )
+    out = out.transpose("variable", "y", "x").assign_coords(
+        variable=all_names,
+        units=("variable", list(variable_units(gdd_base))),
+        long_name=("variable", list(variable_long_names(gdd_base))),
+    )
+    if variables is not None:
+        out = out.sel(variable=list(variables))
+    out.name = "climate"
+    out.attrs = {
+        "source": "bioclimatic variables after O'Donnell & Ignizio (2012), USGS Data Series 691",
+        "quarters": "rolling 3-month windows wrapping the year end" if wrap else
+                    "rolling 3-month windows within January-December",
+        "sd_ddof": int(ddof),
+        "bio15_on_prec_plus_one": int(bool(cv_plus_one)),
+        "tavg": "input tmean" if has_tmean else "(tmin + tmax) / 2",
+    }
+    if gdd_base is not None:
+        out.attrs["gdd_method"] = (f"sum over months of max(Tavg - {float(gdd_base):g}, 0) x days in month "
+                                   "(365-day year)")
+    crs = tmin.rio.crs
+    if crs is not None:
+        out = out.rio.write_crs(crs)
+    return out

@@ -1,0 +1,325 @@
+"""The fit pipeline: records + baseline climate -> cleaned data, CV, final model, diagnostics."""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import platform
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from envelope import __version__
+from envelope.errors import InputError
+
+log = logging.getLogger(__name__)
+
+MIN_RECORDS = 5       # below this no model is fitted
+FEW_RECORDS = 15      # below this a warning: CV metrics are very noisy
+COLLINEAR_R = 0.7     # Dormann et al. (2013) rule of thumb for |r| between predictors
+
+
+@dataclass
+class FitResult:
+    """Everything `envelope fit` writes: the estimator, the model-file metadata, the summary."""
+
+    estimator: object
+    metadata: dict
+    summary: dict
+    per_fold: pd.DataFrame
+    warnings: list = field(default_factory=list)
+
+
+def file_sha256(path) -> str:
+    """SHA-256 of a file (or of every file of a folder), for provenance."""
+    h = hashlib.sha256()
+    p = Path(path)
+    files = sorted(p.rglob("*")) if p.is_dir() else [p]
+    for f in files:
+        if f.is_file():
+            with open(f, "rb") as fh:
+                for chunk in iter(lambda: fh.read(1 << 20), b""):
+                    h.update(chunk)
+    return h.hexdigest()
+
+
+def software_versions() -> dict:
+    import sklearn
+    import scipy
+    import xarray
+
+    return {"envelope": __version__, "python": platform.python_version(), "numpy": np.__version__,
+            "scipy": scipy.__version__, "scikit-learn": sklearn.__version__, "xarray": xarray.__version__}
+
+
+def check_variables(values: np.ndarray, names) -> None:
+    """Refuse all-NaN or constant predictors: they carry no information and break scaling."""
+    for j, name in enumerate(names):
+        col = values[:, j]
+        finite = col[np.isfinite(col)]
+        if finite.size == 0:
+            raise InputError(f"climate variable {name!r} is NaN at every sampled cell")
+        if np.ptp(finite) == 0:
+            raise InputError(f"climate variable {name!r} is constant ({finite[0]:g}) over the study area; drop it with --variables")
+
+
+def collinear_pairs(values: np.ndarray, names, threshold: float = COLLINEAR_R) -> list[dict]:
+    """Pairs of predictors with |Pearson r| above ``threshold`` on the background sample.
+
+    Source: Dormann et al. (2013) Ecography 36: 27–46, |r| > 0.7 as a rule of thumb.
+    """
+    r = np.corrcoef(values, rowvar=False)
+    out = []
+    for i in range(len(names)):
+        for j in range(i + 1, len(names)):
+            if abs(r[i, j]) > threshold:
+                out.append({"a": names[i], "b": names[j], "r": round(float(r[i, j]), 4)})
+    return out
+
+
+@dataclass
+class FitOptions:
+    """Settings of one fit; every field maps to a `envelope fit` option and a study-file key."""
+
+    method: str = "pointprocess"
+    n_background: int = 10_000
+    variables: list | None = None
+    block_km: float | None = None
+    n_folds: int = 5
+    cv_scheme: str = "block"            # "block" (spatial) or "random" (for comparison only)
+    threshold_rule: object = "max-sss"
+    seed: int = 0
+    max_uncertainty_m: float | None = None
+    years: tuple | None = None
+    thin_km: float | None = None
+    x_column: str | None = None
+    y_column: str | None = None
+    records_crs: str | None = None
+    background_buffer_km: float | None = None
+    permutation_repeats: int = 3
+
+
+def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, mask=None,
+              climate_paths=(), progress=None) -> FitResult:
+    """Clean records, draw background, cross-validate, fit the final model and describe it.
+
+    Parameters
+    ----------
+    records_path : path-like
+        Occurrence table (Darwin Core CSV/TSV or named x/y columns).
+    climate : DataArray (variable, y, x)
+        Baseline climate stack (opened with :func:`envelope.io.rasters.open_climate`).
+    options : FitOptions
+    bias, mask : DataArray (y, x), optional
+        Sampling-effort raster for the background draw; area the background may come from.
+    climate_paths : sequence of path-like
+        The files behind ``climate``, for provenance checksums.
+    progress : callable(stage: str, done: int, total: int), optional
+
+    Returns
+    -------
+    FitResult
+
+    References
+    ----------
+    Fithian & Hastie (2013); Roberts et al. (2017); Liu et al. (2005, 2013); see docs/methods.md.
+    """
+    from envelope import evaluation
+    from envelope.background import sample_background
+    from envelope.io.occurrences import read_occurrences
+    from envelope.kernels.mess import reference_from_training
+    from envelope.kernels.thresholds import choose_threshold
+    from envelope.models import response_curves
+    from envelope.occurrences import clean_occurrences, values_at
+
+    opt = options or FitOptions()
+    notes: list[str] = []
+    report = progress or (lambda stage, done, total: None)
+    if opt.variables:
+        from envelope.projection import match_variables
+
+        climate = match_variables(climate, opt.variables, source="--climate")
+    names = [str(v) for v in climate["variable"].values]
+    units = ([str(u) for u in climate["units"].values] if "units" in climate.coords else [""] * len(names))
+
+    table = read_occurrences(records_path, x_column=opt.x_column, y_column=opt.y_column, crs=opt.records_crs)
+    records = clean_occurrences(table, climate, crs=opt.records_crs, max_uncertainty_m=opt.max_uncertainty_m,
+                                years=opt.years, thin_km=opt.thin_km)
+    n_pres = len(records.table)
+    if n_pres < MIN_RECORDS:
+        raise InputError(f"{records_path}: only {n_pres} usable records after cleaning "
+                         f"(at least {MIN_RECORDS} are needed to fit a model)")
+    if n_pres < FEW_RECORDS:
+        msg = (f"only {n_pres} usable records: cross-validated skill will be very uncertain "
+               f"(fewer than {FEW_RECORDS})")
+        log.warning(msg)
+        notes.append(msg)
+    report("records", 1, 1)
+
+    X_pres = values_at(climate, records.table["row"].to_numpy(), records.table["col"].to_numpy())
+    background = sample_background(climate, opt.n_background, seed=opt.seed, bias=bias, mask=mask,
+                                   buffer_km=opt.background_buffer_km, records=records, with_values=False)
+    X_bg = values_at(climate, background["row"].to_numpy(), background["col"].to_numpy())
+    if len(background) < opt.n_background:
+        notes.append(f"only {len(background)} background cells available (asked for {opt.n_background})")
+    check_variables(np.vstack([X_pres, X_bg]), names)
+    report("background", 1, 1)
+
+    X = np.vstack([X_pres, X_bg])
+    y = np.r_[np.ones(len(X_pres), dtype=int), np.zeros(len(X_bg), dtype=int)]
+    px = np.r_[records.table["x"].to_numpy(), background["x"].to_numpy()]
+    py = np.r_[records.table["y"].to_numpy(), background["y"].to_numpy()]
+    crs = climate.rio.crs
+
+    block_info = {}
+    if opt.cv_scheme == "random":
+        folds = evaluation.random_folds(len(y), opt.n_folds, seed=opt.seed, stratify=y)
+        block_km = None
+    elif opt.cv_scheme == "block":
+        if opt.block_km is None:
+            block_km, block_info = evaluation.default_block_km(px[y == 0], py[y == 0], X_bg, crs=crs, names=names,
+                                                               seed=opt.seed)
+            block_info = dict(block_info, rule="default (from the predictors' spatial autocorrelation)")
+        else:
+            block_km = float(opt.block_km)
+            block_info = {"rule": "given (--blocks-km)"}
+        blocks = evaluation.spatial_blocks(px, py, crs=crs, block_km=block_km)
+        folds = evaluation.assign_block_folds(blocks, y == 1, opt.n_folds, seed=opt.seed)
+    else:
+        raise InputError(f"cv scheme {opt.cv_scheme!r} is not known; expected 'block' or 'random'")
+
+    def make():
+        return build_estimator(opt.method, opt.seed)
+
+    per_fold, cv = evaluation.cross_validate(
+        make, X, y, folds, threshold_rule=opt.threshold_rule,
+        fit_params=_group_params(opt.method, folds),
+        progress=lambda k: report("cross-validation", k + 1, opt.n_folds))
+
+    estimator = make()
+    estimator.fit(X, y, **_group_params(opt.method, folds))
+    report("final fit", 1, 1)
+    scores = estimator.predict_proba(X)[:, 1]
+    threshold, rule = choose_threshold(opt.threshold_rule, scores[y == 1], scores[y == 0])
+
+    reference = reference_from_training(X_bg)
+    ranges = {n: (float(np.nanmin(X[:, j])), float(np.nanmax(X[:, j]))) for j, n in enumerate(names)}
+    pct = np.nanpercentile(X_bg, reference.percentile_levels, axis=0)
+    variables_meta = [{"name": n, "units": u, "min": ranges[n][0], "max": ranges[n][1],
+                       "percentiles": dict(zip([f"p{lv:g}" for lv in reference.percentile_levels],
+                                               [float(v) for v in pct[:, j]]))}
+                      for j, (n, u) in enumerate(zip(names, units))]
+    importance = permutation_importance_auc(estimator, X, y, names, repeats=opt.permutation_repeats,
+                                            seed=opt.seed)
+    curves = response_curves(estimator, X_bg, names, n_points=50)
+    curves_json = {k: {"value": np.asarray(v["value"]).tolist(), "suitability": np.asarray(v["suitability"]).tolist()}
+                   for k, v in curves.items()}
+    report("diagnostics", 1, 1)
+
+    inputs = {str(records_path): file_sha256(records_path)}
+    for p in climate_paths:
+        inputs[str(p)] = file_sha256(p)
+    cv_block = {"scheme": opt.cv_scheme, "n_folds": opt.n_folds, "block_km": block_km,
+                "block_size_rule": block_info, **{k: _num(v) for k, v in cv.items()}}
+    transform = climate.rio.transform()
+    metadata = {
+        "variables": variables_meta,
+        "threshold": {"value": float(threshold), "rule": rule},
+        "cv": cv_block,
+        "mess_reference": reference.to_dict(),
+        "grid": {"crs": crs.to_string() if crs is not None else None,
+                 "resolution": [abs(transform.a), abs(transform.e)],
+                 "shape": [climate.sizes["y"], climate.sizes["x"]]},
+        "provenance": {"inputs": inputs, "seed": opt.seed, "software": software_versions(),
+                       "records_dropped": dict(records.dropped)},
+    }
+    summary = {
+        "n_presences": int(n_pres),
+        "n_background": int(len(X_bg)),
+        "method": opt.method,
+        "variables": names,
+        "threshold": {"value": float(threshold), "rule": rule},
+        "cv": cv_block,
+        "records": {"read": int(records.n_read), "kept": int(n_pres), "dropped": dict(records.dropped)},
+        "collinear_pairs": collinear_pairs(X_bg, names),
+        "permutation_importance": importance,
+        "response_curves": curves_json,
+        "training_range": {n: list(r) for n, r in ranges.items()},
+        "notes": notes,
+        "seed": opt.seed,
+    }
+    return FitResult(estimator=estimator, metadata=metadata, summary=summary, per_fold=per_fold, warnings=notes)
+
+
+def _num(v):
+    if isinstance(v, (np.floating, float)):
+        return None if not np.isfinite(v) else float(v)
+    if isinstance(v, (np.integer,)):
+        return int(v)
+    return v
+
+
+def build_estimator(method: str, seed: int = 0):
+    """The estimator behind each ``--method`` name, with the pipeline's defaults.
+
+    The point-process model chooses its L1 penalty by cross-validation over the spatial
+    folds it is given (``C="cv"``); the ensemble weights the point-process model, boosted
+    trees and the down-sampled forest by their spatially cross-validated AUC.
+    """
+    from envelope.models import make_estimator
+
+    if method == "pointprocess":
+        return make_estimator("pointprocess", C="cv", random_state=seed)
+    if method == "envelope":
+        return make_estimator("envelope")
+    if method in ("brt", "forest"):
+        return make_estimator(method, random_state=seed)
+    if method == "ensemble":
+        members = [("pointprocess", build_estimator("pointprocess", seed)),
+                   ("brt", build_estimator("brt", seed)),
+                   ("forest", build_estimator("forest", seed))]
+        return make_estimator("ensemble", members=members)
+    raise InputError(f"--method: got {method!r}; expected pointprocess, envelope, brt, forest or ensemble")
+
+
+def _group_params(method: str, folds) -> dict:
+    """The point-process model chooses its penalty by CV over the same spatial folds."""
+    return {"groups": folds} if method in ("pointprocess", "ensemble") else {}
+
+
+def permutation_importance_auc(estimator, X, y, names, *, repeats=3, seed=0) -> dict:
+    """Drop in training AUC when one variable's values are permuted (Breiman 2001 idea).
+
+    Uses :func:`sklearn.inspection.permutation_importance` with the ROC-AUC scorer; values
+    are mean drops over ``repeats`` permutations.
+    """
+    from sklearn.inspection import permutation_importance
+
+    res = permutation_importance(estimator, X, y, scoring="roc_auc", n_repeats=repeats, random_state=seed)
+    return {n: round(float(m), 5) for n, m in zip(names, res.importances_mean)}
+
+
+def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overwrite=False) -> dict:
+    """Write the model file, the summary JSON and the per-fold CSV, all or nothing.
+
+    The summary defaults to ``<model stem>.fit.json`` beside the model; the per-fold table is
+    ``<summary stem>.folds.csv`` beside the summary.
+    """
+    import json
+
+    from envelope.io.atomic import atomic_outputs, check_writable
+    from envelope.io.modelfile import save_model
+
+    model_path = Path(model_path)
+    summary_path = Path(summary_path) if summary_path else model_path.with_name(model_path.stem + ".fit.json")
+    folds_path = summary_path.with_name(summary_path.name.removesuffix(".json") + ".folds.csv")
+    for p in (model_path, summary_path, folds_path):
+        check_writable(p, overwrite)
+    with atomic_outputs([summary_path, folds_path], overwrite=overwrite) as (tmp_summary, tmp_folds):
+        tmp_summary.write_text(json.dumps(result.summary, indent=2, default=_num))
+        result.per_fold.to_csv(tmp_folds, index=False)
+        # the model is written last inside the block: if it fails, summary and folds vanish too
+        save_model(model_path, result.estimator, result.metadata, overwrite=overwrite)
+    return {"model": str(model_path), "summary": str(summary_path), "folds": str(folds_path)}

@@ -1,0 +1,230 @@
+"""Reading and writing 12-month climate stacks (month, y, x): 12-band GeoTIFF or NetCDF with a month/time axis."""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from pathlib import Path
+
+import numpy as np
+import rioxarray  # noqa: F401  (registers the .rio accessor)
+import xarray as xr
+
+from envelope.errors import InputError
+
+__all__ = ["open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "kind_of_units"]
+
+log = logging.getLogger(__name__)
+
+TEMPERATURE = "temperature"
+PRECIPITATION = "precipitation"
+
+_CELSIUS = {"degc", "°c", "c", "celsius", "deg_c", "degrees_c", "degree_c", "degrees_celsius",
+            "degree_celsius", "degrees c", "deg c", "oc"}
+_KELVIN = {"k", "kelvin", "degk", "deg_k"}
+_MM = {"mm", "millimeter", "millimeters", "millimetre", "millimetres", "mm/month", "mm month-1",
+       "mm/mon", "kg m-2", "kg/m2", "kg m**-2"}
+
+
+_GEOTIFF = {".tif", ".tiff"}
+_NETCDF = {".nc", ".nc4", ".netcdf", ".cdf"}
+_Y_NAMES = ("y", "lat", "latitude", "rlat", "northing")
+_X_NAMES = ("x", "lon", "longitude", "rlon", "easting")
+
+
+def kind_of_units(units: str) -> str | None:
+    """``"temperature"`` for °C or kelvin, ``"precipitation"`` for mm per month, else None."""
+    u = (units or "").strip().lower()
+    if u in _CELSIUS or u in _KELVIN:
+        return TEMPERATURE
+    if u in _MM:
+        return PRECIPITATION
+    return None
+
+
+def _check_units(da, path, expect):
+    units = str(da.attrs.get("units", "") or "").strip()
+    if expect is None or not units:
+        # no units in the file: the caller's stated units (°C, mm) are assumed
+        return da, units
+    u = units.lower()
+    if expect == TEMPERATURE:
+        if u in _CELSIUS:
+            return da, "degC"
+        if u in _KELVIN:
+            log.info("%s: converting kelvin to degC", path)
+            out = da - np.float32(273.15)
+            out.attrs = dict(da.attrs)
+            return out, "degC"
+        raise InputError(f"{path}: units {units!r}; expected a temperature in degC (or K)")
+    if u in _MM:
+        return da, "mm"
+    raise InputError(f"{path}: units {units!r}; expected monthly precipitation totals in mm "
+                     "(convert rates such as kg m-2 s-1 to mm per month first)")
+
+
+def _open_geotiff(path, chunks):
+    import rasterio
+    import rioxarray
+
+    try:
+        with rasterio.open(path) as src:
+            count, crs = src.count, src.crs
+            units = (src.tags(1).get("units") or (src.units[0] if src.units else "")
+                     or src.tags().get("units", "")) if count else ""
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", FutureWarning)  # rioxarray's chunk-tuple deprecation
+            da = rioxarray.open_rasterio(path, chunks=chunks, masked=True, lock=False)
+    except rasterio.errors.RasterioIOError as exc:
+        raise InputError(f"{path}: not a readable GeoTIFF ({str(exc).splitlines()[0]})") from None
+    if crs is None:
+        raise InputError(f"{path}: no CRS in the file; expected a georeferenced GeoTIFF")
+    if count != 12:
+        raise InputError(f"{path}: {count} bands; expected 12 monthly bands (January ... December)")
+    da = da.rename(band="month").assign_coords(month=np.arange(1, 13))
+    da.attrs["units"] = units or ""
+    return da
+
+
+def _find_dim(da, candidates, what, path):
+    found = next((d for d in da.dims if str(d).lower() in candidates), None)
+    if found is None:
+        raise InputError(f"{path}: dims {da.dims}; expected a {what} dim named one of {', '.join(candidates)}")
+    return found
+
+
+def _pick_variable(ds, path, name, variable):
+    if variable is not None:
+        if variable not in ds.data_vars:
+            raise InputError(f"{path}: no variable {variable!r}; found {', '.join(map(str, ds.data_vars))}")
+        return ds[variable]
+    gridded = [v for v in ds.data_vars if ds[v].ndim >= 3]
+    if name in gridded:
+        return ds[name]
+    if len(gridded) == 1:
+        return ds[gridded[0]]
+    raise InputError(f"{path}: {len(gridded)} gridded variables ({', '.join(map(str, gridded)) or 'none'}); "
+                     f"expected one, or one called {name!r}")
+
+
+def _open_netcdf(path, chunks, name, variable):
+    try:
+        ds = xr.open_dataset(path, chunks=chunks, mask_and_scale=True, decode_coords="all",
+                             decode_times=xr.coders.CFDatetimeCoder(use_cftime=None))
+    except Exception as exc:  # netCDF4/h5netcdf raise several unrelated types
+        raise InputError(f"{path}: cannot read as NetCDF ({str(exc).splitlines()[0] if str(exc) else type(exc).__name__})") from None
+    da = _pick_variable(ds, path, name, variable)
+    xdim = _find_dim(da, _X_NAMES, "x", path)
+    ydim = _find_dim(da, _Y_NAMES, "y", path)
+    geographic = str(xdim).lower() in ("lon", "longitude") or str(ydim).lower() in ("lat", "latitude")
+    mdim = "month" if "month" in da.dims else ("time" if "time" in da.dims else None)
+    if mdim is None or ydim not in da.dims or xdim not in da.dims:
+        raise InputError(f"{path}: dims {da.dims}; expected a month or time dim and y/x or lat/lon")
+    extra = [d for d in da.dims if d not in (ydim, xdim, mdim)]
+    for d in extra:
+        if da.sizes[d] != 1:
+            raise InputError(f"{path}: extra dim {d!r} of size {da.sizes[d]}; expected only month, y, x")
+    da = da.squeeze(extra, drop=True)
+    if da.sizes[mdim] != 12:
+        raise InputError(f"{path}: {da.sizes[mdim]} steps along {mdim!r}; expected 12 months "
+                         "(average a multi-year series into a monthly climatology first)")
+    if mdim == "time":
+        try:
+            months = np.asarray(da["time"].dt.month.values, dtype=int)
+        except (AttributeError, TypeError):
+            raise InputError(f"{path}: time values are not dates; expected 12 monthly dates") from None
+        if sorted(months) != list(range(1, 13)):
+            raise InputError(f"{path}: time steps fall in months {sorted(set(months.tolist()))}; "
+                             "expected each month 1..12 once")
+        da = da.drop_vars("time").rename(time="month").assign_coords(month=months).sortby("month")
+    else:
+        da = da.assign_coords(month=np.arange(1, 13))
+    da = da.rename({ydim: "y", xdim: "x"})
+    try:
+        crs = da.rio.crs
+    except Exception:  # noqa: BLE001  an undecodable grid mapping is treated as absent
+        crs = None
+    if crs is None:
+        if not geographic:
+            raise InputError(f"{path}: projected x/y but no grid mapping; expected a CF grid_mapping")
+        crs = "EPSG:4326"
+    return da.rio.write_crs(crs)
+
+
+def _normalise(da):
+    """North-up rows and -180..180 longitudes, the project-wide grid conventions."""
+    crs = da.rio.crs
+    if da.sizes["y"] > 1 and float(da["y"][0]) < float(da["y"][-1]):
+        da = da.isel(y=slice(None, None, -1))
+    if crs is not None and crs.is_geographic and float(da["x"].max()) > 180.0:
+        da = da.assign_coords(x=((da["x"].values + 180.0) % 360.0) - 180.0).sortby("x")
+    return da.rio.write_crs(crs)
+
+
+def open_monthly(path, *, name: str, variable: str | None = None, units: str | None = None,
+                 chunks="auto") -> xr.DataArray:
+    """Open a 12-month climate stack as a lazy DataArray (month, y, x).
+
+    Parameters
+    ----------
+    path : str or Path
+        A GeoTIFF with 12 bands (band 1 = January) or a NetCDF file whose variable has a
+        ``month`` dim of 12 or a ``time`` dim of 12 dates (months taken from the dates).
+    name : str
+        Role of the stack (``"tmin"``, ``"prec"`` ...): the array's name, and the NetCDF
+        variable picked when the file holds several.
+    variable : str, optional
+        NetCDF variable to read, when it is not called ``name``.
+    units : {"temperature", "precipitation"}, optional
+        What the stack must hold. Temperatures in °C pass, kelvin is converted to °C;
+        precipitation must be monthly totals in mm. Other units are an error; a stack without
+        units is taken to be in °C / mm as the caller states.
+    chunks : default "auto"
+        Dask chunks for y/x; the month axis is one chunk.
+
+    Returns
+    -------
+    DataArray (month, y, x), float32, NaN nodata, CRS attached, north-up, longitudes in
+    -180..180; coordinate ``month`` = 1..12; ``attrs["units"]`` ("" if unknown) and
+    ``attrs["source"]`` (the file).
+
+    Raises
+    ------
+    InputError
+        Naming the file: not found, unreadable, not 12 months, or wrong units.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: file not found ({name})")
+    suffix = path.suffix.lower()
+    if suffix in _GEOTIFF:
+        da = _open_geotiff(path, chunks)
+    elif suffix in _NETCDF:
+        da = _open_netcdf(path, {} if chunks == "auto" else chunks, name, variable)
+    else:
+        raise InputError(f"{path}: suffix {path.suffix!r}; expected a GeoTIFF (.tif) or NetCDF (.nc) file")
+    da = _normalise(da.transpose("month", "y", "x"))
+    da, unit_text = _check_units(da, path, units)
+    crs = da.rio.crs
+    keep = [c for c in da.coords if c in ("month", "y", "x")]
+    da = da.drop_vars([c for c in da.coords if c not in keep]).astype(np.float32)
+    if da.chunks is not None:
+        da = da.chunk({"month": -1})
+    da = da.rio.write_crs(crs) if crs is not None else da
+    da.name = name
+    da.attrs = {"units": unit_text, "source": str(path)}
+    return da
+
+
+def write_monthly(da: xr.DataArray, path, *, overwrite: bool = False, tags: dict | None = None) -> Path:
+    """Write a (month, y, x) stack as 12 bands described ``M01`` ... ``M12`` (GeoTIFF or NetCDF by suffix)."""
+    from envelope.io.rasters import write_raster
+
+    crs = da.rio.crs
+    stack = da.rename(month="variable").assign_coords(
+        variable=[f"M{int(m):02d}" for m in da["month"].values])
+    stack = stack.assign_coords(units=("variable", [str(da.attrs.get("units", ""))] * 12))
+    if crs is not None:
+        stack = stack.rio.write_crs(crs)
+    write_raster(stack, path, overwrite=overwrite, tags=tags)
+    return Path(path)

@@ -1,0 +1,147 @@
+"""`envelope delta`: single and batch forms, the scenario table, and bad inputs (exit 2, nothing written)."""
+
+import csv
+
+import numpy as np
+import pytest
+import rasterio
+import rioxarray  # noqa: F401
+import xarray as xr
+from click.testing import CliRunner
+
+from envelope.cli.main import cli
+from envelope.scenarios import read_scenarios
+
+# Source: REFERENCES item 5 inputs (hand-made 12-month series), used as the fine baseline.
+TMIN = np.array([-10, -8, -4, 0, 5, 10, 12, 11, 6, 1, -4, -8], dtype=float)
+TMAX = TMIN + np.array([8, 9, 10, 11, 12, 13, 13, 12, 11, 10, 9, 8], dtype=float)
+PREC = np.array([100, 90, 20, 10, 5, 5, 5, 10, 20, 30, 60, 110], dtype=float)
+
+
+def write_baseline(path, series, units):
+    data = np.broadcast_to(np.asarray(series, float)[:, None, None], (12, 4, 6)).astype("float32")
+    da = xr.DataArray(data, dims=("band", "y", "x"),
+                      coords={"band": np.arange(1, 13), "y": 10.0 - 0.25 * (np.arange(4) + 0.5),
+                              "x": -179.0 + 0.25 * (np.arange(6) + 0.5)}).rio.write_crs("EPSG:4326")
+    da.rio.to_raster(path)
+    with rasterio.open(path, "r+") as dst:
+        for i in range(1, 13):
+            dst.update_tags(i, units=units)
+    return str(path)
+
+
+def write_model(path, change, *, months=12, ratio=False, seed=0):
+    """A global 5-degree model climatology on 0..360 longitudes with ascending latitude."""
+    rng = np.random.default_rng(seed)
+    lat, lon = np.arange(-87.5, 90, 5.0), np.arange(2.5, 360, 5.0)
+    hist = rng.uniform(10, 40, size=(months, lat.size, lon.size))
+    data = hist * change if ratio else hist + change
+    ds = xr.Dataset({"v": (("month", "lat", "lon"), data.astype("float32"))},
+                    coords={"month": np.arange(1, months + 1), "lat": lat, "lon": lon})
+    ds.to_netcdf(path)
+    hist_path = str(path).replace(".nc", "_hist.nc")
+    xr.Dataset({"v": (("month", "lat", "lon"), hist.astype("float32"))}, coords=ds.coords).to_netcdf(hist_path)
+    return hist_path, str(path)
+
+
+def test_single_form_constant_anomaly_on_a_0_360_model(tmp_path):
+    # Analytic: a constant +2 degC change interpolates to +2 everywhere (Hay et al. 2000 method),
+    # including across the 0/360 seam of the model grid (baseline lies at -179 degrees).
+    base = write_baseline(tmp_path / "tmin.tif", TMIN, "degC")
+    hist, fut = write_model(tmp_path / "fut.nc", 2.0)
+    out = tmp_path / "tmin_future.tif"
+    result = CliRunner().invoke(cli, ["delta", "--baseline", base, "--model-historical", hist,
+                                      "--model-future", fut, "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    assert "additive" in result.output
+    with rasterio.open(out) as src:
+        assert list(src.descriptions) == [f"M{m:02d}" for m in range(1, 13)]
+        data = src.read()
+    np.testing.assert_allclose(data, (TMIN + 2.0)[:, None, None] * np.ones((12, 4, 6)), atol=1e-4)
+
+
+def test_single_form_ratio_is_chosen_from_mm_units(tmp_path):
+    # Analytic: a constant ratio of 1.1 (all months above the 1 mm floor) scales the baseline.
+    base = write_baseline(tmp_path / "prec.tif", PREC, "mm")
+    hist, fut = write_model(tmp_path / "fut.nc", 1.1, ratio=True)
+    out = tmp_path / "prec_future.tif"
+    result = CliRunner().invoke(cli, ["delta", "--baseline", base, "--model-historical", hist,
+                                      "--model-future", fut, "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    with rasterio.open(out) as src:
+        np.testing.assert_allclose(src.read(1), 110.0, rtol=1e-5)
+
+
+def _batch_setup(tmp_path, swap=False):
+    bases = {"tmin": write_baseline(tmp_path / "b_tmin.tif", TMAX if swap else TMIN, "degC"),
+             "tmax": write_baseline(tmp_path / "b_tmax.tif", TMIN if swap else TMAX, "degC"),
+             "prec": write_baseline(tmp_path / "b_prec.tif", PREC, "mm")}
+    models = tmp_path / "models"
+    models.mkdir()
+    rows = []
+    for name, dt, rp in (("p1-mA-2050", 1.0, 1.1), ("p1-mB-2050", 2.0, 0.9)):
+        for var in ("tmin", "tmax", "prec"):
+            hist, fut = write_model(models / f"{name}_{var}.nc", rp if var == "prec" else dt, ratio=var == "prec")
+            rows.append([name, "p1", name.split("-")[1], 2050, var,
+                         f"models/{hist.rsplit('/', 1)[1]}", f"models/{fut.rsplit('/', 1)[1]}"])
+    table = tmp_path / "models.csv"
+    with open(table, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["name", "pathway", "climate_model", "horizon", "variable", "historical", "future"])
+        w.writerows(rows)
+    args = ["delta", "--table", str(table)] + sum((["--baseline", f"{k}={v}"] for k, v in bases.items()), [])
+    return args
+
+
+def test_batch_with_bioclim_writes_a_scenario_table_project_can_read(tmp_path):
+    # Analytic + REFERENCES item 5: +dt on tmin and tmax shifts BIO1 (6.166667) by dt and
+    # leaves BIO2 (10.5); a ratio r scales BIO12 (465) by r.
+    out_dir = tmp_path / "scen"
+    out_dir.mkdir()
+    result = CliRunner().invoke(cli, _batch_setup(tmp_path) + ["--out-dir", str(out_dir), "--bioclim"])
+    assert result.exit_code == 0, result.output
+    scenarios = read_scenarios(out_dir / "scenarios.csv")
+    assert [s.name for s in scenarios] == ["p1-mA-2050", "p1-mB-2050"]
+    assert [s.climate_model for s in scenarios] == ["mA", "mB"] and scenarios[0].horizon == 2050
+    for sc, dt, r in zip(scenarios, (1.0, 2.0), (1.1, 0.9)):
+        with rasterio.open(sc.path) as src:
+            names = list(src.descriptions)
+            np.testing.assert_allclose(src.read(names.index("BIO1") + 1), 6.166667 + dt, atol=1e-4)
+            np.testing.assert_allclose(src.read(names.index("BIO2") + 1), 10.5, atol=1e-4)
+            np.testing.assert_allclose(src.read(names.index("BIO12") + 1), 465 * r, rtol=1e-5)
+    with open(out_dir / "monthly.csv") as fh:
+        monthly = list(csv.DictReader(fh))
+    assert len(monthly) == 6 and (out_dir / monthly[0]["path"]).is_file()
+
+
+def test_batch_stops_before_writing_on_swapped_baselines(tmp_path):
+    out_dir = tmp_path / "scen"
+    out_dir.mkdir()
+    result = CliRunner().invoke(cli, _batch_setup(tmp_path, swap=True) + ["--out-dir", str(out_dir), "--bioclim"])
+    assert result.exit_code == 2 and "tmin > tmax in 288 cell-months" in result.output
+    assert not any(out_dir.rglob("*.*"))
+
+
+def test_model_with_eleven_months_and_bad_table(tmp_path):
+    base = write_baseline(tmp_path / "tmin.tif", TMIN, "degC")
+    hist, fut = write_model(tmp_path / "fut.nc", 2.0, months=11)
+    out = tmp_path / "o.tif"
+    result = CliRunner().invoke(cli, ["delta", "--baseline", base, "--model-historical", hist,
+                                      "--model-future", fut, "--out", str(out)])
+    assert result.exit_code == 2 and "fut_hist.nc: 11 steps along 'month'; expected 12" in result.output
+    assert not out.exists()
+    table = tmp_path / "t.csv"
+    table.write_text("name,pathway,horizon\nx,p1,2050\n")
+    result = CliRunner().invoke(cli, ["delta", "--table", str(table), "--baseline", f"tmin={base}",
+                                      "--out-dir", str(tmp_path)])
+    assert result.exit_code == 2 and "column 'climate_model' missing" in result.output
+
+
+@pytest.mark.parametrize("extra,phrase", [
+    (["--out-dir", "x"], "belong to the batch form"),
+    ([], "single form needs"),
+])
+def test_form_mixups(tmp_path, extra, phrase):
+    base = write_baseline(tmp_path / "tmin.tif", TMIN, "degC")
+    result = CliRunner().invoke(cli, ["delta", "--baseline", base, *extra])
+    assert result.exit_code == 2 and phrase in result.output

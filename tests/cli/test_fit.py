@@ -1,0 +1,54 @@
+"""`envelope fit` from the command line: outputs, contract keys, bad input."""
+
+import json
+
+import pytest
+from click.testing import CliRunner
+
+from envelope.cli.main import cli
+from envelope.demo_data import demo_dir
+
+DEMO = demo_dir()
+BASE = ["fit", "--presences", str(DEMO / "presences.csv"), "--climate", str(DEMO / "baseline.tif"),
+        "--background", "1000", "--folds", "3", "--method", "envelope"]
+
+
+def test_fit_writes_model_summary_and_folds(tmp_path):
+    out = tmp_path / "m.envm"
+    result = CliRunner().invoke(cli, BASE + ["--out", str(out), "--summary", str(tmp_path / "fit.json")])
+    assert result.exit_code == 0, result.output
+    assert out.exists() and (tmp_path / "fit.folds.csv").exists()
+    summary = json.loads((tmp_path / "fit.json").read_text())
+    for key in ("n_presences", "n_background", "method", "variables", "threshold", "cv"):
+        assert key in summary
+    assert summary["method"] == "envelope" and summary["n_background"] == 1000
+    assert "duplicate cell" in result.output  # the record-cleaning table
+
+    again = CliRunner().invoke(cli, BASE + ["--out", str(out)])
+    assert again.exit_code == 2 and "--overwrite" in again.output
+
+    inspect = CliRunner().invoke(cli, ["inspect", str(out), "--json"])
+    assert inspect.exit_code == 0
+
+
+@pytest.mark.parametrize("extra, phrase", [
+    (["--variables", "bio1,nope"], "'nope'"),
+    (["--threshold-rule", "best"], "not a rule"),
+    (["--threshold-rule", "1.5"], "0..1"),
+])
+def test_bad_input_exit_2_and_no_model(tmp_path, extra, phrase):
+    out = tmp_path / "m.envm"
+    result = CliRunner().invoke(cli, BASE + ["--out", str(out)] + extra)
+    assert result.exit_code == 2
+    assert phrase in result.output
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_presences_without_usable_rows(tmp_path):
+    bad = tmp_path / "bad.csv"
+    bad.write_text("decimalLongitude,decimalLatitude\nabc,def\n,\n")
+    result = CliRunner().invoke(cli, ["fit", "--presences", str(bad), "--climate", str(DEMO / "baseline.tif"),
+                                      "--out", str(tmp_path / "m.envm")])
+    assert result.exit_code == 2
+    assert "bad.csv" in result.output
+    assert not (tmp_path / "m.envm").exists()

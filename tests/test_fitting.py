@@ -1,0 +1,111 @@
+"""The fit pipeline on the fictional demo study: virtual-species recovery and bad input."""
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.stats import spearmanr
+from sklearn.metrics import roc_auc_score
+
+from envelope.demo_data import demo_dir
+from envelope.errors import InputError
+from envelope.fitting import FitOptions, collinear_pairs, fit_model
+from envelope.io.rasters import open_climate
+from envelope.occurrences import cells_of, values_at
+
+DEMO = demo_dir()
+
+
+@pytest.fixture(scope="module")
+def stack():
+    return open_climate(DEMO / "baseline.tif")
+
+
+def _truth_scores(result, stack):
+    """Model suitability at the demo's truth-sample cells."""
+    truth = pd.read_csv(DEMO / "truth_sample.csv")
+    rows, cols, _ = cells_of(stack, truth["lon"].to_numpy(), truth["lat"].to_numpy())
+    X = values_at(stack, rows, cols)
+    keep = np.isfinite(X).all(axis=1)
+    return truth[keep], result.estimator.predict_proba(X[keep])[:, 1]
+
+
+@pytest.fixture(scope="module")
+def fitted(stack):
+    opts = FitOptions(n_background=4000, n_folds=4, seed=1, max_uncertainty_m=2000, permutation_repeats=1)
+    return {m: fit_model(DEMO / "presences.csv", stack, options=FitOptions(**{**opts.__dict__, "method": m}))
+            for m in ("pointprocess", "envelope")}
+
+
+def test_virtual_species_recovered_by_default_method(fitted, stack):
+    # Analytic: the demo species' true suitability is known (envelope.demo_data.NICHE); the
+    # issue's targets are AUC >= 0.85 against true presence/absence and Spearman >= 0.8.
+    truth, score = _truth_scores(fitted["pointprocess"], stack)
+    assert roc_auc_score(truth["present"], score) >= 0.85
+    assert spearmanr(score, truth["true_suitability"]).statistic >= 0.8
+
+
+def test_envelope_method_does_worse(fitted, stack):
+    # Source: Elith et al. (2006) Ecography 29: 129-151 -- envelope (BIOCLIM-type) models
+    # ranked below regression-based and machine-learning methods.
+    truth, s_pp = _truth_scores(fitted["pointprocess"], stack)
+    _, s_env = _truth_scores(fitted["envelope"], stack)
+    assert roc_auc_score(truth["present"], s_env) < roc_auc_score(truth["present"], s_pp)
+
+
+def test_summary_keys_and_drops(fitted):
+    s = fitted["pointprocess"].summary
+    for key in ("n_presences", "n_background", "method", "variables", "threshold", "cv"):
+        assert key in s
+    for key in ("auc_mean", "auc_sd", "tss_mean", "boyce_mean", "omission_p10_mean"):
+        assert key in s["cv"]
+    assert s["threshold"]["rule"] == "max-sss"
+    # the demo's records carry 8 absent, 3 malformed and 15 imprecise rows by construction
+    assert s["records"]["dropped"]["absent"] == 8
+    assert s["records"]["dropped"]["imprecise"] == 15
+    assert s["records"]["read"] - sum(s["records"]["dropped"].values()) == s["n_presences"]
+    assert s["cv"]["block_km"] > 0
+    assert set(s["response_curves"]) == set(s["variables"])
+
+
+def test_collinear_pairs_match_numpy():
+    # Source: numpy.corrcoef; |r| > 0.7 is the Dormann et al. (2013) rule of thumb
+    rng = np.random.default_rng(0)
+    a = rng.normal(size=500)
+    X = np.c_[a, a + 0.1 * rng.normal(size=500), rng.normal(size=500)]
+    pairs = collinear_pairs(X, ["a", "b", "c"])
+    assert [(p["a"], p["b"]) for p in pairs] == [("a", "b")]
+    assert pairs[0]["r"] == pytest.approx(np.corrcoef(X[:, 0], X[:, 1])[0, 1], abs=1e-4)
+
+
+def _records(tmp_path, lons, lats):
+    p = tmp_path / "few.csv"
+    pd.DataFrame({"decimalLongitude": lons, "decimalLatitude": lats}).to_csv(p, index=False)
+    return p
+
+
+def test_fewer_than_five_records_is_an_error(tmp_path, stack):
+    demo = pd.read_csv(DEMO / "presences.csv").iloc[:4]  # four distinct, clean demo records
+    p = _records(tmp_path, demo["decimalLongitude"], demo["decimalLatitude"])
+    with pytest.raises(InputError, match="only 4 usable records"):
+        fit_model(p, stack, options=FitOptions(n_background=500, n_folds=2, block_km=20))
+
+
+def test_constant_variable_is_an_error(tmp_path, stack):
+    flat = stack.copy()
+    flat = flat.where(flat["variable"] != "bio17", 5.0).where(np.isfinite(stack))
+    p = DEMO / "presences.csv"
+    with pytest.raises(InputError, match="'bio17' is constant"):
+        fit_model(p, flat, options=FitOptions(n_background=500, n_folds=2))
+
+
+def test_missing_variable_is_named(stack):
+    with pytest.raises(InputError, match="'bio99'"):
+        fit_model(DEMO / "presences.csv", stack, options=FitOptions(variables=["bio1", "bio99"]))
+
+
+def test_fewer_than_fifteen_records_warns(tmp_path, stack):
+    demo = pd.read_csv(DEMO / "presences.csv").iloc[:12]
+    p = _records(tmp_path, demo["decimalLongitude"], demo["decimalLatitude"])
+    result = fit_model(p, stack, options=FitOptions(method="envelope", n_background=500, n_folds=2, block_km=150,
+                                                    permutation_repeats=1))
+    assert any("fewer than 15" in n for n in result.summary["notes"])
