@@ -1,0 +1,407 @@
+"""Which climatic gains a species can reach: habitat-gated dispersal through the transient climate."""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import xarray as xr
+
+from envelope.errors import InputError
+from envelope.kernels import dispersal
+from envelope.kernels.spread import SpreadOperator
+from envelope.kernels.transient import ClimatePath, run_transient
+
+log = logging.getLogger(__name__)
+
+#: Reach classes (uint8 codes) and their meanings, stored in the raster's metadata.
+REACH_CLASSES = {
+    0: "absent",             # suitable neither now nor at the horizon
+    1: "lost",               # suitable now, not at the horizon
+    2: "stable",             # suitable now and at the horizon
+    3: "gained_reached",     # newly suitable, habitat present, occupied at the horizon
+    4: "gained_unreached",   # newly suitable, habitat present, not reached (dispersal-limited)
+    5: "gained_no_habitat",  # newly suitable, but no habitat to colonise
+}
+REACH_NODATA = 255
+KERNELS = ("exponential", "gaussian", "2dt")
+
+
+@dataclass
+class DispersalSettings:
+    """The dispersal assumption: kernel family, mean distance per step (km), 2Dt shape."""
+
+    kernel: str = "exponential"
+    mean_distance_km: float = 1.0
+    shape: float | None = None
+    mean_distance_range_km: tuple | None = None  # (low, high): per-replicate draws, stochastic mode only
+    tail_tolerance: float = 1e-6
+
+    def __post_init__(self):
+        if self.kernel not in KERNELS:
+            raise InputError(f"--kernel must be one of {', '.join(KERNELS)}, got {self.kernel!r}")
+        if not (self.mean_distance_km > 0 and math.isfinite(self.mean_distance_km)):
+            raise InputError(f"--mean-distance-km must be > 0, got {self.mean_distance_km!r}")
+        if self.mean_distance_range_km is not None:
+            lo, hi = self.mean_distance_range_km
+            if not (0 < lo <= hi):
+                raise InputError(f"--mean-distance-km range must be 0 < low <= high, got {lo}:{hi}")
+
+
+@dataclass
+class ReachResult:
+    """Outputs of :func:`simulate_reach` on the climate grid."""
+
+    classes: xr.DataArray          # uint8 reach classes at the final horizon
+    occupancy: dict                # year -> DataArray expected occupancy / occupancy probability
+    arrival_year: xr.DataArray     # float32 first year with occupancy >= 0.5 (NaN never)
+    summary: dict
+    front: dict = field(default_factory=dict)  # GeoJSON FeatureCollection
+
+
+def build_operator(grid: xr.DataArray, settings: DispersalSettings, mean_km: float | None = None,
+                   geographic: bool = True) -> SpreadOperator:
+    """Discretise the kernel on ``grid`` and build its spread operator.
+
+    On geographic grids the E–W size of a cell shrinks with latitude; rows are grouped into
+    latitude bands within which it varies by under 5 %, one kernel per band
+    (:func:`envelope.kernels.dispersal.latitude_band_kernels`). On projected grids the cell
+    size in km comes from the transform (CRS units converted to metres).
+    """
+    mean = settings.mean_distance_km if mean_km is None else mean_km
+    ny, nx = grid.sizes["y"], grid.sizes["x"]
+    transform = grid.rio.transform()
+    # the kernel never needs to be larger than the grid itself
+    cap = max(ny, nx)
+    if geographic:
+        kernels = dispersal.latitude_band_kernels(
+            settings.kernel, mean, settings.shape, lat_centres_deg=np.asarray(grid["y"].values),
+            dlon_deg=abs(transform.a), dlat_deg=abs(transform.e), tail_tolerance=settings.tail_tolerance,
+            max_radius_cells=cap)
+    else:
+        unit = grid.rio.crs.linear_units_factor[1] if grid.rio.crs is not None else 1.0
+        kernels = dispersal.discretise_kernel(
+            settings.kernel, mean, settings.shape, cell_dx_km=abs(transform.a) * unit / 1000.0,
+            cell_dy_km=abs(transform.e) * unit / 1000.0, tail_tolerance=settings.tail_tolerance,
+            max_radius_cells=cap)
+    return SpreadOperator((ny, nx), kernels)
+
+
+def reach_classes(now_suitable, future_suitable, habitat, reached, valid) -> np.ndarray:
+    """Reach class per cell (codes in :data:`REACH_CLASSES`)."""
+    out = np.zeros(now_suitable.shape, dtype=np.uint8)
+    gained = ~now_suitable & future_suitable
+    out[now_suitable & ~future_suitable] = 1
+    out[now_suitable & future_suitable] = 2
+    out[gained & (habitat > 0) & reached] = 3
+    out[gained & (habitat > 0) & ~reached] = 4
+    out[gained & ~(habitat > 0)] = 5
+    out[~valid] = REACH_NODATA
+    return out
+
+
+def _occupied_start(start, grid) -> np.ndarray:
+    arr = np.asarray(start, dtype=np.float64)
+    if arr.shape != (grid.sizes["y"], grid.sizes["x"]):
+        raise InputError(f"start occupancy has shape {arr.shape}, the climate grid {grid.shape[-2:]}")
+    arr = np.where(np.isfinite(arr), arr, 0.0)
+    if arr.min() < 0 or arr.max() > 1:
+        raise InputError(f"start occupancy must lie in 0..1, found {arr.min():g}..{arr.max():g}")
+    return arr
+
+
+def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, start, *, threshold: float,
+                   settings: DispersalSettings, now_year: float = 2020, step_years: float = 1.0,
+                   rate: float = 1.0, persistence_years: float = 0.0, replicates: int = 0, seed: int = 0,
+                   snapshot_every_years: float = 10.0, cell_area_km2=None, progress=None) -> ReachResult:
+    """Step habitat-gated dispersal from ``now_year`` through each future horizon.
+
+    Parameters
+    ----------
+    now : DataArray (y, x)
+        Suitability (0–1) today.
+    futures : list of (year, DataArray)
+        Suitability at each horizon year (sorted or not); the climate in between is the
+        linear interpolation of the bracketing maps (:class:`ClimatePath`).
+    habitat : DataArray (y, x)
+        Habitat quality 0–1 on the climate grid (no habitat = 0: never colonised).
+    start : ndarray (y, x)
+        Occupancy today (0/1 from records or a raster).
+    threshold : float
+        Suitability threshold; a cell is suitable when suitability >= threshold.
+    settings : DispersalSettings
+        Kernel and mean dispersal distance per step.
+    step_years, rate, persistence_years : float
+        Years per step; colonisation rate R per step; years an occupied cell survives
+        unsuitable climate before it is lost.
+    replicates : int
+        0: deterministic expected occupancy. N > 0: N seeded stochastic replicates; the
+        occupancy is then the share of replicates in which a cell is occupied.
+    cell_area_km2 : ndarray (y, x), optional
+        True cell areas; computed from the grid when omitted.
+
+    Returns
+    -------
+    ReachResult
+    """
+    from envelope.grids import cell_area_km2 as _areas, is_geographic
+
+    if not futures:
+        raise InputError("reach needs at least one future suitability map (--future)")
+    futures = sorted(futures, key=lambda t: float(t[0]))
+    years = [float(y) for y, _ in futures]
+    if years[0] <= now_year:
+        raise InputError(f"horizon year {years[0]:g} is not after the start year {now_year:g} (--years)")
+    if not step_years > 0:
+        raise InputError(f"--step-years must be > 0, got {step_years!r}")
+    if not rate > 0:
+        raise InputError(f"--rate must be > 0, got {rate!r}")
+    if replicates < 0:
+        raise InputError(f"--replicates must be >= 0, got {replicates}")
+    geographic = is_geographic(now)
+    now_arr = np.asarray(now.values, dtype=np.float64)
+    maps = [now_arr] + [np.asarray(f.values, dtype=np.float64) for _, f in futures]
+    hab = np.asarray(habitat.values, dtype=np.float64)
+    if np.nanmin(hab) < 0 or np.nanmax(hab) > 1:
+        raise InputError(f"habitat must lie in 0..1, found {np.nanmin(hab):g}..{np.nanmax(hab):g}")
+    hab = np.where(np.isfinite(hab), hab, 0.0)
+    start_arr = _occupied_start(start, now)
+    valid = np.isfinite(now_arr)
+    for _, f in futures:
+        valid &= np.isfinite(np.asarray(f.values))
+    areas = np.asarray(_areas(now).values if cell_area_km2 is None else cell_area_km2, dtype=np.float64)
+
+    rngs = None
+    if replicates:
+        seeds = np.random.SeedSequence(seed).spawn(replicates)
+        rngs = [np.random.default_rng(s) for s in seeds]
+    if replicates and settings.mean_distance_range_km is not None:
+        lo, hi = settings.mean_distance_range_km
+        draw = np.random.default_rng(np.random.SeedSequence(seed).spawn(replicates + 1)[-1])
+        means = draw.uniform(lo, hi, size=replicates)
+        operators = [build_operator(now, settings, m, geographic) for m in means]
+    else:
+        operators = build_operator(now, settings, None, geographic)
+
+    climate = ClimatePath([now_year] + years, maps)
+    persistence_steps = int(math.ceil(persistence_years / step_years - 1e-9)) if persistence_years > 0 else 0
+    end_year = years[-1]
+    snaps = set(years)
+    if snapshot_every_years and snapshot_every_years > 0:
+        y = now_year + snapshot_every_years
+        while y < end_year:
+            snaps.add(float(y))
+            y += snapshot_every_years
+    result = run_transient(operators, start_arr, hab, climate, threshold=threshold, start_year=now_year,
+                           end_year=end_year, step_years=step_years, rate=rate,
+                           persistence_steps=persistence_steps, rngs=rngs, snapshot_years=sorted(snaps),
+                           progress=progress)
+
+    now_suit = valid & (now_arr >= threshold)
+    fut_arr = maps[-1]
+    fut_suit = valid & (fut_arr >= threshold)
+    reached = result.final >= 0.5
+    classes = reach_classes(now_suit, fut_suit, hab, reached, valid)
+
+    def area(mask):
+        return float(areas[mask].sum())
+
+    gained_reached, gained_unreached, gained_no_habitat = (area(classes == c) for c in (3, 4, 5))
+    gained_total = gained_reached + gained_unreached + gained_no_habitat
+    lats, lons = _cell_lonlat(now)
+    start_occ = start_arr >= 0.5
+    edges = edge_shift_summary(lats, areas, start_occ & valid, reached & valid)
+    duration = end_year - now_year
+    summary = {
+        "area_km2": {
+            "gained_reached": gained_reached,
+            "gained_unreached": gained_unreached,
+            "gained_no_habitat": gained_no_habitat,
+            "lost": area(classes == 1),
+            "stable": area(classes == 2),
+        },
+        "reached_share_of_gain": (gained_reached / gained_total) if gained_total > 0 else None,
+        "occupied_km2": {"start": area(start_occ & valid), "horizon": float((result.final * areas)[valid].sum())},
+        "front_advance_km": edges["leading_edge_shift_km"],
+        "spread_rate_km_per_decade": (edges["leading_edge_shift_km"] / duration * 10.0
+                                      if edges["leading_edge_shift_km"] is not None else None),
+        "poleward": edges["poleward"],
+        "edge_percentile": edges["percentile"],
+        "start_year": now_year,
+        "horizon_years": years,
+        "threshold": threshold,
+        "kernel": settings.kernel,
+        "mean_distance_km": settings.mean_distance_km,
+        "mean_distance_range_km": list(settings.mean_distance_range_km) if settings.mean_distance_range_km else None,
+        "shape": settings.shape,
+        "step_years": step_years,
+        "rate": rate,
+        "persistence_years": persistence_years,
+        "mode": "stochastic" if replicates else "deterministic",
+        "replicates": replicates,
+        "seed": seed,
+        "n_start_cells": int(start_occ.sum()),
+        "n_start_cells_unsuitable": int((start_occ & ~now_suit).sum()),
+        "climate_interpolation": "linear in time between the given suitability maps",
+    }
+    like = now.copy(data=np.zeros(now.shape, dtype=np.float32))
+    occupancy = {yr: like.copy(data=np.where(valid, occ, np.nan).astype(np.float32))
+                 for yr, occ in sorted(result.snapshots.items())}
+    arrival = like.copy(data=np.where(valid, result.arrival_year, np.nan).astype(np.float32))
+    classes_da = now.copy(data=classes).astype(np.uint8)
+    front = front_geojson(now, occupancy, level=0.5)
+    return ReachResult(classes=classes_da, occupancy=occupancy, arrival_year=arrival, summary=summary, front=front)
+
+
+def edge_shift_summary(lat, area, before, after, percentile: float = 95.0) -> dict:
+    """Poleward shift (km along the meridian) of the leading edge between two masks.
+
+    The leading edge of a set of cells is the area-weighted ``percentile`` of their latitude
+    on the poleward side (the 95th percentile in the northern hemisphere, the 5th in the
+    southern; the hemisphere is that of the ``before`` cells' mean latitude). Positive
+    shifts are poleward.
+    """
+    from envelope.kernels.change import meridian_arc_km, weighted_quantile
+
+    lat = np.asarray(lat, dtype=np.float64)
+    if not before.any() or not after.any():
+        return {"leading_edge_shift_km": None, "poleward": None, "percentile": percentile}
+    north = float(np.average(lat[before], weights=area[before])) >= 0
+    q = percentile / 100.0 if north else 1.0 - percentile / 100.0
+    q = min(max(q, 1e-9), 1.0)
+    lat0 = weighted_quantile(lat[before], area[before], q)
+    lat1 = weighted_quantile(lat[after], area[after], q)
+    shift = meridian_arc_km(lat0, lat1)
+    return {"leading_edge_shift_km": shift if north else -shift, "poleward": "north" if north else "south",
+            "percentile": percentile, "edge_lat_start": lat0, "edge_lat_horizon": lat1}
+
+
+def _cell_lonlat(grid: xr.DataArray):
+    """Latitude and longitude of every cell centre (2-D), via pyproj for projected grids."""
+    xs, ys = np.meshgrid(np.asarray(grid["x"].values), np.asarray(grid["y"].values))
+    crs = grid.rio.crs
+    if crs is None or crs.is_geographic:
+        return ys, xs
+    import pyproj
+
+    tr = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
+    lon, lat = tr.transform(xs, ys)
+    return np.asarray(lat), np.asarray(lon)
+
+
+def front_geojson(grid: xr.DataArray, occupancy: dict, level: float = 0.5) -> dict:
+    """The expansion front: the ``level`` occupancy contour at each snapshot year, as GeoJSON.
+
+    Lines are in longitude/latitude (RFC 7946); each feature carries its ``year`` and ``level``.
+    """
+    import contourpy
+
+    transform = grid.rio.transform()
+    crs = grid.rio.crs
+    to_lonlat = None
+    if crs is not None and not crs.is_geographic:
+        import pyproj
+
+        to_lonlat = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True).transform
+    features = []
+    for year, occ in sorted(occupancy.items()):
+        z = np.where(np.isfinite(occ.values), occ.values, 0.0).astype(np.float64)
+        gen = contourpy.contour_generator(z=z, line_type=contourpy.LineType.Separate)
+        lines = []
+        for seg in gen.lines(level):
+            cols, rows = seg[:, 0] + 0.5, seg[:, 1] + 0.5
+            x, y = transform * (cols, rows)
+            if to_lonlat is not None:
+                x, y = to_lonlat(x, y)
+            lines.append([[round(float(a), 6), round(float(b), 6)] for a, b in zip(x, y)])
+        features.append({"type": "Feature", "properties": {"year": float(year), "level": level},
+                         "geometry": {"type": "MultiLineString", "coordinates": lines}})
+    return {"type": "FeatureCollection", "features": features}
+
+
+def threshold_from_tags(tags_by_name: dict, given=None) -> float:
+    """The suitability threshold: ``given`` if set, else the ``threshold`` tag all inputs share.
+
+    ``tags_by_name`` maps an input's name (a path) to its raster tags.
+    """
+    from envelope.kernels.change import check_threshold
+
+    if given is not None:
+        return check_threshold(given, source="--threshold")
+    found = {}
+    for name, tags in tags_by_name.items():
+        value = tags.get("threshold")
+        if value is None:
+            raise InputError(f"{name} has no 'threshold' tag; pass --threshold")
+        found[name] = float(value)
+    values = set(found.values())
+    if len(values) > 1:
+        shown = ", ".join(f"{n}: {v:g}" for n, v in found.items())
+        raise InputError(f"the inputs' threshold tags disagree ({shown}); pass --threshold")
+    return check_threshold(values.pop(), source="threshold tag")
+
+
+def load_start(path, grid: xr.DataArray, **clean_options):
+    """Occupied cells today from a records table (CSV/TSV) or a raster (occupied where > 0.5).
+
+    Returns (occupancy array, description dict).
+    """
+    from pathlib import Path
+
+    p = Path(path)
+    if p.suffix.lower() in (".csv", ".tsv", ".txt", ".tab"):
+        from envelope.io.occurrences import read_occurrences
+        from envelope.occurrences import clean_occurrences
+
+        records = clean_occurrences(read_occurrences(p), grid, **clean_options)
+        occ = np.zeros((grid.sizes["y"], grid.sizes["x"]))
+        occ[records.table["row"].to_numpy(), records.table["col"].to_numpy()] = 1.0
+        return occ, {"source": str(p), "kind": "records", "n_read": int(records.n_read),
+                     "n_cells": int(occ.sum()), "dropped": dict(records.dropped)}
+    from envelope.grids import check_same_grid
+    from envelope.io.rasters import open_layer
+
+    layer = open_layer(p)
+    check_same_grid(grid, layer, ref_name="--now", other_name=f"--start {p}")
+    arr = np.asarray(layer.values, dtype=np.float64)
+    occ = (np.where(np.isfinite(arr), arr, 0.0) > 0.5).astype(np.float64)
+    if not occ.any():
+        raise InputError(f"--start {p}: no occupied cell (no value > 0.5)")
+    return occ, {"source": str(p), "kind": "raster", "n_cells": int(occ.sum())}
+
+
+def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, arrival=None, tags=None,
+                        overwrite=False) -> dict:
+    """Write the reach-class raster, the summary JSON and optionally the front and arrival files.
+
+    All files are checked before any is written and each is written atomically.
+    """
+    import json
+
+    from envelope.io.atomic import atomic_output, check_writable
+    from envelope.io.rasters import write_raster
+
+    targets = [p for p in (out, summary_path, front, arrival) if p]
+    for p in targets:
+        check_writable(p, overwrite)
+    meta = dict(tags or {})
+    meta.update({"threshold": result.summary["threshold"], "kernel": result.summary["kernel"],
+                 "mean_distance_km": result.summary["mean_distance_km"]})
+    written = {}
+    if arrival:
+        write_raster(result.arrival_year.rename("arrival_year"), arrival, overwrite=overwrite,
+                     tags={**meta, "units": "year", "meaning": "first year with occupancy >= 0.5"})
+        written["arrival"] = str(arrival)
+    if front:
+        with atomic_output(front, overwrite=overwrite) as tmp:
+            tmp.write_text(json.dumps(result.front))
+        written["front"] = str(front)
+    write_raster(result.classes.rename("reach_class"), out, overwrite=overwrite, tags=meta,
+                 categories=REACH_CLASSES, nodata=REACH_NODATA)
+    written["classes"] = str(out)
+    with atomic_output(summary_path, overwrite=overwrite) as tmp:
+        tmp.write_text(json.dumps(result.summary, indent=2))
+    written["summary"] = str(summary_path)
+    return written

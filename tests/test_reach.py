@@ -1,0 +1,146 @@
+"""Habitat-gated dispersal through the transient climate, on small synthetic grids."""
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from envelope.errors import InputError
+from envelope.grids import cell_area_km2
+from envelope.reach import DispersalSettings, REACH_CLASSES, edge_shift_summary, simulate_reach, threshold_from_tags
+
+
+def layer(values, lat0=10.0, lon0=0.0, res=0.05):
+    ny, nx = values.shape
+    y = lat0 - res * (np.arange(ny) + 0.5)
+    x = lon0 + res * (np.arange(nx) + 0.5)
+    da = xr.DataArray(values.astype("float32"), dims=("y", "x"), coords={"y": y, "x": x})
+    return da.rio.write_crs("EPSG:4326")
+
+
+def corridor(ny=60, nx=30, gap_rows=None):
+    """Suitable today in the south third, everywhere by the horizon; habitat 1 except a gap."""
+    now = np.zeros((ny, nx))
+    now[2 * ny // 3:] = 1.0
+    fut = np.ones((ny, nx))
+    hab = np.ones((ny, nx))
+    if gap_rows is not None:
+        hab[gap_rows] = 0.0
+    start = np.zeros((ny, nx))
+    start[-3:] = 1.0
+    return layer(now), layer(fut), layer(hab), start
+
+
+def run(now, fut, hab, start, **kw):
+    settings = kw.pop("settings", DispersalSettings(kernel="exponential", mean_distance_km=2.0))
+    kw = {"step_years": 1.0, "rate": 2.0, **kw}
+    return simulate_reach(now, [(2050, fut)], hab, start, threshold=0.5, settings=settings, now_year=2020, **kw)
+
+
+def test_gap_wider_than_reach_is_never_crossed():
+    # Analytic: a kernel truncated at radius R cannot move propagules across a gap wider than R
+    now, fut, hab, start = corridor(gap_rows=slice(10, 30))  # 20 rows x ~5.6 km = ~110 km gap
+    res = run(now, fut, hab, start)
+    classes = res.classes.values
+    assert (classes[:10] == 4).all()          # beyond the gap: gained but not reached
+    assert (classes[10:30] == 5).all()        # the gap itself: gained, no habitat
+    assert (res.occupancy[2050.0].values[:10] == 0).all()
+
+
+def test_no_habitat_means_no_colonisation():
+    now, fut, _, start = corridor()
+    hab = layer(np.zeros(start.shape))
+    res = run(now, fut, hab, start)
+    gained = (now.values < 0.5) & (fut.values >= 0.5)
+    assert (res.classes.values[gained] == 5).all()
+    assert res.summary["area_km2"]["gained_reached"] == 0
+
+
+def test_areas_are_true_cell_areas():
+    now, fut, hab, start = corridor(gap_rows=slice(10, 30))
+    res = run(now, fut, hab, start)
+    areas = cell_area_km2(now).values
+    # Source: cell areas from the ellipsoidal band formula (checked against pyproj.Geod in
+    # tests/kernels/test_areas.py); every class area is the hand sum of its cells
+    for code, name in REACH_CLASSES.items():
+        if name in res.summary["area_km2"]:
+            assert res.summary["area_km2"][name] == pytest.approx(areas[res.classes.values == code].sum())
+    gained = sum(res.summary["area_km2"][k] for k in ("gained_reached", "gained_unreached", "gained_no_habitat"))
+    assert res.summary["reached_share_of_gain"] == pytest.approx(res.summary["area_km2"]["gained_reached"] / gained)
+
+
+def test_front_advances_poleward_in_both_hemispheres():
+    now, fut, hab, start = corridor()
+    north = run(now, fut, hab, start)
+    assert north.summary["poleward"] == "north" and north.summary["front_advance_km"] > 0
+    assert north.summary["spread_rate_km_per_decade"] == pytest.approx(north.summary["front_advance_km"] / 3.0)
+    # mirror the landscape into the southern hemisphere: poleward is now south (row 0 is north)
+    flip = lambda da: layer(da.values[::-1], lat0=-10.0 + 60 * 0.05)  # noqa: E731
+    south = run(flip(now), flip(fut), flip(hab), start[::-1])
+    assert south.summary["poleward"] == "south"
+    assert south.summary["front_advance_km"] == pytest.approx(north.summary["front_advance_km"], rel=0.02)
+
+
+def test_edge_shift_against_meridian_arc():
+    # Source: pyproj.Geod.inv along a meridian gives the distance between the edge latitudes
+    import pyproj
+
+    lat = np.repeat(np.linspace(40.0, 41.0, 11)[:, None], 3, axis=1)
+    area = np.ones_like(lat)
+    before = lat <= 40.5
+    after = lat <= 40.8
+    s = edge_shift_summary(lat, area, before, after, percentile=100.0)
+    _, _, dist = pyproj.Geod(ellps="WGS84").inv(0.0, 40.5, 0.0, 40.8)
+    assert s["leading_edge_shift_km"] == pytest.approx(dist / 1000.0, rel=1e-9)
+
+
+def test_stochastic_replicates_bounded_by_deterministic():
+    # Source: Jensen's inequality -- colonisation 1 - exp(-x) is concave, so the replicate mean
+    # cannot exceed the expected-occupancy model beyond Monte Carlo error.
+    now, fut, hab, start = corridor(ny=40, nx=20)
+    det = run(now, fut, hab, start)
+    sto = run(now, fut, hab, start, replicates=40, seed=3)
+    d, s = det.occupancy[2050.0].values, sto.occupancy[2050.0].values
+    assert s.sum() <= d.sum() * 1.02
+    assert sto.summary["mode"] == "stochastic"
+
+
+def test_arrival_years_and_front_geojson():
+    now, fut, hab, start = corridor()
+    res = run(now, fut, hab, start)
+    arrival = res.arrival_year.values
+    assert np.nanmin(arrival) == 2020 and np.nanmax(arrival) <= 2050
+    # arrival is monotone with distance from the start rows along a column
+    col = arrival[:, 15]
+    reached = np.isfinite(col)
+    assert np.all(np.diff(col[reached][::-1]) >= 0)
+    years = [f["properties"]["year"] for f in res.front["features"]]
+    assert 2050.0 in years and 2030.0 in years
+    assert all(f["geometry"]["type"] == "MultiLineString" for f in res.front["features"])
+
+
+@pytest.mark.parametrize("kw, phrase", [
+    ({"settings": "neg"}, "--mean-distance-km must be > 0"),
+    ({"step_years": 0}, "--step-years"),
+    ({"rate": -1}, "--rate"),
+])
+def test_bad_settings(kw, phrase):
+    now, fut, hab, start = corridor()
+    with pytest.raises(InputError, match=phrase):
+        if kw.get("settings") == "neg":
+            DispersalSettings(kernel="exponential", mean_distance_km=-1)
+        run(now, fut, hab, start, **kw)
+
+
+def test_habitat_outside_unit_interval():
+    now, fut, hab, start = corridor()
+    with pytest.raises(InputError, match="habitat must lie in 0..1"):
+        run(now, fut, layer(hab.values * 2), start)
+
+
+def test_threshold_from_tags():
+    assert threshold_from_tags({"a.tif": {"threshold": 0.4}, "b.tif": {"threshold": 0.4}}) == 0.4
+    with pytest.raises(InputError, match="no 'threshold' tag"):
+        threshold_from_tags({"a.tif": {}})
+    with pytest.raises(InputError, match="disagree"):
+        threshold_from_tags({"a.tif": {"threshold": 0.4}, "b.tif": {"threshold": 0.5}})
+    assert threshold_from_tags({"a.tif": {}}, given=0.3) == 0.3
