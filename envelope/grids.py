@@ -186,11 +186,17 @@ def is_equal_area(crs) -> bool:
     return any(key in method.lower() for key in _EQUAL_AREA_METHODS)
 
 
-def _edges(centres: np.ndarray) -> np.ndarray:
-    """Cell edges from cell-centre coordinates (mid-points; the ends extrapolated)."""
+def _edges(centres: np.ndarray, step: float | None = None) -> np.ndarray:
+    """Cell edges from cell-centre coordinates (mid-points; the ends extrapolated).
+
+    A single row or column takes its size from ``step`` (the stored transform).
+    """
     c = np.asarray(centres, dtype=np.float64)
     if c.size == 1:
-        raise InputError("grid: a single row or column cannot tell its cell size (expected 2 or more)")
+        if not step:
+            raise InputError("grid: a single row or column without a stored transform cannot tell its "
+                             "cell size (expected 2 or more cells, or a GeoTransform)")
+        return np.array([c[0] - 0.5 * step, c[0] + 0.5 * step])
     mid = 0.5 * (c[1:] + c[:-1])
     return np.concatenate([[c[0] - (mid[0] - c[0])], mid, [c[-1] + (c[-1] - mid[-1])]])
 
@@ -209,13 +215,23 @@ def _lazy_outer(rows: np.ndarray, cols: np.ndarray, like: xr.DataArray) -> xr.Da
     return xr.DataArray(data, dims=("y", "x"), coords=coords, name="cell_area")
 
 
+def _steps(da: xr.DataArray):
+    """(dx, dy) of the stored transform, or (None, None)."""
+    try:
+        res = da.rio.resolution()
+    except Exception:  # noqa: BLE001 - rioxarray raises several types without a transform
+        return None, None
+    return float(res[0]), float(res[1])
+
+
 def _geographic_areas(da: xr.DataArray, pcrs) -> xr.DataArray:
     ell = pcrs.ellipsoid
     a = ell.semi_major_metre
     inv_f = ell.inverse_flattening
     f = 0.0 if not inv_f else 1.0 / inv_f
-    lat_edges = np.clip(_edges(da["y"].values), -90.0, 90.0)
-    lon_edges = _edges(da["x"].values)
+    step_x, step_y = _steps(da) if min(da.sizes["x"], da.sizes["y"]) == 1 else (None, None)
+    lat_edges = np.clip(_edges(da["y"].values, step_y), -90.0, 90.0)
+    lon_edges = _edges(da["x"].values, step_x)
     # a band of 1 degree of longitude per row, scaled by each column's width: the area
     # of a graticule cell is linear in its longitude extent.
     per_row = ellipsoid_band_area(lat_edges[:-1], lat_edges[1:], 1.0, a, f) / 1e6
@@ -224,8 +240,9 @@ def _geographic_areas(da: xr.DataArray, pcrs) -> xr.DataArray:
 
 
 def _projected_areas(da: xr.DataArray, pcrs) -> xr.DataArray:
-    x_edges = _edges(da["x"].values)
-    y_edges = _edges(da["y"].values)
+    step_x, step_y = _steps(da) if min(da.sizes["x"], da.sizes["y"]) == 1 else (None, None)
+    x_edges = _edges(da["x"].values, step_x)
+    y_edges = _edges(da["y"].values, step_y)
     unit = pcrs.axis_info[0].unit_conversion_factor if pcrs.axis_info else 1.0
     dx = np.abs(np.diff(x_edges)) * unit
     dy = np.abs(np.diff(y_edges)) * unit

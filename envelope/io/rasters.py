@@ -114,6 +114,15 @@ def _read_gdal(path: Path, *, chunks, categorical: bool, name_from_stem: bool) -
         nodata = src.nodata
         crs = src.crs
         scales, offsets = src.scales, src.offsets
+        if chunks in (True, "auto"):
+            # rioxarray's own "auto" passes dimension-order tuples (deprecated in xarray);
+            # the same tile-aware choice, given by dimension name
+            from dask.array.core import normalize_chunks
+
+            band_c, y_c, x_c = normalize_chunks((1, "auto", "auto"), shape=(count, src.height, src.width),
+                                                dtype=np.dtype(src.dtypes[0]),
+                                                previous_chunks=(1,) + tuple(src.block_shapes[0]))
+            chunks = {"band": band_c, "y": y_c, "x": x_c}
     if count == 1 and name_from_stem:
         names = [path.stem]
     else:
@@ -148,6 +157,10 @@ def _normalised(da: xr.DataArray, crs, path) -> xr.DataArray:
         # 0-360 longitudes -> -180..180, then columns sorted west to east
         x = np.where(x > 180.0, x - 360.0, x)
         da = da.assign_coords(x=x).sortby("x")
+        step = np.diff(da["x"].values)
+        if step.size > 1 and not np.allclose(step, step[0], rtol=1e-5, atol=0):
+            raise InputError(f"{path}: 0–360 longitudes of a grid that spans the 180° meridian cannot be "
+                             f"normalised to -180..180 (expected a global grid, or one on one side of 180°)")
     elif x.size > 1 and x[1] < x[0]:
         da = da.isel(x=slice(None, None, -1))
     y = np.asarray(da["y"].values)
@@ -243,7 +256,7 @@ def _read_netcdf(path: Path, *, time, chunks, categorical: bool) -> xr.DataArray
     try:
         ds = xr.open_dataset(path, chunks=chunks, mask_and_scale=True, decode_coords=True)
     except Exception as exc:  # noqa: BLE001 - netCDF4/h5 raise OSError, ValueError...
-        raise InputError(f"{path}: not a readable NetCDF file ({type(exc).__name__}: {exc}; {_EXPECTED})") from None
+        raise InputError(f"{path}: not a readable NetCDF file ({type(exc).__name__}; {_EXPECTED})") from None
     layers, names, units = [], [], []
     xname = yname = crs = None
     for name, var in ds.data_vars.items():
@@ -362,6 +375,7 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
             raise InputError(f"variables: {', '.join(missing)} not found (the grids hold {', '.join(names)})")
         stack = stack.sel(variable=list(variables))
     stack.name = "climate"
+    stack.attrs.pop("band_tags", None)
     return stack.rio.write_crs(parts[0].rio.crs)
 
 
@@ -452,11 +466,9 @@ def _as_stack(da: xr.DataArray, path) -> xr.DataArray:
 
 
 def _block_size(width: int, height: int) -> int:
-    """Tile edge: 512, or the largest power of two (>= 16) below the grid size for small grids."""
+    """Tile edge: 512, or 256 / 128 for small grids (GDAL's COG driver needs >= 128)."""
     largest = max(width, height)
-    if largest > 512:
-        return 512
-    return int(max(16, 2 ** int(np.floor(np.log2(max(largest - 1, 1))))))
+    return 512 if largest > 512 else 256 if largest > 256 else 128
 
 
 def write_raster(da, path, *, overwrite=False, tags=None, categories=None, nodata=None, dtype=None) -> Path:
@@ -523,7 +535,6 @@ def write_raster(da, path, *, overwrite=False, tags=None, categories=None, nodat
 def _write_geotiff(values: xr.DataArray, tmp: Path, names, units, tags: dict, nodata) -> None:
     import rasterio
     import rasterio.shutil
-    from rasterio.env import GDALVersion
 
     height, width = values.sizes["y"], values.sizes["x"]
     block = _block_size(width, height)
@@ -548,10 +559,7 @@ def _write_geotiff(values: xr.DataArray, tmp: Path, names, units, tags: dict, no
             dst.update_tags(**tags)
         # stage 2: cloud-optimised layout (tiles, overviews ahead of data) by GDAL's copy
         tmp.unlink(missing_ok=True)
-        with rasterio.Env():
-            has_cog = GDALVersion.runtime().at_least("3.1") and "COG" in rasterio.drivers.raster_driver_extensions().values() \
-                or _driver_available("COG")
-        if has_cog:
+        if _driver_available("COG"):
             rasterio.shutil.copy(stage, tmp, driver="COG", COMPRESS="DEFLATE", PREDICTOR=str(predictor),
                                  BLOCKSIZE=str(block), OVERVIEWS="AUTO", RESAMPLING="NEAREST" if not floating
                                  else "AVERAGE", BIGTIFF="IF_SAFER")
