@@ -22,6 +22,7 @@ COMMANDS = {
     "delta": "envelope.cli.delta:delta",
     "demo": "envelope.cli.demo:demo",
     "records": "envelope.cli.records:records",
+    "run": "envelope.cli.run:run",
 }
 
 SUMMARIES = {
@@ -35,6 +36,7 @@ SUMMARIES = {
     "delta": "Build scenario grids by the delta (change-factor) method.",
     "demo": "Run the bundled fictional study.",
     "records": "Clean occurrence records against a grid and report drops.",
+    "run": "Run a whole study from a TOML study file.",
 }
 
 

@@ -322,12 +322,12 @@ def resolve_threshold(now_tags: dict, future_tags: dict, threshold=None, *, now_
 
 # --------------------------------------------------------------------------- files
 
-def _open(path, *, what):
+def _open(path, *, what, band=None):
     from envelope.io.rasters import open_layer
 
     if not Path(path).exists():
         raise InputError(f"{path}: {what} file not found")
-    return open_layer(path)
+    return open_layer(path, band=band)
 
 
 def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, elevation):
@@ -341,7 +341,8 @@ def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, e
                                     now_name=str(now_path), future_name=str(future_path))
     mess = None
     if mess_path is not None:
-        mess = _open(mess_path, what="MESS")
+        # `envelope project --mess` writes two bands: the MESS value and the most dissimilar variable
+        mess = _open(mess_path, what="MESS", band=1)
         check_same_grid(now, mess, ref_name=str(now_path), other_name=str(mess_path))
     classes = classify_range_change(now, future, value, mess=mess)
     classes.attrs["mess"] = mess is not None

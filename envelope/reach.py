@@ -212,7 +212,12 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     gained_total = gained_reached + gained_unreached + gained_no_habitat
     lats, lons = _cell_lonlat(now)
     start_occ = start_arr >= 0.5
-    edges = edge_shift_summary(lats, areas, start_occ & valid, reached & valid)
+    # The front is measured on expected occupancy (area x occupancy weights); the starting
+    # edge uses the start cells whose climate is suitable today, so records the model cannot
+    # hold (outside its climatic range) do not show up as a retreat of the front.
+    held = start_occ & now_suit
+    edges = edge_shift_summary(lats, areas * start_arr, held if held.any() else start_occ & valid,
+                               valid & (result.final > 1e-6), weights_after=areas * result.final)
     duration = end_year - now_year
     summary = {
         "area_km2": {
@@ -255,13 +260,14 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     return ReachResult(classes=classes_da, occupancy=occupancy, arrival_year=arrival, summary=summary, front=front)
 
 
-def edge_shift_summary(lat, area, before, after, percentile: float = 95.0) -> dict:
+def edge_shift_summary(lat, area, before, after, percentile: float = 95.0, weights_after=None) -> dict:
     """Poleward shift (km along the meridian) of the leading edge between two masks.
 
-    The leading edge of a set of cells is the area-weighted ``percentile`` of their latitude
+    The leading edge of a set of cells is the weighted ``percentile`` of their latitude
     on the poleward side (the 95th percentile in the northern hemisphere, the 5th in the
-    southern; the hemisphere is that of the ``before`` cells' mean latitude). Positive
-    shifts are poleward.
+    southern; the hemisphere is that of the ``before`` cells' mean latitude). Weights are
+    the cell areas, or ``weights_after`` (area x expected occupancy) for the later set.
+    Positive shifts are poleward.
     """
     from envelope.kernels.change import meridian_arc_km, weighted_quantile
 
@@ -272,7 +278,8 @@ def edge_shift_summary(lat, area, before, after, percentile: float = 95.0) -> di
     q = percentile / 100.0 if north else 1.0 - percentile / 100.0
     q = min(max(q, 1e-9), 1.0)
     lat0 = weighted_quantile(lat[before], area[before], q)
-    lat1 = weighted_quantile(lat[after], area[after], q)
+    w_after = area if weights_after is None else np.asarray(weights_after, dtype=np.float64)
+    lat1 = weighted_quantile(lat[after], w_after[after], q)
     shift = meridian_arc_km(lat0, lat1)
     return {"leading_edge_shift_km": shift if north else -shift, "poleward": "north" if north else "south",
             "percentile": percentile, "edge_lat_start": lat0, "edge_lat_horizon": lat1}
