@@ -35,6 +35,10 @@ class StepCache:
             except ValueError:
                 log.warning("%s is damaged; every step will run again", self.path)
         self.manifest["settings"] = settings
+        # A run killed hard (SIGKILL, power cut) cannot delete its temporary files; they are
+        # hidden (".name.xxxx.part...") and never mistaken for results, and removed here.
+        for stale in self.run_dir.rglob(".*.part*"):
+            stale.unlink(missing_ok=True)
         self.ran, self.skipped = [], []
         self._hashes = {}
 

@@ -1,0 +1,154 @@
+"""The study runner end to end on a small study: outputs, no work on a re-run, resume after a kill."""
+
+import hashlib
+import json
+import subprocess
+import sys
+import time
+
+import pytest
+from click.testing import CliRunner
+
+from envelope.cli.main import cli
+from envelope.demo_data import demo_dir
+from envelope.errors import InputError
+from envelope.study import load_study
+
+DEMO = demo_dir()
+
+
+def small_study(folder):
+    """The demo study cut down: 1 method, 1500 background cells, 2 pathways x 1 model x 2 horizons."""
+    scen = "\n".join(
+        f'[[scenarios.grid]]\nname = "{p}_{h}"\npathway = "{p}"\nclimate_model = "model-a"\nhorizon = {h}\n'
+        f'path = "{DEMO / "scenarios" / f"{p}_model-a_{h}.tif"}"\n'
+        for p in ("low", "high") for h in (2050, 2080))
+    text = f"""
+[study]
+name = "Small test study"
+question = "Does the chain run?"
+
+[records]
+path = "{DEMO / 'presences.csv'}"
+max_uncertainty_m = 2000
+
+[climate]
+baseline = "{DEMO / 'baseline.tif'}"
+variables = ["bio5", "bio6", "bio12", "gdd5"]
+
+[model]
+methods = ["pointprocess"]
+background = 1500
+folds = 3
+blocks_km = 60
+threshold_rule = "p10"
+
+[scenarios]
+{scen.split('[[scenarios.grid]]', 1)[0]}agreement = 0.5
+{'[[scenarios.grid]]' + scen.split('[[scenarios.grid]]', 1)[1]}
+[habitat]
+path = "{DEMO / 'habitat.tif'}"
+
+[dispersal]
+kernel = "exponential"
+mean_distance_km = 5.0
+step_years = 10
+rate = 4.0
+
+[outputs]
+figures = false
+"""
+    path = folder / "study.toml"
+    path.write_text(text)
+    return path
+
+
+def digests(run_dir):
+    """SHA-256 of every result except the manifest and report (timestamps): raster pixels and
+    tags, text files with the run folder's own path replaced (it differs between runs)."""
+    import rasterio
+
+    out = {}
+    for p in sorted(run_dir.rglob("*")):
+        if not p.is_file() or p.name in ("manifest.json", "report.html"):
+            continue
+        h = hashlib.sha256()
+        if p.suffix == ".tif":
+            with rasterio.open(p) as src:
+                h.update(src.read().tobytes())
+                # the model file's checksum covers its creation time, so it differs between runs
+                tags = {k: v for k, v in src.tags().items() if k != "model_sha256"}
+                h.update(json.dumps(tags, sort_keys=True).replace(str(run_dir), "RUN").encode())
+        elif p.suffix == ".envm":
+            import numpy as np
+
+            from envelope.io.modelfile import load_model
+
+            # the file holds creation times; compare what the model predicts instead
+            estimator, meta = load_model(p)
+            X = np.random.default_rng(0).normal(size=(50, len(meta["variables"]))) * 5 + 10
+            h.update(np.round(estimator.predict_proba(X)[:, 1], 12).tobytes())
+        else:
+            h.update(p.read_text().replace(str(run_dir), "RUN").encode())
+        out[str(p.relative_to(run_dir))] = h.hexdigest()
+    return out
+
+
+@pytest.fixture(scope="module")
+def full_run(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("study")
+    study_path = small_study(folder)
+    run_dir = folder / "run"
+    result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(run_dir)])
+    assert result.exit_code == 0, result.output
+    return study_path, run_dir, result
+
+
+def test_run_writes_every_output(full_run):
+    _, run_dir, result = full_run
+    for rel in ("models/pointprocess.envm", "models/pointprocess.fit.json", "projection/now_suitability.tif",
+                "projection/scenarios/suitability_table.csv", "change/change_table.csv",
+                "reach/high_reach.tif", "reach/held-climate_reach.json", "report.html", "manifest.json"):
+        assert (run_dir / rel).exists(), rel
+    manifest = json.loads((run_dir / "manifest.json").read_text())
+    assert {"fit:pointprocess", "project:now", "project:scenarios", "change", "report"} <= set(manifest["steps"])
+    assert all(len(step["key"]) == 64 for step in manifest["steps"].values())
+    assert "software" in manifest and manifest["settings"]["model"]["background"] == 1500
+    assert "report:" in result.output
+
+
+def test_second_run_does_no_work(full_run):
+    study_path, run_dir, _ = full_run
+    before = digests(run_dir)
+    result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(run_dir)])
+    assert result.exit_code == 0
+    assert "steps run: 0" in result.output
+    assert digests(run_dir) == before
+
+
+def test_killed_run_resumes_with_identical_outputs(full_run, tmp_path):
+    study_path, run_dir, _ = full_run
+    resumed = tmp_path / "resumed"
+    cmd = [sys.executable, "-m", "envelope.cli.main", "run", str(study_path), "--out", str(resumed)]
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.time() + 120
+    while time.time() < deadline and not (resumed / "models" / "pointprocess.envm").exists():
+        time.sleep(0.2)
+    proc.kill()  # mid-way: after the fit, before the run is complete
+    proc.wait()
+    # a hard kill can leave only hidden temporary files, never a half-written result
+    assert all(p.name.startswith(".") for p in resumed.rglob("*.part*"))
+    result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(resumed)])
+    assert result.exit_code == 0, result.output
+    assert not list(resumed.rglob("*.part*"))
+    assert digests(resumed) == digests(run_dir)
+
+
+def test_study_errors_name_the_key(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text('[study]\nname = "x"\nnmae = "y"\n')
+    result = CliRunner().invoke(cli, ["run", str(bad), "--out", str(tmp_path / "r")])
+    assert result.exit_code == 2
+    assert "nmae" in result.output
+    with pytest.raises(InputError):
+        load_study(bad)
