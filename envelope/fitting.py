@@ -204,7 +204,9 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     scores = estimator.predict_proba(X)[:, 1]
     threshold, rule = choose_threshold(opt.threshold_rule, scores[y == 1], scores[y == 0])
 
-    reference = reference_from_training(X_bg)
+    # MESS compares against the whole training sample (presences + background), the same
+    # rows whose range bounds the clamping (Elith, Kearney & Phillips 2010)
+    reference = reference_from_training(X)
     ranges = {n: (float(np.nanmin(X[:, j])), float(np.nanmax(X[:, j]))) for j, n in enumerate(names)}
     pct = np.nanpercentile(X_bg, reference.percentile_levels, axis=0)
     variables_meta = [{"name": n, "units": u, "min": ranges[n][0], "max": ranges[n][1],
@@ -253,11 +255,24 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     return FitResult(estimator=estimator, metadata=metadata, summary=summary, per_fold=per_fold, warnings=notes)
 
 
+def json_ready(obj):
+    """Nested built-ins with NaN/inf as None (strict JSON has no NaN) and NumPy scalars unwrapped."""
+    if isinstance(obj, dict):
+        return {str(k): json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_ready(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return json_ready(obj.tolist())
+    return _num(obj)
+
+
 def _num(v):
     if isinstance(v, (np.floating, float)):
         return None if not np.isfinite(v) else float(v)
     if isinstance(v, (np.integer,)):
         return int(v)
+    if isinstance(v, np.bool_):
+        return bool(v)
     return v
 
 
@@ -318,7 +333,7 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
     for p in (model_path, summary_path, folds_path):
         check_writable(p, overwrite)
     with atomic_outputs([summary_path, folds_path], overwrite=overwrite) as (tmp_summary, tmp_folds):
-        tmp_summary.write_text(json.dumps(result.summary, indent=2, default=_num))
+        tmp_summary.write_text(json.dumps(json_ready(result.summary), indent=2, allow_nan=False))
         result.per_fold.to_csv(tmp_folds, index=False)
         # the model is written last inside the block: if it fails, summary and folds vanish too
         save_model(model_path, result.estimator, result.metadata, overwrite=overwrite)

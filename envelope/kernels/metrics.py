@@ -229,9 +229,10 @@ def boyce_index(presence_scores, background_scores, *, window=None, n_windows: i
 
     Tie policy (``drop_repeats=True``, default): when the background holds few distinct
     values, neighbouring windows can cover exactly the same records and repeat F, which
-    would make Spearman ties an artefact of the step. A window whose F is identical to the
-    previous kept window's F is therefore dropped (runs of equal F collapse to their first
-    window). Set ``drop_repeats=False`` to keep every window.
+    would make Spearman ties an artefact of the step. A window that holds exactly the same
+    background and presence records as the previous window is therefore dropped; windows
+    with different records but equal F (e.g. runs of F = 0 at low suitability) are kept,
+    as in Hirzel et al.'s definition. Set ``drop_repeats=False`` to keep every window.
 
     Parameters
     ----------
@@ -278,14 +279,17 @@ def boyce_index(presence_scores, background_scores, *, window=None, n_windows: i
     starts = lo + (span - w) * np.arange(n_windows) / (n_windows - 1)
     ends = starts + w
     ends[-1] = hi  # exact, so rounding never drops the top record
-    e = (np.searchsorted(b, ends, side="right") - np.searchsorted(b, starts, side="left")) / b.size
-    pr = (np.searchsorted(p, ends, side="right") - np.searchsorted(p, starts, side="left")) / p.size
+    b0, b1 = np.searchsorted(b, starts, side="left"), np.searchsorted(b, ends, side="right")
+    p0, p1 = np.searchsorted(p, starts, side="left"), np.searchsorted(p, ends, side="right")
+    e = (b1 - b0) / b.size
+    pr = (p1 - p0) / p.size
     keep = e > 0
+    if drop_repeats:
+        # a window holding exactly the records of the previous window adds no information
+        same = np.r_[False, (b0[1:] == b0[:-1]) & (b1[1:] == b1[:-1]) & (p0[1:] == p0[:-1]) & (p1[1:] == p1[:-1])]
+        keep &= ~same
     f = pr[keep] / e[keep]
     mid = (starts + ends)[keep] / 2.0
-    if drop_repeats and f.size > 1:
-        first = np.concatenate([[True], f[1:] != f[:-1]])
-        f, mid = f[first], mid[first]
     if f.size < 2 or np.all(f == f[0]):
         return nan_result
     rho = float(stats.spearmanr(f, mid).statistic)

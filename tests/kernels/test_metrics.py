@@ -164,8 +164,8 @@ def test_boyce_tie_trap_and_repeat_policy():
     # Source: REFERENCES item 3 — 100 distinct background values and a step (0.0089) below their spacing
     # repeat F in neighbouring windows; keeping every window gives 0.99997 instead of 1.
     assert boyce_index(pres, COARSE, window=0.1, n_windows=101, drop_repeats=False) == pytest.approx(0.99997, abs=1e-5)
-    # Documented policy (drop_repeats=True, default): a window repeating the previous F is dropped,
-    # so a strictly rising F curve scores exactly 1.  Common practice, no source.
+    # Documented policy (drop_repeats=True, default): a window holding exactly the records of the
+    # previous one is dropped, so the strictly rising F curve scores exactly 1.  Common practice, no source.
     assert boyce_index(pres, COARSE, window=0.1, n_windows=101) == pytest.approx(1.0, abs=1e-12)
     _, (mid, f) = boyce_index(pres, COARSE, window=0.1, n_windows=101, return_curve=True)
     assert np.all(np.diff(f) != 0) and f.size < 101
@@ -198,3 +198,14 @@ def test_bad_input():
         auc([0.5], [0.1, np.nan])
     with pytest.raises(InputError, match="presence_scores"):
         boyce_index([], FINE)
+
+
+def test_boyce_keeps_distinct_windows_with_equal_f():
+    # Source: Hirzel et al. (2006) definition -- every window position counts; a run of F = 0 at
+    # low suitability (no presences there) is real information, not a tie artefact.
+    rng = np.random.default_rng(5)
+    bg = rng.uniform(0, 1, 5000)
+    pres = rng.uniform(0.5, 1, 300) ** 0.5
+    kept = boyce_index(pres, bg, window=0.1, n_windows=101)
+    every = boyce_index(pres, bg, window=0.1, n_windows=101, drop_repeats=False)
+    assert kept == pytest.approx(every, abs=1e-12)  # fine background: no window repeats its records
