@@ -566,6 +566,7 @@ def plot_response_curves(curves: dict, units: dict | None = None, *,
     nrows = math.ceil(n / ncols)
     fig = _plot_figure((3.0 * ncols + 0.4, 2.5 * nrows + 0.5))
     axes = fig.subplots(nrows, ncols, squeeze=False, sharey=True)
+    top = 0.0
     for i, (var, xy) in enumerate(curves.items()):
         try:
             x, y = (np.asarray(v, dtype=float) for v in xy)
@@ -581,9 +582,11 @@ def plot_response_curves(curves: dict, units: dict | None = None, *,
         ax.set_xlabel(f"{var} ({unit})" if unit else var, fontsize=9)
         if i % ncols == 0:
             ax.set_ylabel("suitability", fontsize=9)
-        ax.set_ylim(bottom=0)
+        top = max(top, float(np.nanmax(y)) if y.size else 0.0)
         ax.grid(True, color="0.85", linewidth=0.5)
         ax.tick_params(labelsize=8)
+    # shared y axis: one limit for all panels, set once (per-panel limits would freeze it)
+    axes[0][0].set_ylim(0, max(top, 1e-3) * 1.05)
     for j in range(n, nrows * ncols):
         axes[j // ncols][j % ncols].set_visible(False)
     fig.suptitle(title, fontsize=11)
