@@ -74,6 +74,17 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
                 p = Path(suit_table).parent / mess_col.iloc[0]
                 maps.append((figures.map_mess(open_layer(p, band=1), land_mask=land),
                              f"Novel climate (MESS < 0), scenario {worst['name'].iloc[0]}"))
+        change_dir = Path(run_dir) / "change"
+        from envelope.kernels.change import CHANGE_CLASSES
+
+        for pathway in sorted(set(suit_rows["pathway"])):
+            rows = suit_rows[(suit_rows["pathway"] == pathway) & (suit_rows["horizon"] == horizon)]
+            if len(rows) and (change_dir / f"{rows['name'].iloc[0]}.tif").exists():
+                name = rows["name"].iloc[0]
+                ch = open_layer(change_dir / f"{name}.tif", categorical=True)
+                maps.append((figures.map_classes(ch.where(ch != 255), CHANGE_CLASSES, title=f"Range change: {name}",
+                                                 colours=CHANGE_CLASS_COLOURS, land_mask=land),
+                             f"Climatic range change, scenario {name} (one climate model)"))
         for row in reach_rows:
             classes = open_layer(row["classes"], categorical=True)
             front = json.loads(Path(row["front"]).read_text())
@@ -81,7 +92,9 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
                      for f in front["features"]]
             maps.append((figures.map_classes(classes.where(classes != 255), REACH_CLASSES,
                                              title=f"Reach by {horizon}: {row['run']}",
-                                             colours=REACH_CLASS_COLOURS, land_mask=land, front_lines=lines),
+                                             colours=REACH_CLASS_COLOURS, land_mask=land, front_lines=lines,
+                                             arrival=open_layer(row["arrival"]) if Path(row["arrival"]).exists()
+                                             else None),
                          f"Reach classes and expansion front (0.5 occupancy) — {row['run']}"))
     rep.add_section("maps", figures=maps)
 
