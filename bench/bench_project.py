@@ -1,0 +1,297 @@
+"""Benchmark of `envelope project`: streamed projection against an in-memory predict and the bare I/O floor.
+
+Run:  .venv/bin/python bench/bench_project.py [--ny 5000 --nx 5000] [--workdir /tmp/envelope-bench]
+
+Every measurement runs in its own subprocess, which reports its wall time and its own
+peak resident memory (``ru_maxrss``), so one run cannot inflate another's peak. The
+fictional grid lies in open ocean (no real land) and is made of smooth analytic fields.
+Results: a table on stdout and ``bench/results/project.json`` (git-ignored).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+N_VARS = 19
+TILE = 512
+WEST, NORTH, RES = -125.0, -30.0, 0.004  # fictional open-ocean placement
+
+
+# ----------------------------------------------------------------------------- data
+def _fields(rows, cols, n_vars):
+    """Smooth, compressible climate-like fields (n_vars, len(rows), len(cols)), float32."""
+    r = rows[:, None].astype(np.float64) / 1000.0
+    c = cols[None, :].astype(np.float64) / 1000.0
+    out = np.empty((n_vars, rows.size, cols.size), dtype=np.float32)
+    for j in range(n_vars):
+        a, b = 0.7 + 0.11 * j, 1.3 - 0.05 * j
+        v = (10.0 * np.sin(a * r + 0.3 * j) + 8.0 * np.cos(b * c - 0.2 * j)
+             + 3.0 * np.sin(0.5 * (r + c) * (1 + 0.1 * j)) + (j + 1) * 2.0 * r)
+        out[j] = np.round(v, 2)
+    return out
+
+
+def make_stack(path, ny, nx, n_vars):
+    import rasterio
+    from rasterio.transform import from_origin
+    from rasterio.windows import Window
+
+    profile = dict(driver="GTiff", width=nx, height=ny, count=n_vars, dtype="float32", crs="EPSG:4326",
+                   transform=from_origin(WEST, NORTH, RES * 5000 / max(nx, 1), RES * 5000 / max(ny, 1)),
+                   tiled=True, blockxsize=TILE, blockysize=TILE, compress="DEFLATE", predictor=3, zlevel=1,
+                   interleave="band", BIGTIFF="IF_SAFER", nodata=np.nan)
+    with rasterio.open(path, "w", **profile) as dst:
+        for i in range(n_vars):
+            dst.set_band_description(i + 1, f"bio{i + 1}")
+        for r0 in range(0, ny, TILE):
+            h = min(TILE, ny - r0)
+            block = _fields(np.arange(r0, r0 + h), np.arange(nx), n_vars)
+            if r0 == 0:
+                block[:, :8, :8] = np.nan  # a nodata corner
+            dst.write(block, window=Window(0, r0, nx, h))
+    return {"path": str(path), "cells": ny * nx, "bytes": os.path.getsize(path)}
+
+
+# ----------------------------------------------------------------------------- models
+def fit_models(out_dir, ny, nx, n_vars, only=None):
+    from envelope.io.modelfile import save_model
+    from envelope.kernels.mess import reference_from_training
+    from envelope.models import (BoostedTrees, DownsampledForest, PercentileEnvelope, PointProcessModel,
+                                 SkillWeightedEnsemble)
+
+    rng = np.random.default_rng(0)
+    n_bg = 5000
+    rows, cols = rng.integers(0, ny, n_bg), rng.integers(0, nx, n_bg)
+    X = np.stack([_fields(np.array([r]), np.array([c]), n_vars)[:, 0, 0] for r, c in zip(rows, cols)]).astype(np.float64)
+    # virtual species: prefers mid bio1, low bio5
+    z = (X - X.mean(0)) / X.std(0)
+    p = 1.0 / (1.0 + np.exp(-(1.5 - 1.2 * z[:, 0] ** 2 - 0.8 * z[:, min(4, n_vars - 1)])))
+    pres = X[rng.uniform(size=n_bg) < p * 0.15][:400]
+    Xa = np.r_[pres, X]
+    ya = np.r_[np.ones(len(pres)), np.zeros(n_bg)]
+    names = [f"bio{i + 1}" for i in range(n_vars)]
+    meta = {"variables": [{"name": n, "units": "", "min": float(Xa[:, j].min()), "max": float(Xa[:, j].max())}
+                          for j, n in enumerate(names)],
+            "threshold": {"value": 0.3, "rule": "fixed (benchmark)"},
+            "mess_reference": reference_from_training(Xa).to_dict()}
+    pp = PointProcessModel(C=10.0)  # default feature classes: auto -> all four with 400 presences
+    brt = BoostedTrees(max_iter=100, early_stopping=False, random_state=0)
+    models = {
+        "pointprocess": pp,
+        "envelope": PercentileEnvelope(),
+        "brt": brt,
+        "forest": DownsampledForest(n_estimators=50, random_state=0),
+        "ensemble": SkillWeightedEnsemble(members=[("pointprocess", PointProcessModel(C=10.0)),
+                                                   ("brt", BoostedTrees(max_iter=100, early_stopping=False,
+                                                                        random_state=0))],
+                                          weights_from={"pointprocess": 0.8, "brt": 0.8}),
+    }
+    info = {}
+    for name, est in models.items():
+        if only is not None and name not in only:
+            continue
+        est.fit(Xa, ya)
+        save_model(Path(out_dir) / f"{name}.envm", est, meta, overwrite=True)
+        info[name] = {"path": str(Path(out_dir) / f"{name}.envm")}
+        if name == "pointprocess":
+            info[name]["n_features"] = int(est.coef_.size)
+            info[name]["n_nonzero"] = int(np.count_nonzero(est.coef_))
+    return info
+
+
+# ----------------------------------------------------------------------------- measurements
+def _peak_mib():
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def run_floor(stack, out):
+    """Read every tile of every band and write a same-size float32 band: no model."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    import rasterio
+    from rasterio.windows import Window
+
+    t0 = time.perf_counter()
+    with rasterio.open(stack) as src:
+        profile = src.profile.copy()
+        profile.update(count=1, interleave="band")
+        ny, nx = src.height, src.width
+        windows = [Window(c, r, min(1024, nx - c), min(1024, ny - r))
+                   for r in range(0, ny, 1024) for c in range(0, nx, 1024)]
+
+    def read(w):
+        with rasterio.open(stack) as s:  # one handle per read: GDAL handles are not thread-safe
+            return w, s.read(window=w)
+
+    with rasterio.open(out, "w", **profile) as dst, ThreadPoolExecutor(2) as pool:
+        for w, block in pool.map(read, windows):
+            dst.write(block[0], 1, window=w)
+    return {"seconds": time.perf_counter() - t0}
+
+
+def run_project(model, stack, out, mess=None):
+    from envelope.projection import project_file
+
+    t0 = time.perf_counter()
+    res = project_file(model, stack, out, mess_out=mess, overwrite=True)
+    return {"seconds": time.perf_counter() - t0, "novel_share": res["novel_share"]}
+
+
+def run_reference(model, stack, cells):
+    """The estimator's own predict_proba on a stack loaded whole (features materialised)."""
+    import rasterio
+    from rasterio.windows import Window
+
+    from envelope.io.modelfile import load_model
+
+    est, _ = load_model(model)
+    with rasterio.open(stack) as src:
+        rows = int(np.ceil(cells / src.width))
+        X = src.read(window=Window(0, 8, src.width, rows)).reshape(src.count, -1)[:, :cells].T.astype(np.float64)
+    X = X[np.isfinite(X).all(axis=1)]
+    t0 = time.perf_counter()
+    s = est.predict_proba(X)[:, 1]
+    return {"seconds": time.perf_counter() - t0, "cells": int(X.shape[0]), "checksum": float(s.sum())}
+
+
+def worker(argv):
+    kind, args = argv[0], json.loads(argv[1])
+    fn = {"make": make_stack, "fit": fit_models, "floor": run_floor, "project": run_project,
+          "reference": run_reference}[kind]
+    result = fn(**args)
+    result = result if isinstance(result, dict) else {}
+    result["peak_mib"] = _peak_mib()
+    print("RESULT " + json.dumps(result))
+
+
+GDAL_CACHE_MB = None  # set from --gdal-cache-mb; the same for every worker, floor included
+
+
+def call(kind, **args):
+    env = dict(os.environ)
+    if GDAL_CACHE_MB:
+        # GDAL's block cache defaults to 5 % of RAM (1.2 GiB here) and counts in the peak
+        env["GDAL_CACHEMAX"] = str(GDAL_CACHE_MB)
+    proc = subprocess.run([sys.executable, __file__, "--worker", kind, json.dumps(args)],
+                          capture_output=True, text=True, env=env)
+    if proc.returncode != 0:
+        raise RuntimeError(f"{kind} failed:\n{proc.stderr[-3000:]}")
+    line = [ln for ln in proc.stdout.splitlines() if ln.startswith("RESULT ")][-1]
+    return json.loads(line[7:])
+
+
+# ----------------------------------------------------------------------------- main
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--ny", type=int, default=5000)
+    ap.add_argument("--nx", type=int, default=5000)
+    ap.add_argument("--workdir", default="/tmp/envelope-bench")
+    ap.add_argument("--ref-cells", type=int, nargs=2, default=[250_000, 500_000],
+                    help="two stack sizes for the in-memory point-process reference (memory is extrapolated)")
+    ap.add_argument("--tree-ref-cells", type=int, default=2_000_000)
+    ap.add_argument("--flat", type=int, nargs=2, default=[10_000_000, 100_000_000],
+                    help="grid sizes of the memory-flatness run (2 variables, percentile envelope)")
+    ap.add_argument("--methods", default="pointprocess,envelope,brt,forest,ensemble")
+    ap.add_argument("--gdal-cache-mb", type=int, default=256,
+                    help="GDAL_CACHEMAX for every worker (0: GDAL's default of 5 %% of RAM)")
+    a = ap.parse_args()
+    global GDAL_CACHE_MB
+    GDAL_CACHE_MB = a.gdal_cache_mb or None
+    work = Path(a.workdir)
+    work.mkdir(parents=True, exist_ok=True)
+    t_start = time.perf_counter()
+    stack = work / "stack19.tif"
+    cells = a.ny * a.nx
+    results = {"grid": {"ny": a.ny, "nx": a.nx, "cells": cells, "variables": N_VARS,
+                        "format": "GeoTIFF, tiled 512, DEFLATE (zlevel 1, predictor 3), band-interleaved",
+                        "cpus": os.cpu_count(), "gdal_cachemax_mb": a.gdal_cache_mb or "default"}}
+    if not stack.exists() or stack.stat().st_size == 0:
+        t0 = time.perf_counter()
+        results["grid"].update(call("make", path=str(stack), ny=a.ny, nx=a.nx, n_vars=N_VARS))
+        results["grid"]["make_seconds"] = time.perf_counter() - t0
+    results["grid"]["bytes"] = stack.stat().st_size
+    models = call("fit", out_dir=str(work), ny=a.ny, nx=a.nx, n_vars=N_VARS)
+    results["models"] = models
+    floor = call("floor", stack=str(stack), out=str(work / "floor.tif"))
+    floor["cells_per_s"] = cells / floor["seconds"]
+    results["io_floor"] = floor
+    rows = []
+    for name in a.methods.split(","):
+        model = models[name]["path"]
+        r = call("project", model=model, stack=str(stack), out=str(work / f"suit_{name}.tif"))
+        r.update(method=name, kind="streamed", cells=cells, cells_per_s=cells / r["seconds"])
+        rows.append(r)
+        if name == "pointprocess":
+            r = call("project", model=model, stack=str(stack), out=str(work / "suit_pp_mess.tif"),
+                     mess=str(work / "mess_pp.tif"))
+            r.update(method=name + "+mess", kind="streamed", cells=cells, cells_per_s=cells / r["seconds"])
+            rows.append(r)
+        sizes = a.ref_cells if name in ("pointprocess", "ensemble") else [a.tree_ref_cells // 2, a.tree_ref_cells]
+        refs = [call("reference", model=model, stack=str(stack), cells=n) for n in sizes]
+        # peak(N) = base + slope * N, fitted through the two runs, extrapolated to the full grid
+        slope = (refs[1]["peak_mib"] - refs[0]["peak_mib"]) / (refs[1]["cells"] - refs[0]["cells"])
+        base = refs[1]["peak_mib"] - slope * refs[1]["cells"]
+        rows.append({"method": name, "kind": "in-memory predict_proba", "cells": refs[1]["cells"],
+                     "seconds": refs[1]["seconds"], "cells_per_s": refs[1]["cells"] / refs[1]["seconds"],
+                     "peak_mib": refs[1]["peak_mib"], "peak_mib_full_grid_extrapolated": base + slope * cells,
+                     "memory_formula": f"{base:.0f} MiB + {slope * 1e6:.1f} MiB per million cells",
+                     "seconds_full_grid_extrapolated": cells / (refs[1]["cells"] / refs[1]["seconds"])})
+        print(f"  done {name} ({time.perf_counter() - t_start:.0f} s)", file=sys.stderr, flush=True)
+    results["runs"] = rows
+    flat = []
+    for n in a.flat:
+        side = int(round(np.sqrt(n)))
+        path = work / f"stack2_{side}.tif"
+        if not path.exists():
+            call("make", path=str(path), ny=side, nx=side, n_vars=2)
+        two = work / "two"
+        two.mkdir(exist_ok=True)
+        if not (two / "envelope.envm").exists():
+            call("fit", out_dir=str(two), ny=side, nx=side, n_vars=2, only=["envelope"])
+        r = call("project", model=str(two / "envelope.envm"), stack=str(path), out=str(work / f"flat_{side}.tif"))
+        r.update(cells=side * side, cells_per_s=side * side / r["seconds"])
+        flat.append(r)
+    results["memory_flatness"] = {"method": "envelope (percentile), 2 variables", "runs": flat}
+    results["total_seconds"] = time.perf_counter() - t_start
+    _report(results)
+    out = HERE / "results"
+    out.mkdir(exist_ok=True)
+    (out / "project.json").write_text(json.dumps(results, indent=2))
+
+
+def _report(res):
+    g = res["grid"]
+    print(f"grid: {g['ny']} x {g['nx']} = {g['cells'] / 1e6:.1f} M cells x {g['variables']} float32 variables, "
+          f"{g['bytes'] / 2**30:.2f} GiB on disk ({g['format']}), {g['cpus']} CPUs")
+    f = res["io_floor"]
+    print(f"I/O floor (rasterio read all + write one band): {f['seconds']:.1f} s, "
+          f"{f['cells_per_s'] / 1e6:.2f} M cells/s, peak {f['peak_mib']:.0f} MiB")
+    print(f"{'method':<16}{'kind':<26}{'cells':>10}{'s':>8}{'Mcells/s':>10}{'peak MiB':>10}{'/floor':>10}  note")
+    for r in res["runs"]:
+        note = ""
+        if "peak_mib_full_grid_extrapolated" in r:
+            note = (f"full grid: ~{r['peak_mib_full_grid_extrapolated'] / 1024:.1f} GiB, "
+                    f"~{r['seconds_full_grid_extrapolated']:.0f} s ({r['memory_formula']})")
+        print(f"{r['method']:<16}{r['kind']:<26}{r['cells'] / 1e6:>9.2f}M{r['seconds']:>8.1f}"
+              f"{r['cells_per_s'] / 1e6:>10.3f}{r['peak_mib']:>10.0f}{f['seconds'] / r['seconds'] * r['cells'] / g['cells']:>10.2f}  {note}")
+    for r in res["memory_flatness"]["runs"]:
+        print(f"flatness {res['memory_flatness']['method']}: {r['cells'] / 1e6:.0f} M cells, {r['seconds']:.1f} s, "
+              f"peak {r['peak_mib']:.0f} MiB")
+    print(f"total benchmark time {res['total_seconds']:.0f} s")
+
+
+if __name__ == "__main__":
+    if len(sys.argv) > 1 and sys.argv[1] == "--worker":
+        worker(sys.argv[2:])
+    else:
+        main()

@@ -1,0 +1,407 @@
+"""Projecting a fitted model onto a climate stack, chunk by chunk, with MESS (grid wrapper)."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+
+import numpy as np
+import xarray as xr
+
+from envelope.errors import InputError
+from envelope.kernels.predict import (AdditiveTable, compile_pointprocess, predict_cells,
+                                      suitability_table)
+
+# Cells per call of a generic estimator inside one dask chunk: bounds the feature matrix
+# the estimator materialises (cells x features x 8 bytes) whatever the chunk size.
+CELL_BATCH = 16_384
+MESS_BANDS = ("mess", "most_dissimilar")
+
+
+def match_variables(stack: xr.DataArray, variables, *, source="climate grid") -> xr.DataArray:
+    """Select the model's variables from ``stack`` by name, in the model's order.
+
+    A missing variable is an error that names it and lists what the grid has.
+    """
+    have = [str(v) for v in stack["variable"].values]
+    missing = [v for v in variables if v not in have]
+    if missing:
+        raise InputError(
+            f"{source}: variable {missing[0]!r} needed by the model is missing "
+            f"(grid has {', '.join(have)})"
+        )
+    return stack.sel(variable=list(variables))
+
+
+def training_range(metadata: dict) -> dict:
+    """``{name: (min, max)}`` of the training data from a model file's metadata.
+
+    Raises InputError naming the variable when a bound is missing.
+    """
+    out = {}
+    for v in metadata.get("variables", []):
+        lo, hi = v.get("min"), v.get("max")
+        if lo is None or hi is None:
+            raise InputError(f"model metadata: variable {v.get('name')!r} has no training min/max; "
+                             "expected both to clamp (or use --no-clamp)")
+        out[str(v["name"])] = (float(lo), float(hi))
+    return out
+
+
+def pointprocess_table(estimator) -> AdditiveTable | None:
+    """The exact fast-path table of a fitted PointProcessModel, else None."""
+    from envelope.models import PointProcessModel
+
+    if type(estimator) is not PointProcessModel:
+        return None
+    ex = estimator.expander_
+    return compile_pointprocess(ex.mean_, ex.scale_, ex.knots_, ex.classes_used_, estimator.coef_,
+                                estimator.intercept_ + estimator.offset_)
+
+
+def _as_cells(block: np.ndarray) -> tuple[np.ndarray, tuple]:
+    """(y, x, variable) chunk -> (variable, cells) view; dask chunks are (variable, y, x)
+    in memory, so moving the axis back is free and the variable axis stays outermost."""
+    shape = block.shape[:-1]
+    return np.moveaxis(block, -1, 0).reshape(block.shape[-1], -1), shape
+
+
+def _suitability_block(block, members, lower, upper):
+    X, shape = _as_cells(block)
+    total = None
+    for weight, table, predict_proba in members:
+        if table is not None:
+            s = suitability_table(table, X, lower=lower, upper=upper)
+        else:
+            s = predict_cells(predict_proba, X, lower=lower, upper=upper, batch_cells=CELL_BATCH)
+        total = s if weight is None else (weight * s if total is None else total + weight * s)
+    return total.astype(np.float32).reshape(shape)
+
+
+def _members(estimator) -> list:
+    """``[(weight, table, predict_proba)]``: how to evaluate ``estimator`` on cells.
+
+    A skill-weighted ensemble is its weighted sum of member suitabilities, so each
+    point-process member still takes the exact table path; weight None = a lone model.
+    """
+    from envelope.models import SkillWeightedEnsemble
+
+    if type(estimator) is SkillWeightedEnsemble:
+        return [(float(w), pointprocess_table(m), None if pointprocess_table(m) is not None else m.predict_proba)
+                for w, (_, m) in zip(estimator.weights_, estimator.members_)]
+    table = pointprocess_table(estimator)
+    return [(None, table, None if table is not None else _predict_proba_of(estimator))]
+
+
+def _layer_like(result: xr.DataArray, stack: xr.DataArray, name: str, attrs: dict) -> xr.DataArray:
+    result = result.rename(name)
+    result.attrs = attrs
+    if stack.rio.crs is not None:
+        result = result.rio.write_crs(stack.rio.crs)
+    return result
+
+
+def _predict_proba_of(estimator):
+    """predict_proba on plain arrays, even for an estimator fitted on a named table."""
+    names = getattr(estimator, "feature_names_in_", None)
+    if names is None:
+        return estimator.predict_proba
+    import pandas as pd
+
+    cols = [str(n) for n in names]
+    return lambda X: estimator.predict_proba(pd.DataFrame(X, columns=cols))
+
+
+def project_suitability(estimator, stack: xr.DataArray, variables, training_range, *, clamp=True) -> xr.DataArray:
+    """Suitability (0–1, float32, NaN off the valid area) of ``stack`` under ``estimator``.
+
+    A PointProcessModel (alone or as a member of a SkillWeightedEnsemble) is evaluated
+    with the exact piecewise-quadratic table of :mod:`envelope.kernels.predict` (no
+    feature matrix is built); any other estimator through its own ``predict_proba`` in
+    batches of :data:`CELL_BATCH` cells.
+
+    Parameters
+    ----------
+    estimator : fitted classifier with ``predict_proba(X)[:, 1]`` = suitability
+    stack : DataArray (variable, y, x)
+    variables : list of str, the model's variables in training order
+    training_range : mapping name -> (min, max); values are clamped into it when ``clamp``
+        (the default), so the model is not asked to extrapolate its response curves
+        beyond the training data (Elith, Kearney & Phillips 2010 discuss the choice).
+    clamp : bool, default=True
+
+    Returns
+    -------
+    DataArray (y, x), lazy when ``stack`` is dask-backed, CRS kept.
+
+    References
+    ----------
+    Elith, J., Kearney, M. & Phillips, S. (2010) The art of modelling range-shifting
+    species. Methods in Ecology and Evolution 1: 330–342.
+    """
+    stack = match_variables(stack, variables)
+    lower = upper = None
+    if clamp:
+        lower = np.array([training_range[v][0] for v in variables], dtype=np.float64)
+        upper = np.array([training_range[v][1] for v in variables], dtype=np.float64)
+    if stack.chunks is not None:
+        stack = stack.chunk({"variable": -1})
+    result = xr.apply_ufunc(
+        _suitability_block, stack,
+        kwargs={"members": _members(estimator), "lower": lower, "upper": upper},
+        input_core_dims=[["variable"]],
+        dask="parallelized",
+        output_dtypes=[np.float32],
+    )
+    result = result.drop_vars([c for c in ("units",) if c in result.coords])
+    return _layer_like(result.transpose("y", "x"), stack, "suitability",
+                       {"long_name": "climatic suitability", "units": "1"})
+
+
+def _mess_block(block, reference):
+    from envelope.kernels.mess import mess
+
+    X, shape = _as_cells(block)
+    out = np.full((2, X.shape[1]), np.nan, dtype=np.float32)
+    valid = np.flatnonzero(np.isfinite(X).all(axis=0))
+    if valid.size:
+        values, index = mess(X[:, valid].T.astype(np.float64), reference)
+        out[0, valid] = values
+        out[1, valid] = index
+    return np.moveaxis(out.reshape((2,) + shape), 0, -1)
+
+
+def project_mess(stack: xr.DataArray, variables, reference) -> xr.DataArray:
+    """MESS and most-dissimilar variable of every cell against the training reference (lazy).
+
+    Parameters
+    ----------
+    stack : DataArray (variable, y, x)
+    variables : list of str, the model's variables in training order
+    reference : MessReference or dict
+        The training reference of :func:`envelope.kernels.mess.reference_from_training`,
+        or its ``to_dict()`` form as stored in a model file's ``mess_reference``.
+
+    Returns
+    -------
+    DataArray (variable, y, x) float32, layer ``mess`` (MESS, negative = novel climate) and
+    ``most_dissimilar`` (index into ``variables``, NaN off the valid area); attrs
+    ``variables`` lists the names.
+
+    References
+    ----------
+    Elith, J., Kearney, M. & Phillips, S. (2010) The art of modelling range-shifting
+    species. Methods in Ecology and Evolution 1: 330–342.
+    """
+    from envelope.kernels.mess import MessReference
+
+    if isinstance(reference, dict):
+        reference = MessReference.from_dict(reference)
+    if reference.n_variables != len(variables):
+        raise InputError(f"mess_reference: {reference.n_variables} variables; the model has "
+                         f"{len(variables)} ({', '.join(variables)})")
+    stack = match_variables(stack, variables)
+    if stack.chunks is not None:
+        stack = stack.chunk({"variable": -1})
+    result = xr.apply_ufunc(
+        _mess_block, stack, kwargs={"reference": reference},
+        input_core_dims=[["variable"]], output_core_dims=[["band"]],
+        dask="parallelized", output_dtypes=[np.float32],
+        dask_gufunc_kwargs={"output_sizes": {"band": 2}},
+    )
+    result = result.drop_vars([c for c in ("units",) if c in result.coords])
+    result = result.rename({"band": "variable"}).assign_coords(variable=list(MESS_BANDS))
+    result = result.transpose("variable", "y", "x")
+    return _layer_like(result, stack, "mess", {"long_name": "multivariate environmental similarity",
+                                                "variables": list(variables)})
+
+
+def novel_share(mess_values: xr.DataArray, cell_area: xr.DataArray) -> float:
+    """Share of the valid area in novel climate: sum of true cell areas where MESS < 0
+    over the sum where MESS is defined (area weighting, not cell counting)."""
+    valid = mess_values.notnull()
+    novel = (mess_values < 0) & valid
+    area = cell_area.astype(np.float64)
+    total, novel_area = xr.dot(area, valid.astype(np.float64)), xr.dot(area, novel.astype(np.float64))
+    import dask
+
+    total, novel_area = dask.compute(total, novel_area)
+    total = float(total)
+    return float(novel_area) / total if total > 0 else float("nan")
+
+
+def binary_map(suitability: xr.DataArray, threshold: float, *, nodata: int = 255) -> xr.DataArray:
+    """uint8 map: 1 where suitability >= ``threshold``, 0 below, ``nodata`` where undefined (lazy)."""
+    out = xr.where(suitability.isnull(), nodata, (suitability >= threshold).astype(np.uint8)).astype(np.uint8)
+    out = out.rename("suitable")
+    out.attrs = {"long_name": "suitable at threshold", "threshold": float(threshold)}
+    if suitability.rio.crs is not None:
+        out = out.rio.write_crs(suitability.rio.crs)
+    return out
+
+
+# Spatial chunk of the streamed stack: with 19 float32 variables a 1024 x 1024 chunk is
+# 76 MiB, so a few chunks in flight per thread bound the working set whatever the grid size.
+PROJECT_CHUNKS = {"y": 1024, "x": 1024}
+BINARY_CATEGORIES = {0: "unsuitable", 1: "suitable"}
+BINARY_NODATA = 255
+
+
+@contextlib.contextmanager
+def scheduler_context(address=None):
+    """Run dask work on the dask.distributed scheduler at ``address``; local threads when None."""
+    if not address:
+        yield None
+        return
+    try:
+        from distributed import Client
+    except ImportError:
+        raise InputError("--scheduler needs dask.distributed; install the 'distributed' package") from None
+    try:
+        client = Client(address, timeout="10s", set_as_default=True)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise InputError(f"--scheduler {address}: cannot connect ({exc}); expected the address of a "
+                         "running dask.distributed scheduler, e.g. tcp://127.0.0.1:8786") from None
+    try:
+        yield client
+    finally:
+        client.close()
+
+
+def load_projection_model(model_file):
+    """``(estimator, metadata, method, sha256)`` of a model file (errors name the file)."""
+    from envelope.fitting import file_sha256
+    from envelope.io.modelfile import load_model, read_manifest
+
+    estimator, metadata = load_model(model_file)
+    method = read_manifest(model_file)["method"]
+    variables = [str(v["name"]) for v in metadata["variables"]]
+    threshold = metadata.get("threshold") or {}
+    if not isinstance(threshold, dict) or threshold.get("value") is None:
+        raise InputError(f"{model_file}: model metadata has no threshold value; expected "
+                         "metadata['threshold'] = {'value', 'rule'} (refit with envelope fit)")
+    return estimator, metadata, variables, method, file_sha256(model_file)
+
+
+def projection_tags(model_file, method, sha256, metadata, climate, clamp) -> dict:
+    """Provenance tags of a suitability raster (threshold, method, model file, climate, clamping)."""
+    from envelope import __version__
+
+    threshold = metadata["threshold"]
+    return {"threshold": float(threshold["value"]), "threshold_rule": str(threshold.get("rule", "")),
+            "method": method, "model_file": str(model_file), "model_sha256": sha256,
+            "climate": [str(c) for c in climate], "clamped": bool(clamp),
+            "envelope_version": __version__}
+
+
+def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, clamp=True,
+                 overwrite=False, scheduler=None, chunks=None) -> dict:
+    """Project a model file onto climate grid file(s) and write suitability (and MESS, binary).
+
+    Everything is streamed chunk by chunk; the outputs appear together at the end or
+    not at all (nothing half-written). The MESS raster is written first, so the share of
+    the area in novel climate (MESS < 0, weighted by true cell areas) can go into the
+    suitability raster's tags; the binary map is read back from the written suitability.
+
+    Parameters
+    ----------
+    model_file : path of an ``.envm`` model file
+    climate : path or list of paths opened with :func:`envelope.io.rasters.open_climate`
+    out : path (.tif or .nc) of the suitability raster (float32, 0–1)
+    mess_out : path, optional
+        2-layer raster: ``mess`` and ``most_dissimilar`` (index; names in the
+        ``categories`` tag).
+    binary_out : path, optional
+        uint8 map, 1 = suitable (suitability >= threshold), 0 = unsuitable, 255 = nodata.
+    clamp : bool, default=True
+    overwrite : bool, default=False
+    scheduler : str, optional
+        dask.distributed scheduler address.
+    chunks : dict, optional
+        Spatial chunks of the streamed stack (default :data:`PROJECT_CHUNKS`).
+
+    Returns
+    -------
+    dict with ``out``, ``mess``, ``binary``, ``novel_share`` (None without MESS),
+    ``threshold``, ``method``, ``n_cells``.
+    """
+    from envelope.io.atomic import atomic_outputs, check_writable
+    from envelope.io.rasters import open_climate
+
+    climate = [climate] if isinstance(climate, (str, os.PathLike)) else list(climate)
+    targets = [p for p in (out, mess_out, binary_out) if p is not None]
+    if len({os.path.abspath(p) for p in targets}) != len(targets):
+        raise InputError(f"outputs: the same file is given twice ({', '.join(map(str, targets))})")
+    for p in targets:
+        check_writable(p, overwrite)
+    estimator, metadata, variables, method, sha = load_projection_model(model_file)
+    if mess_out is not None and not metadata.get("mess_reference"):
+        raise InputError(f"{model_file}: model metadata has no mess_reference; cannot write MESS")
+    bounds = training_range(metadata) if clamp else None
+    stack = open_climate(climate, chunks=_chunk_spec(chunks))
+    stack = match_variables(stack, variables, source=", ".join(map(str, climate)))
+    tags = projection_tags(model_file, method, sha, metadata, climate, clamp)
+    with scheduler_context(scheduler), atomic_outputs(targets, overwrite=overwrite) as tmps:
+        summary = _write_projection(estimator, stack, variables, bounds, metadata, tags,
+                                    dict(zip(["out"] + (["mess"] if mess_out else []) + (["binary"] if binary_out else []), tmps)))
+    summary.update(out=str(out), mess=None if mess_out is None else str(mess_out),
+                   binary=None if binary_out is None else str(binary_out))
+    return summary
+
+
+def _chunk_spec(chunks):
+    spec = dict(PROJECT_CHUNKS if chunks is None else chunks)
+    # rioxarray chunks a GeoTIFF by (band, y, x): one band per chunk, merged per cell later
+    return {"band": 1, **spec}
+
+
+def _on_cluster() -> bool:
+    try:
+        from distributed import default_client
+        default_client()
+        return True
+    except (ImportError, ValueError):
+        return False
+
+
+def _for_writing(layer: xr.DataArray) -> xr.DataArray:
+    """The layer as handed to ``write_raster``.
+
+    ``write_raster`` stores dask chunks under a ``threading.Lock``, which cannot be sent to
+    dask.distributed workers; on a cluster the layer is therefore computed there and only
+    the finished output layer (4 bytes a cell, never the climate stack) is gathered here
+    and written. Locally the layer stays lazy and is streamed chunk by chunk.
+    """
+    return layer.compute() if _on_cluster() else layer
+
+
+def _write_projection(estimator, stack, variables, bounds, metadata, tags, paths) -> dict:
+    """Write suitability (+ MESS, binary) of ``stack`` to the (temporary) ``paths``."""
+    from envelope.grids import cell_area_km2
+    from envelope.io.rasters import open_layer, write_raster
+
+    tags = dict(tags)
+    share = None
+    if "mess" in paths:
+        mess_da = project_mess(stack, variables, metadata["mess_reference"])
+        write_raster(_for_writing(mess_da), paths["mess"], overwrite=True,
+                     tags={**tags, "most_dissimilar_variables": list(variables)},
+                     categories=dict(enumerate(variables)))
+        written = open_layer(paths["mess"], band="mess")
+        share = novel_share(written, cell_area_km2(written))
+        tags["novel_share"] = share
+    suitability = project_suitability(estimator, stack, variables, bounds, clamp=bounds is not None)
+    write_raster(_for_writing(suitability), paths["out"], overwrite=True, tags=tags)
+    threshold = float(tags["threshold"])
+    if "binary" in paths:
+        written = open_layer(paths["out"])
+        write_raster(_for_writing(binary_map(written, threshold, nodata=BINARY_NODATA)), paths["binary"], overwrite=True,
+                     tags={**tags, "nodata": BINARY_NODATA}, categories=BINARY_CATEGORIES,
+                     nodata=BINARY_NODATA)
+    return {"novel_share": share, "threshold": threshold, "method": tags["method"],
+            "n_cells": int(stack.sizes["y"] * stack.sizes["x"])}
+
+
+__all__ = ["BINARY_CATEGORIES", "CELL_BATCH", "MESS_BANDS", "binary_map", "match_variables", "novel_share", "pointprocess_table",
+           "load_projection_model", "project_file", "project_mess", "project_suitability", "projection_tags",
+           "scheduler_context", "training_range"]

@@ -1,0 +1,264 @@
+"""Tests of projection onto climate grids: suitability, clamping, MESS, novel share, tags, laziness, distributed."""
+
+import numpy as np
+import pytest
+import xarray as xr
+import rioxarray  # noqa: F401
+from dask.callbacks import Callback
+
+from envelope.errors import InputError, ModelError, OutputExistsError
+from envelope.io.modelfile import save_model
+from envelope.io.rasters import open_layer, read_tags, write_raster
+from envelope.kernels.mess import mess, reference_from_training
+from envelope.models import BoostedTrees, PointProcessModel
+from envelope.projection import (match_variables, novel_share, project_file, project_mess,
+                                 project_suitability, training_range)
+
+NAMES = ["t", "p", "q"]
+
+
+def _grid(values, names=NAMES, lon0=-150.0, lat0=-40.0, res=0.5):
+    values = np.asarray(values, dtype=np.float32)
+    _, ny, nx = values.shape
+    da = xr.DataArray(values, dims=("variable", "y", "x"),
+                      coords={"variable": list(names), "y": lat0 - res * (np.arange(ny) + 0.5),
+                              "x": lon0 + res * (np.arange(nx) + 0.5)}, name="climate")
+    return da.rio.write_crs("EPSG:4326")
+
+
+def _training(seed=0, p=3):
+    rng = np.random.default_rng(seed)
+    X = np.r_[rng.normal(0.5, 0.5, (120, p)), rng.normal(0, 1, (1200, p))]
+    y = np.r_[np.ones(120), np.zeros(1200)]
+    return X, y
+
+
+def _metadata(X, names=NAMES):
+    return {"variables": [{"name": n, "units": "", "min": float(X[:, j].min()), "max": float(X[:, j].max())}
+                          for j, n in enumerate(names)],
+            "threshold": {"value": 0.25, "rule": "max_tss"},
+            "mess_reference": reference_from_training(X).to_dict()}
+
+
+@pytest.fixture(scope="module")
+def fitted():
+    X, y = _training()
+    model = PointProcessModel(classes=("linear", "quadratic", "product", "hinge"), n_knots=5, C=20.0).fit(X, y)
+    return model, X
+
+
+@pytest.fixture
+def files(tmp_path, fitted):
+    model, X = fitted
+    save_model(tmp_path / "m.envm", model, _metadata(X))
+    rng = np.random.default_rng(3)
+    grid = _grid(rng.normal(0, 1.6, (3, 20, 24)))
+    grid[:, 0, 0] = np.nan
+    write_raster(grid, tmp_path / "clim.tif")
+    return tmp_path, model, X, grid
+
+
+def _clamped_rows(grid, X):
+    cells = grid.values.reshape(grid.sizes["variable"], -1).T.astype(np.float64)
+    return np.clip(cells, X.min(0), X.max(0))
+
+
+@pytest.mark.parametrize("chunked", [False, True])
+def test_suitability_equals_estimator(fitted, chunked):
+    # Source: the estimator's own predict_proba on the clamped cells
+    model, X = fitted
+    grid = _grid(np.random.default_rng(1).normal(0, 2, (3, 9, 11)))
+    grid[1, 2, 3] = np.nan
+    stack = grid.chunk({"y": 4, "x": 5}) if chunked else grid
+    got = project_suitability(model, stack, NAMES, dict(zip(NAMES, zip(X.min(0), X.max(0))))).values
+    rows = _clamped_rows(grid, X)
+    ok = np.isfinite(rows).all(axis=1)
+    np.testing.assert_allclose(got.ravel()[ok], model.predict_proba(rows[ok])[:, 1], atol=1e-6)  # float32 output
+    assert np.isnan(got[2, 3]) and got.dtype == np.float32
+
+
+def test_generic_estimator_path_and_variable_order():
+    # Source: BoostedTrees' own predict_proba; the grid lists variables in another order
+    X, y = _training(p=2)
+    brt = BoostedTrees(max_iter=20, early_stopping=False, random_state=0).fit(X, y)
+    grid = _grid(np.random.default_rng(2).normal(0, 1, (2, 6, 7)), names=["p", "t"])
+    got = project_suitability(brt, grid.chunk({"x": 3}), ["t", "p"], None, clamp=False).values
+    rows = grid.sel(variable=["t", "p"]).values.reshape(2, -1).T
+    np.testing.assert_allclose(got.ravel(), brt.predict_proba(rows)[:, 1], atol=1e-6)
+
+
+def test_missing_variable_named():
+    # Common practice, no source: the error names the missing variable
+    grid = _grid(np.zeros((2, 2, 2)), names=["t", "p"])
+    with pytest.raises(InputError, match="variable 'q' needed by the model is missing"):
+        match_variables(grid, NAMES)
+
+
+def test_training_range_needs_bounds():
+    # Common practice, no source
+    with pytest.raises(InputError, match="'t' has no training min/max"):
+        training_range({"variables": [{"name": "t"}]})
+
+
+def test_mess_grid_against_kernel(fitted):
+    # Source: envelope.kernels.mess.mess on the same cells (reference implementation)
+    model, X = fitted
+    ref = reference_from_training(X)
+    grid = _grid(np.random.default_rng(4).normal(0, 2, (3, 8, 6)))
+    grid[2, 1, 1] = np.nan
+    out = project_mess(grid.chunk({"y": 3}), NAMES, ref.to_dict()).values
+    cells = grid.values.reshape(3, -1).T.astype(np.float64)
+    ok = np.isfinite(cells).all(axis=1)
+    values, index = mess(cells[ok], ref)
+    np.testing.assert_allclose(out[0].ravel()[ok], values, rtol=1e-6)
+    np.testing.assert_array_equal(out[1].ravel()[ok], index)
+    assert np.isnan(out[:, 1, 1]).all()
+
+
+def test_mess_references_item4():
+    # Source: REFERENCES.md item 4 (Elith, Kearney & Phillips 2010 worked example, COMPUTED)
+    ref = reference_from_training(np.c_[np.arange(1.0, 11.0), np.arange(10.0, 101.0, 10.0)])
+    points = np.array([[3.5, 55], [12, 55], [5.5, 55], [7.5, 95], [0, 200]], dtype=np.float32)
+    grid = _grid(points.T[:, None, :], names=["v1", "v2"])
+    out = project_mess(grid, ["v1", "v2"], ref).values
+    np.testing.assert_allclose(out[0, 0], [60, -22.2222222, 100, 20, -111.1111111], atol=1e-4)
+    assert out[1, 0, [0, 1, 3, 4]].tolist() == [0, 0, 1, 1]
+
+
+def test_novel_share_against_hand_area_sum():
+    # Source: pyproj.Geod (WGS84) polygon areas of each cell, summed by hand
+    from pyproj import Geod
+
+    mess_values = np.array([[-1.0, 5.0, np.nan], [3.0, -2.0, -0.5], [7.0, 1.0, 2.0]], dtype=np.float32)
+    res, lon0, lat0 = 10.0, -150.0, -20.0
+    da = xr.DataArray(mess_values, dims=("y", "x"),
+                      coords={"y": lat0 - res * (np.arange(3) + 0.5), "x": lon0 + res * (np.arange(3) + 0.5)})
+    da = da.rio.write_crs("EPSG:4326")
+    from envelope.grids import cell_area_km2
+
+    share = novel_share(da.chunk({"y": 2}), cell_area_km2(da))
+    geod = Geod(ellps="WGS84")
+    area = np.zeros((3, 3))
+    for i in range(3):
+        top, bottom = lat0 - res * i, lat0 - res * (i + 1)
+        for j in range(3):
+            left, right = lon0 + res * j, lon0 + res * (j + 1)
+            # densify the parallels: a geodesic edge between two corners is not a parallel
+            edge = np.linspace(left, right, 2001)
+            lons = np.r_[edge, edge[::-1]]
+            lats = np.r_[np.full(edge.size, bottom), np.full(edge.size, top)]
+            a, _ = geod.polygon_area_perimeter(lons, lats)
+            area[i, j] = abs(a)
+    valid = np.isfinite(mess_values)
+    expected = area[valid & (mess_values < 0)].sum() / area[valid].sum()
+    assert share == pytest.approx(expected, rel=1e-6)
+    assert abs(share - 3 / 8) > 1e-3  # area weighting differs from counting cells
+
+
+class _ComputeCounter(Callback):
+    def __init__(self):
+        super().__init__()
+        self.n = 0
+
+    def _start(self, dsk):
+        self.n += 1
+
+
+def test_wrappers_stay_lazy(files):
+    # Common practice, no source: building the graph runs no dask compute
+    from envelope.io.rasters import open_climate
+
+    tmp, model, X, _ = files
+    stack = open_climate(tmp / "clim.tif", chunks={"band": 1, "y": 8, "x": 8})
+    with _ComputeCounter() as counter:
+        s = project_suitability(model, stack, NAMES, dict(zip(NAMES, zip(X.min(0), X.max(0)))))
+        m = project_mess(stack, NAMES, reference_from_training(X))
+    assert counter.n == 0
+    assert s.chunks is not None and m.chunks is not None
+    with _ComputeCounter() as counter:
+        s.compute()
+    assert counter.n >= 1
+
+
+@pytest.mark.parametrize("suffix", [".tif", ".nc"])
+def test_project_file_tags_round_trip(files, suffix):
+    # Common practice, no source: threshold and provenance survive GeoTIFF and NetCDF
+    tmp, model, X, grid = files
+    out, mess_out, binary = tmp / f"s{suffix}", tmp / f"mess{suffix}", tmp / f"b{suffix}"
+    res = project_file(tmp / "m.envm", tmp / "clim.tif", out, mess_out=mess_out, binary_out=binary)
+    tags = read_tags(out)
+    assert tags["threshold"] == 0.25 and tags["threshold_rule"] == "max_tss"
+    assert tags["method"] == "pointprocess" and tags["clamped"] is True
+    assert len(tags["model_sha256"]) == 64 and tags["novel_share"] == pytest.approx(res["novel_share"])
+    s = open_layer(out).values
+    rows = _clamped_rows(grid, X)
+    ok = np.isfinite(rows).all(axis=1)
+    # Source: the estimator's own predict_proba
+    np.testing.assert_allclose(s.ravel()[ok], model.predict_proba(rows[ok])[:, 1], atol=1e-6)
+    b = open_layer(binary, categorical=True).values if suffix == ".tif" else open_layer(binary).values
+    np.testing.assert_array_equal(b.ravel()[ok], (s.ravel()[ok] >= 0.25).astype(b.dtype))
+    assert read_tags(binary)["categories"] in ({"0": "unsuitable", "1": "suitable"}, {0: "unsuitable", 1: "suitable"})
+    assert read_tags(mess_out)["categories"] in ({"0": "t", "1": "p", "2": "q"}, {0: "t", 1: "p", 2: "q"})
+
+
+def test_no_clamp_changes_extrapolation(files):
+    # Common practice, no source: without clamping the estimator sees the raw values
+    tmp, model, X, grid = files
+    project_file(tmp / "m.envm", tmp / "clim.tif", tmp / "raw.tif", clamp=False)
+    s = open_layer(tmp / "raw.tif").values.ravel()
+    rows = grid.values.reshape(3, -1).T.astype(np.float64)
+    ok = np.isfinite(rows).all(axis=1)
+    np.testing.assert_allclose(s[ok], model.predict_proba(rows[ok])[:, 1], atol=1e-6)
+    assert read_tags(tmp / "raw.tif")["clamped"] is False
+
+
+def test_bad_inputs_write_nothing(files, tmp_path):
+    # Common practice, no source: clear errors, no output left behind
+    tmp, model, X, grid = files
+    bad = tmp / "bad.envm"
+    bad.write_bytes(b"not a model")
+    with pytest.raises(ModelError, match="bad.envm"):
+        project_file(bad, tmp / "clim.tif", tmp / "o1.tif")
+    write_raster(grid.isel(variable=[0, 1]), tmp / "two.tif")
+    with pytest.raises(InputError, match="'q' needed by the model is missing"):
+        project_file(tmp / "m.envm", tmp / "two.tif", tmp / "o2.tif", mess_out=tmp / "o2m.tif")
+    (tmp / "exists.tif").write_bytes(b"x")
+    with pytest.raises(OutputExistsError, match="--overwrite"):
+        project_file(tmp / "m.envm", tmp / "clim.tif", tmp / "o3.tif", mess_out=tmp / "exists.tif")
+    assert not any((tmp / n).exists() for n in ("o1.tif", "o2.tif", "o2m.tif", "o3.tif"))
+    assert not list(tmp.glob("*.part*"))
+
+
+def test_distributed_equals_local(files):
+    # Common practice, no source: the same graph on a dask.distributed cluster gives the same bytes
+    distributed = pytest.importorskip("distributed")
+    tmp, *_ = files
+    project_file(tmp / "m.envm", tmp / "clim.tif", tmp / "local.tif", mess_out=tmp / "local_m.tif")
+    # tcp on loopback: processes=False would otherwise pick the in-process transport
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, protocol="tcp",
+                                  host="127.0.0.1", dashboard_address=None) as cluster:
+        project_file(tmp / "m.envm", tmp / "clim.tif", tmp / "dist.tif", mess_out=tmp / "dist_m.tif",
+                     scheduler=cluster.scheduler_address)
+    np.testing.assert_array_equal(open_layer(tmp / "dist.tif").values, open_layer(tmp / "local.tif").values)
+    for band in ("mess", "most_dissimilar"):
+        np.testing.assert_array_equal(open_layer(tmp / "dist_m.tif", band=band).values,
+                                      open_layer(tmp / "local_m.tif", band=band).values)
+    assert read_tags(tmp / "dist.tif")["novel_share"] == read_tags(tmp / "local.tif")["novel_share"]
+    # the client is closed afterwards: later work runs on local threads again
+    from distributed import default_client
+
+    with pytest.raises(ValueError):
+        default_client()
+
+
+def test_ensemble_uses_member_tables():
+    # Source: SkillWeightedEnsemble's own predict_proba (members' tables summed with its weights)
+    from envelope.models import SkillWeightedEnsemble
+
+    X, y = _training(p=2)
+    ens = SkillWeightedEnsemble(members=[("pp", PointProcessModel(classes=("linear", "hinge"), C=10.0)),
+                                         ("brt", BoostedTrees(max_iter=10, early_stopping=False, random_state=0))],
+                                weights_from={"pp": 0.8, "brt": 0.7}).fit(X, y)
+    grid = _grid(np.random.default_rng(6).normal(0, 1, (2, 5, 6)), names=["t", "p"])
+    got = project_suitability(ens, grid, ["t", "p"], None, clamp=False).values
+    np.testing.assert_allclose(got.ravel(), ens.predict_proba(grid.values.reshape(2, -1).T)[:, 1], atol=1e-6)
