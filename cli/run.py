@@ -16,7 +16,7 @@ def run(study_file, out):
 
     \b
     Examples:
-      $ envelope run sample_grids/demo/study.toml --out demo-run
+      $ envelope run sample_grids/study.toml --out demo-run
       $ envelope -v run my-study.toml --out results/2026-12
     """
     from envelope.study import load_study

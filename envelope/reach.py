@@ -362,7 +362,9 @@ def load_start(path, grid: xr.DataArray, **clean_options):
         from envelope.io.occurrences import read_occurrences
         from envelope.occurrences import clean_occurrences
 
-        records = clean_occurrences(read_occurrences(p), grid, **clean_options)
+        table = read_occurrences(p, x_column=clean_options.pop("x_column", None),
+                                 y_column=clean_options.pop("y_column", None), crs=clean_options.get("crs"))
+        records = clean_occurrences(table, grid, **clean_options)
         occ = np.zeros((grid.sizes["y"], grid.sizes["x"]))
         occ[records.table["row"].to_numpy(), records.table["col"].to_numpy()] = 1.0
         return occ, {"source": str(p), "kind": "records", "n_read": int(records.n_read),

@@ -256,7 +256,10 @@ def _run_reach(study, run_dir, cache, now_path, proj_dir, suit_rows, threshold, 
             now_layer = open_layer(now_path)
             future_layers = [(h, open_layer(p)) for h, p in futures]
             hab = load_habitat(study.habitat.path, now_layer, classes=study.habitat.classes, align=study.habitat.align)
-            start, info = load_start(start_path, now_layer)
+            # records as the start: the same cleaning rules as the fit (a raster start ignores them)
+            r = study.records
+            start, info = load_start(start_path, now_layer, max_uncertainty_m=r.max_uncertainty_m, years=r.years,
+                                     crs=r.crs)
             ds = DispersalSettings(kernel=d.kernel, mean_distance_km=d.mean_distance_km, shape=d.shape,
                                    mean_distance_range_km=d.mean_distance_range_km if d.replicates else None)
             result = simulate_reach(now_layer, future_layers, hab, start, threshold=threshold, settings=ds,

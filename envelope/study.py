@@ -593,7 +593,7 @@ def load_study(path) -> Study:
 
     Examples
     --------
-    >>> study = load_study("sample_grids/demo/study.toml")  # doctest: +SKIP
+    >>> study = load_study("sample_grids/study.toml")  # doctest: +SKIP
     >>> study.model.methods, len(study.scenarios)  # doctest: +SKIP
     (('pointprocess',), 12)
     """

@@ -102,9 +102,12 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
     if change_table is not None and Path(change_table).exists():
         ct = pd.read_csv(change_table)
         cols = [c for c in ("name", "pathway", "climate_model", "horizon", "range_km2.now", "range_km2.future",
-                            "range_change_pct", "area_km2.gained", "area_km2.lost", "leading_edge_shift_km",
+                            "range_change_pct", "area_km2.gained", "area_km2.gained_novel", "area_km2.lost", "leading_edge_shift_km",
                             "centroid_shift_km") if c in ct]
-        rep.add_section("areas", table=ct[cols].round(1), table_caption="Range change by scenario (km², km, %)")
+        shown = ct[cols].round(1)
+        shown["horizon"] = shown["horizon"].astype(str)  # a year, not a quantity
+        rep.add_section("areas", table=shown, table_caption="Range change by scenario (km², km, %); gained "
+                        "excludes gained in novel climate, listed apart")
         if study.outputs.figures and {"range_km2.future", "range_km2.now"} <= set(ct):
             tables.append((figures.plot_range_sizes(ct.rename(columns={"range_km2.future": "range_km2_future",
                                                                        "range_km2.now": "range_km2_now"})),
@@ -132,7 +135,7 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
         "Check the MESS maps for novel climate."])
     rep.add_section("methods", paragraphs=[
         "Presence/background point-process model (penalised logistic regression with weighted background, "
-        "complementary log-log output), spatial block cross-validation, MESS, delta-free scenario grids as given, "
+        "complementary log-log output), spatial block cross-validation, MESS against the training climate, "
         "habitat-gated integrodifference spread. Equations and references: docs/methods.md and docs/dispersal.md."])
     rep.write(report_path, overwrite=True)
     return Path(report_path)
