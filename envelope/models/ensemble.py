@@ -129,7 +129,10 @@ class SkillWeightedEnsemble(PresenceBackgroundClassifier, BaseEstimator):
         self.weights_ = skill / skill.sum()
         self.dropped_ = [n for n in names if n not in kept]
         by_name = dict(self.members)
-        self.members_ = [(n, clone(by_name[n]).fit(X, y, sample_weight=w)) for n in kept]
+        # members that tune themselves on folds (the point-process penalty) get the same
+        # spatial folds the ensemble was given
+        self.members_ = [(n, clone(by_name[n]).fit(X, y, sample_weight=w, **_groups_for(by_name[n], groups)))
+                         for n in kept]
         return self
 
     def _member_suitability(self, X):
@@ -145,3 +148,11 @@ class SkillWeightedEnsemble(PresenceBackgroundClassifier, BaseEstimator):
         S = self._member_suitability(X)
         mean = self.weights_ @ S
         return np.sqrt(np.maximum(self.weights_ @ (S - mean) ** 2, 0.0))
+
+
+def _groups_for(estimator, groups) -> dict:
+    import inspect
+
+    if groups is None:
+        return {}
+    return {"groups": groups} if "groups" in inspect.signature(estimator.fit).parameters else {}
