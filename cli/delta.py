@@ -13,6 +13,7 @@ from envelope.cli.options import overwrite_opt, output_opt, positive_float
 # Method per monthly variable of the batch form (Hay, Wilby & Leavesley 2000).
 VARIABLE_METHODS = {"tmin": "additive", "tmax": "additive", "tmean": "additive", "prec": "ratio"}
 MODEL_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "variable", "historical", "future")
+MODEL_TABLE_OPTIONAL = ("model_variable",)  # NetCDF variable to read from the model files (default: `variable`)
 _UNITS = {"tmin": "temperature", "tmax": "temperature", "tmean": "temperature", "prec": "precipitation"}
 MONTHLY_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "variable", "path")
 
@@ -49,7 +50,8 @@ def _parse_baselines(values):
 def read_model_table(path) -> dict[str, dict]:
     """Read MODELS.csv: one row per scenario and monthly variable; paths relative to the table.
 
-    Returns scenario name -> {"pathway", "climate_model", "horizon", "files": {variable: (hist, fut)}}.
+    Returns scenario name -> {"pathway", "climate_model", "horizon", "files": {variable: (hist, fut)},
+    "model_variables": {variable: NetCDF variable name from the optional ``model_variable`` column, or None}}.
     """
     from envelope.errors import InputError
 
@@ -77,7 +79,7 @@ def read_model_table(path) -> dict[str, dict]:
         except ValueError:
             raise InputError(f"{path}: line {i} horizon {row['horizon']!r}; expected a year") from None
         meta = {"pathway": row["pathway"], "climate_model": row["climate_model"], "horizon": horizon}
-        entry = scenarios.setdefault(name, {**meta, "files": {}})
+        entry = scenarios.setdefault(name, {**meta, "files": {}, "model_variables": {}})
         if {k: entry[k] for k in meta} != meta:
             raise InputError(f"{path}: line {i}: scenario {name!r} has a different pathway, climate model "
                              "or horizon than on its earlier lines")
@@ -92,6 +94,7 @@ def read_model_table(path) -> dict[str, dict]:
                 raise InputError(f"{path}: line {i} {col} file {p} not found")
             files.append(p)
         entry["files"][var] = tuple(files)
+        entry["model_variables"][var] = row.get("model_variable") or None
     return scenarios
 
 
@@ -101,6 +104,9 @@ def read_model_table(path) -> dict[str, dict]:
 @click.option("--model-historical", type=click.Path(dir_okay=False), help="Model climatology, historical period.")
 @click.option("--model-future", type=click.Path(dir_okay=False), help="Model climatology, future period.")
 @output_opt(required=False, help="Future monthly stack on the baseline grid (single form).")
+@click.option("--variable", "model_variable", default=None, metavar="NAME",
+              help="Single form: NetCDF variable to read from the model files (default: the only one, "
+                   "else the one named like the baseline file).")
 @click.option("--method", type=click.Choice(["additive", "ratio"]), default=None,
               help="additive (temperature) or ratio (precipitation); default from the baseline's units.")
 @click.option("--ratio-floor", type=float, default=1.0, show_default=True, callback=positive_float,
@@ -113,7 +119,7 @@ def read_model_table(path) -> dict[str, dict]:
               help="Batch form: also write BIO layers per scenario and a scenario table pointing at them.")
 @convention_options
 @overwrite_opt
-def delta(baselines, model_historical, model_future, out, method, ratio_floor, max_ratio, table, out_dir,
+def delta(baselines, model_historical, model_future, out, model_variable, method, ratio_floor, max_ratio, table, out_dir,
           with_bioclim, gdd_base, wrap, ddof, cv_plus_one, overwrite):
     """Build scenario grids by the delta (change-factor) method.
 
@@ -122,14 +128,20 @@ def delta(baselines, model_historical, model_future, out, method, ratio_floor, m
     precipitation) is interpolated bilinearly onto the baseline grid and applied to the
     baseline. Model grids may be coarse, in another CRS, with 0..360 longitudes.
 
+    A model file holding several variables is read at --variable, or by default at the
+    variable named like the baseline file (tmin.tif -> tmin).
+
     The batch form reads a table of climate models x pathways x horizons (one row per
-    scenario and variable) and writes DIR/<name>/<variable>.tif and DIR/monthly.csv; with
+    scenario and variable; an optional model_variable column names the NetCDF variable
+    when it differs from the row's variable) and writes DIR/<name>/<variable>.tif and DIR/monthly.csv; with
     --bioclim also DIR/<name>/bioclim.tif and DIR/scenarios.csv
     (name,pathway,climate_model,horizon,path), which `envelope project` reads directly.
 
     \b
     Examples:
       $ envelope delta --baseline tmin.tif --model-historical hist.nc --model-future fut.nc --out tmin_2050.tif
+      $ envelope delta --baseline tn.tif --model-historical hist.nc --model-future fut.nc --variable tmin \\
+          --out tmin_2050.tif
       $ envelope delta --table models.csv --baseline tmin=tmin.tif --baseline tmax=tmax.tif \\
           --baseline prec=prec.tif --out-dir scenarios --bioclim
     """
@@ -141,35 +153,61 @@ def delta(baselines, model_historical, model_future, out, method, ratio_floor, m
         if not (model_historical and model_future and out) or len(baselines) != 1:
             raise InputError("single form needs one --baseline, --model-historical, --model-future and --out "
                              "(or use --table for the batch form)")
-        _single(baselines[0], model_historical, model_future, out, method, ratio_floor, max_ratio, overwrite)
+        _single(baselines[0], model_historical, model_future, out, model_variable, method, ratio_floor, max_ratio,
+                overwrite)
         return
-    if model_historical or model_future or out or method:
-        raise InputError("--model-historical/--model-future/--out/--method belong to the single form; "
-                         "with --table the table names the model files and --out-dir the output folder")
+    if model_historical or model_future or out or method or model_variable:
+        raise InputError("--model-historical/--model-future/--out/--method/--variable belong to the single form; "
+                         "with --table the table names the model files (and their model_variable) "
+                         "and --out-dir the output folder")
     if not out_dir:
         raise InputError("--table needs --out-dir DIR for the outputs")
     _batch(table, _parse_baselines(baselines), Path(out_dir), ratio_floor, max_ratio, with_bioclim,
            {"gdd_base": gdd_base, "wrap": wrap, "ddof": int(ddof), "cv_plus_one": cv_plus_one}, overwrite)
 
 
-def _single(baseline_path, hist_path, fut_path, out, method, ratio_floor, max_ratio, overwrite):
+def _single(baseline_path, hist_path, fut_path, out, model_variable, method, ratio_floor, max_ratio, overwrite):
     from envelope.io.atomic import check_writable
     from envelope.io.monthly import open_monthly, write_monthly
 
     check_writable(out, overwrite)
     baseline = open_monthly(baseline_path, name="baseline")
     method = _method_for(method, baseline, baseline_path)
-    future = _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio)
+    preferred = Path(baseline_path).stem
+    variables = {role: _model_variable(p, model_variable, preferred, "add --variable NAME to pick one")
+                 for role, p in (("historical", hist_path), ("future", fut_path))}
+    future = _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables)
     write_monthly(future, out, overwrite=overwrite, tags=_tags(future, baseline_path, hist_path, fut_path))
     click.echo(f"Wrote {method} delta-method monthly stack to {out}")
 
 
-def _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio):
+def _model_variable(path, requested, preferred, hint):
+    """The NetCDF variable to read from a model file: as requested, the only one, or the one called ``preferred``.
+
+    None lets :func:`envelope.io.monthly.open_monthly` decide (a GeoTIFF, or a single
+    gridded variable); a requested name is checked by ``open_monthly`` itself.
+    """
+    from envelope.errors import InputError
+    from envelope.io.monthly import gridded_variables
+
+    if requested:
+        return requested
+    names = gridded_variables(path)
+    if names is None or len(names) == 1:
+        return None
+    if preferred in names:
+        return preferred
+    raise InputError(f"{path}: {len(names)} gridded variables ({', '.join(names) or 'none'}) and none "
+                     f"called {preferred!r}; {hint}")
+
+
+def _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables=None):
     from envelope.delta import delta as delta_method
     from envelope.io.monthly import open_monthly
 
-    hist = open_monthly(hist_path, name="historical")
-    fut = open_monthly(fut_path, name="future")
+    variables = variables or {}
+    hist = open_monthly(hist_path, name="historical", variable=variables.get("historical"))
+    fut = open_monthly(fut_path, name="future", variable=variables.get("future"))
     return delta_method(baseline, hist, fut, method=method, ratio_floor=ratio_floor, max_ratio=max_ratio,
                         names={"baseline": str(baseline_path), "historical": str(hist_path),
                                "future": str(fut_path)})
@@ -208,8 +246,12 @@ def _batch(table, baseline_paths, out_dir, ratio_floor, max_ratio, with_bioclim,
         futures = {}
         for var, (hist_path, fut_path) in sc["files"].items():
             method = VARIABLE_METHODS.get(var) or _method_for(None, baselines[var], baseline_paths[var])
+            requested = sc["model_variables"].get(var)
+            hint = f"add a model_variable column to {table} to pick one"
+            variables = {role: _model_variable(p, requested, var, hint)
+                         for role, p in (("historical", hist_path), ("future", fut_path))}
             futures[var] = _future(baselines[var], baseline_paths[var], hist_path, fut_path, method,
-                                   ratio_floor, max_ratio)
+                                   ratio_floor, max_ratio, variables)
             rel = Path(name) / f"{var}.tif"
             jobs.append(("monthly", futures[var], rel,
                          _tags(futures[var], baseline_paths[var], hist_path, fut_path)))

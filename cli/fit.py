@@ -107,7 +107,7 @@ def fit(presences, climate, out, summary, method, n_background, bias, variables,
             bar.update(tasks[stage], completed=done)
 
         result = fit_model(presences, stack, options=options, bias=bias_layer, climate_paths=climate,
-                           progress=progress)
+                           bias_path=bias, progress=progress)
     paths = write_fit_outputs(result, out, summary, overwrite=overwrite)
     print_fit_summary(result.summary, paths)
 

@@ -62,19 +62,31 @@ def _text_lines(path, s: dict):
     if isinstance(cv, dict):
         head = ", ".join(f"{k} {cv[k]}" for k in ("scheme", "n_folds") if k in cv)
         yield f"Cross-validation  {head or '-'}"
+        # envelope/fitting.py writes flat keys (auc_mean, auc_sd, ...); older manifests a nested "metrics"
+        for key, label in _CV_METRICS:
+            if f"{key}_mean" in cv or f"{key}_sd" in cv:
+                yield f"  {label:<16} {_fmt(cv.get(f'{key}_mean'))} ± {_fmt(cv.get(f'{key}_sd'))}"
         for name, m in (cv.get("metrics") or {}).items():
             if isinstance(m, dict):
-                yield f"  {name:<10} {_fmt(m.get('mean'))} ± {_fmt(m.get('sd'))}"
+                yield f"  {name:<16} {_fmt(m.get('mean'))} ± {_fmt(m.get('sd'))}"
             else:
-                yield f"  {name:<10} {_fmt(m)}"
+                yield f"  {name:<16} {_fmt(m)}"
     else:
         yield "Cross-validation  -"
     prov = s["provenance"]
+    software = dict(s["software"] or {})
     yield "Provenance"
     if isinstance(prov, dict):
         for name, digest in (prov.get("inputs") or {}).items():
             yield f"  {name}  sha256 {str(digest)[:16]}…"
         for k, v in prov.items():
-            if k != "inputs":
+            if k == "software" and isinstance(v, dict):
+                # the fit records its versions here too; merge them into the one software line
+                software = {**v, **software}
+            elif k != "inputs":
                 yield f"  {k}: {_fmt(v)}"
-    yield "  software: " + ", ".join(f"{k} {v}" for k, v in s["software"].items())
+    yield "  software: " + (", ".join(f"{k} {v}" for k, v in software.items()) or "-")
+
+
+_CV_METRICS = (("auc", "AUC"), ("tss", "TSS"), ("kappa", "kappa"), ("boyce", "Boyce"),
+               ("omission_p10", "omission at P10"))

@@ -102,7 +102,7 @@ class FitOptions:
 
 
 def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, mask=None,
-              climate_paths=(), progress=None) -> FitResult:
+              climate_paths=(), bias_path=None, progress=None) -> FitResult:
     """Clean records, draw background, cross-validate, fit the final model and describe it.
 
     Parameters
@@ -116,6 +116,8 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         Sampling-effort raster for the background draw; area the background may come from.
     climate_paths : sequence of path-like
         The files behind ``climate``, for provenance checksums.
+    bias_path : path-like, optional
+        The file behind ``bias``, for the provenance checksums.
     progress : callable(stage: str, done: int, total: int), optional
 
     Returns
@@ -223,6 +225,8 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     inputs = {str(records_path): file_sha256(records_path)}
     for p in climate_paths:
         inputs[str(p)] = file_sha256(p)
+    if bias_path is not None:
+        inputs[str(bias_path)] = file_sha256(bias_path)
     cv_block = {"scheme": opt.cv_scheme, "n_folds": opt.n_folds, "block_km": block_km,
                 "block_size_rule": block_info, **{k: _num(v) for k, v in cv.items()}}
     transform = climate.rio.transform()

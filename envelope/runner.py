@@ -143,7 +143,8 @@ def run_study(study, run_dir, *, progress=None) -> dict:
                               threshold_rule=study.model.threshold_rule, seed=study.model.seed,
                               max_uncertainty_m=r.max_uncertainty_m, years=r.years, thin_km=r.thin_km or None,
                               x_column=r.x_column, y_column=r.y_column, records_crs=r.crs)
-            result = fit_model(r.path, stack, options=opts, bias=bias, climate_paths=baseline)
+            result = fit_model(r.path, stack, options=opts, bias=bias, climate_paths=baseline,
+                               bias_path=study.model.bias or None)
             write_fit_outputs(result, model_path, summary_path, overwrite=True)
 
         cache.run(f"fit:{m}", {"records": settings["records"], "model": settings["model"], "method": m,

@@ -12,7 +12,7 @@ import xarray as xr
 
 from envelope.errors import InputError
 
-__all__ = ["open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "kind_of_units"]
+__all__ = ["gridded_variables", "open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "kind_of_units"]
 
 log = logging.getLogger(__name__)
 
@@ -107,12 +107,36 @@ def _pick_variable(ds, path, name, variable):
                      f"expected one, or one called {name!r}")
 
 
-def _open_netcdf(path, chunks, name, variable):
+def _open_dataset(path, chunks):
     try:
-        ds = xr.open_dataset(path, chunks=chunks, mask_and_scale=True, decode_coords="all",
-                             decode_times=xr.coders.CFDatetimeCoder(use_cftime=None))
+        return xr.open_dataset(path, chunks=chunks, mask_and_scale=True, decode_coords="all",
+                               decode_times=xr.coders.CFDatetimeCoder(use_cftime=None))
     except Exception as exc:  # netCDF4/h5netcdf raise several unrelated types
         raise InputError(f"{path}: cannot read as NetCDF ({str(exc).splitlines()[0] if str(exc) else type(exc).__name__})") from None
+
+
+def gridded_variables(path) -> list[str] | None:
+    """Names of the gridded (3-D or more) variables of a NetCDF file; None for a GeoTIFF.
+
+    Only the file's header is read (the data stay on disk), so a caller can choose the
+    ``variable=`` of :func:`open_monthly` before opening the stack.
+
+    Raises
+    ------
+    InputError
+        Naming the file: not found or not readable as NetCDF.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: file not found")
+    if path.suffix.lower() not in _NETCDF:
+        return None
+    with _open_dataset(path, {}) as ds:
+        return [str(v) for v in ds.data_vars if ds[v].ndim >= 3]
+
+
+def _open_netcdf(path, chunks, name, variable):
+    ds = _open_dataset(path, chunks)
     da = _pick_variable(ds, path, name, variable)
     xdim = _find_dim(da, _X_NAMES, "x", path)
     ydim = _find_dim(da, _Y_NAMES, "y", path)

@@ -10,6 +10,7 @@ import xarray as xr
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
+from envelope.demo_data import demo_dir
 from envelope.scenarios import read_scenarios
 
 # Source: REFERENCES item 5 inputs (hand-made 12-month series), used as the fine baseline.
@@ -145,3 +146,67 @@ def test_form_mixups(tmp_path, extra, phrase):
     base = write_baseline(tmp_path / "tmin.tif", TMIN, "degC")
     result = CliRunner().invoke(cli, ["delta", "--baseline", base, *extra])
     assert result.exit_code == 2 and phrase in result.output
+
+
+DEMO_MONTHLY = demo_dir() / "monthly"
+DEMO_HIST, DEMO_FUT = DEMO_MONTHLY / "model-a_historical.nc", DEMO_MONTHLY / "model-a_high_2080.nc"
+
+
+def test_single_form_picks_one_variable_of_a_multi_variable_model(tmp_path):
+    # Analytic: bilinear interpolation is a convex combination of the four surrounding cells
+    # (Press et al., Numerical Recipes 3rd ed., section 3.6), so each month's additive change on
+    # the baseline grid lies within that month's range of the model's tmin change.
+    out = tmp_path / "tmin_2080.tif"
+    base = DEMO_MONTHLY / "tmin.tif"
+    result = CliRunner().invoke(cli, ["delta", "--baseline", str(base), "--model-historical", str(DEMO_HIST),
+                                      "--model-future", str(DEMO_FUT), "--variable", "tmin", "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    with rasterio.open(out) as src, rasterio.open(base) as b, \
+            xr.open_dataset(DEMO_HIST) as hist, xr.open_dataset(DEMO_FUT) as fut:
+        assert src.count == 12
+        change = src.read().astype(float) - b.read().astype(float)
+        model_change = (fut["tmin"] - hist["tmin"]).values
+    for m in range(12):
+        got = change[m][np.isfinite(change[m])]
+        assert got.size > 0
+        assert np.nanmin(model_change[m]) - 1e-3 <= got.min() and got.max() <= np.nanmax(model_change[m]) + 1e-3
+    # Common practice, no source: without --variable the baseline's stem (tmin.tif -> tmin) picks the same one
+    again = tmp_path / "default.tif"
+    result = CliRunner().invoke(cli, ["delta", "--baseline", str(base), "--model-historical", str(DEMO_HIST),
+                                      "--model-future", str(DEMO_FUT), "--out", str(again)])
+    assert result.exit_code == 0, result.output
+    with rasterio.open(out) as a, rasterio.open(again) as b:
+        np.testing.assert_array_equal(a.read(), b.read())
+
+
+def test_multi_variable_model_without_a_match_names_the_variables(tmp_path):
+    # Common practice, no source: an ambiguous file is refused with the choices and the way out
+    base = tmp_path / "lowest.tif"
+    base.write_bytes((DEMO_MONTHLY / "tmin.tif").read_bytes())
+    out = tmp_path / "o.tif"
+    result = CliRunner().invoke(cli, ["delta", "--baseline", str(base), "--model-historical", str(DEMO_HIST),
+                                      "--model-future", str(DEMO_FUT), "--out", str(out)])
+    assert result.exit_code == 2
+    assert "3 gridded variables (tmin, tmax, prec)" in result.output and "--variable" in result.output
+    assert not out.exists()
+    result = CliRunner().invoke(cli, ["delta", "--baseline", str(base), "--model-historical", str(DEMO_HIST),
+                                      "--model-future", str(DEMO_FUT), "--variable", "tavg", "--out", str(out)])
+    assert result.exit_code == 2 and "no variable 'tavg'" in result.output
+
+
+def test_batch_model_variable_column(tmp_path):
+    # Common practice, no source: the model_variable column reads the same NetCDF variable the
+    # row's variable would by default, so both rows give identical grids.
+    table = tmp_path / "models.csv"
+    table.write_text("name,pathway,climate_model,horizon,variable,model_variable,historical,future\n"
+                     f"a,high,model-a,2080,tmin,,{DEMO_HIST},{DEMO_FUT}\n"
+                     f"a,high,model-a,2080,lowest,tmin,{DEMO_HIST},{DEMO_FUT}\n")
+    out_dir = tmp_path / "scen"
+    out_dir.mkdir()
+    base = str(DEMO_MONTHLY / "tmin.tif")
+    result = CliRunner().invoke(cli, ["delta", "--table", str(table), "--baseline", f"tmin={base}",
+                                      "--baseline", f"lowest={base}", "--out-dir", str(out_dir)])
+    assert result.exit_code == 0, result.output
+    with rasterio.open(out_dir / "a" / "tmin.tif") as a, rasterio.open(out_dir / "a" / "lowest.tif") as b:
+        assert a.count == 12
+        np.testing.assert_array_equal(a.read(), b.read())

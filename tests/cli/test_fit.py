@@ -52,3 +52,18 @@ def test_presences_without_usable_rows(tmp_path):
     assert result.exit_code == 2
     assert "bad.csv" in result.output
     assert not (tmp_path / "m.envm").exists()
+
+
+def test_bias_file_recorded_in_provenance(tmp_path):
+    # Common practice, no source: every input file of a fit, the bias raster included, is checksummed
+    import hashlib
+
+    from envelope.io.modelfile import read_manifest
+
+    bias = DEMO / "effort.tif"
+    out = tmp_path / "m.envm"
+    result = CliRunner().invoke(cli, BASE + ["--bias", str(bias), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    inputs = read_manifest(out)["metadata"]["provenance"]["inputs"]
+    # Source: hashlib (Python standard library) computes the reference digest
+    assert inputs[str(bias)] == hashlib.sha256(bias.read_bytes()).hexdigest()

@@ -47,3 +47,22 @@ def test_bad_file_exit_2(tmp_path):
     result = CliRunner().invoke(cli, ["inspect", str(bad)])
     assert result.exit_code == 2
     assert "bad.envm: not an envelope model file" in result.output
+
+
+def test_text_shows_flat_cv_metrics_and_software_once(tmp_path):
+    # Common practice, no source: the table repeats the CV summary `envelope fit` writes as flat
+    # keys (auc_mean, auc_sd, ...) and lists the software versions on one line
+    import re
+
+    meta = {**META, "cv": {"scheme": "block", "n_folds": 3, "auc_mean": 0.812, "auc_sd": 0.031,
+                           "tss_mean": 0.5, "tss_sd": 0.1, "omission_p10": None},
+            "provenance": {"inputs": {"records.csv": "ab" * 32}, "seed": 7, "software": {"xarray": "9.9"}}}
+    X = np.r_[np.linspace(0, 1, 20), np.linspace(-1, 2, 50)][:, None]
+    y = np.r_[np.ones(20), np.zeros(50)]
+    path = save_model(tmp_path / "m.envm", PercentileEnvelope().fit(X, y), meta)
+    result = CliRunner().invoke(cli, ["inspect", str(path)])
+    assert result.exit_code == 0, result.output
+    assert re.search(r"AUC\s+0\.812 ± 0\.031", result.output)
+    assert re.search(r"TSS\s+0\.5 ± 0\.1", result.output)
+    assert result.output.count("software") == 1
+    assert "xarray 9.9" in result.output and "scikit-learn" in result.output
