@@ -465,7 +465,7 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
 
     summary = {"auc_mean": _mean("auc"), "auc_sd": _sd("auc"), "tss_mean": _mean("tss"), "tss_sd": _sd("tss"),
                "kappa_mean": _mean("kappa"), "kappa_sd": _sd("kappa"), "boyce_mean": _mean("boyce"),
-               "boyce_sd": _sd("boyce"), "omission_p10_mean": _mean("omission_p10"),
+               "boyce_sd": _sd("boyce"), "omission_p10_mean": _mean("omission_p10"), "omission_p10_sd": _sd("omission_p10"),
                "n_folds": int(labels.size), "threshold_rule": rows[0]["threshold_rule"]}
     return per_fold, summary
 
