@@ -23,6 +23,7 @@ COMMANDS = {
     "demo": "envelope.cli.demo:demo",
     "records": "envelope.cli.records:records",
     "run": "envelope.cli.run:run",
+    "target": "envelope.cli.target:target",
 }
 
 SUMMARIES = {
@@ -37,6 +38,7 @@ SUMMARIES = {
     "demo": "Run the bundled fictional study.",
     "records": "Clean occurrence records against a grid and report drops.",
     "run": "Run a whole study from a TOML study file.",
+    "target": "Rank restoration patches by the reachable range they add.",
 }
 
 
