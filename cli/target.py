@@ -4,35 +4,11 @@ from __future__ import annotations
 
 import click
 
-from envelope.cli.options import overwrite_opt, seed_opt
-from envelope.cli.reach import _distance, _year_list
+from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
 
 
 @click.command()
-@click.option("--now", required=True, type=click.Path(exists=True, dir_okay=False),
-              help="Suitability raster today (from `envelope project`).")
-@click.option("--future", "futures", required=True, multiple=True, type=click.Path(exists=True, dir_okay=False),
-              help="Suitability raster at a horizon; repeat for several horizons (one year each in --years).")
-@click.option("--habitat", required=True, type=click.Path(exists=True, dir_okay=False),
-              help="Habitat fraction 0–1, or land-cover classes with --classes.")
-@click.option("--classes", type=click.Path(exists=True, dir_okay=False), default=None,
-              help="Land-cover class table (CSV code,name,habitat_quality): --habitat is then land cover.")
-@click.option("--align-habitat", is_flag=True, help="Resample a coarser or misaligned habitat map onto the grid.")
-@click.option("--start", required=True, type=click.Path(exists=True, dir_okay=False),
-              help="Occupied cells today: records (CSV/TSV) or a raster (occupied where > 0.5).")
-@click.option("--kernel", type=click.Choice(["exponential", "gaussian", "2dt"]), default="exponential",
-              show_default=True, help="Dispersal kernel family.")
-@click.option("--mean-distance-km", required=True, callback=_distance, metavar="KM",
-              help="Mean dispersal distance per step (deterministic runs: one value).")
-@click.option("--shape", type=float, default=None, help="2Dt shape parameter (> 1.5 for a finite mean).")
-@click.option("--years", required=True, callback=_year_list, metavar="Y1,Y2",
-              help="Horizon year of each --future, in the same order.")
-@click.option("--now-year", type=float, default=2020.0, show_default=True, help="Year of the --now map.")
-@click.option("--step-years", type=float, default=1.0, show_default=True, help="Years per dispersal step.")
-@click.option("--rate", type=float, default=1.0, show_default=True, help="Colonisation rate R per step.")
-@click.option("--threshold", type=float, default=None, help="Suitability threshold (default: the rasters' tags).")
-@click.option("--persistence-years", type=float, default=0.0, show_default=True,
-              help="Years an occupied cell survives unsuitable climate before it is lost.")
+@reach_inputs_opt(distance_metavar="KM", distance_help="Mean dispersal distance per step (deterministic runs: one value).")
 @click.option("--candidates", required=True, type=click.Path(exists=True, dir_okay=False),
               help="Raster of cells that could become habitat (nonzero = candidate).")
 @click.option("--budget-km2", required=True, type=float, help="Total area of patches that may be restored (km²).")
