@@ -102,7 +102,8 @@ def reach_classes(now_suitable, future_suitable, habitat, reached, valid) -> np.
     return out
 
 
-def _occupied_start(start, grid) -> np.ndarray:
+def occupied_start(start, grid) -> np.ndarray:
+    """Start occupancy as a 0–1 float array on the grid (NaN -> 0); out-of-range values are an error."""
     arr = np.asarray(start, dtype=np.float64)
     if arr.shape != (grid.sizes["y"], grid.sizes["x"]):
         raise InputError(f"start occupancy has shape {arr.shape}, the climate grid {grid.shape[-2:]}")
@@ -167,7 +168,7 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     if np.nanmin(hab) < 0 or np.nanmax(hab) > 1:
         raise InputError(f"habitat must lie in 0..1, found {np.nanmin(hab):g}..{np.nanmax(hab):g}")
     hab = np.where(np.isfinite(hab), hab, 0.0)
-    start_arr = _occupied_start(start, now)
+    start_arr = occupied_start(start, now)
     valid = np.isfinite(now_arr)
     for _, f in futures:
         valid &= np.isfinite(np.asarray(f.values))
@@ -210,7 +211,7 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
 
     gained_reached, gained_unreached, gained_no_habitat = (area(classes == c) for c in (3, 4, 5))
     gained_total = gained_reached + gained_unreached + gained_no_habitat
-    lats, lons = _cell_lonlat(now)
+    lats, lons = cell_lonlat(now)
     start_occ = start_arr >= 0.5
     # The front is measured on expected occupancy (area x occupancy weights); the starting
     # edge uses the start cells whose climate is suitable today, so records the model cannot
@@ -285,7 +286,7 @@ def edge_shift_summary(lat, area, before, after, percentile: float = 95.0, weigh
             "percentile": percentile, "edge_lat_start": lat0, "edge_lat_horizon": lat1}
 
 
-def _cell_lonlat(grid: xr.DataArray):
+def cell_lonlat(grid: xr.DataArray):
     """Latitude and longitude of every cell centre (2-D), via pyproj for projected grids."""
     xs, ys = np.meshgrid(np.asarray(grid["x"].values), np.asarray(grid["y"].values))
     crs = grid.rio.crs

@@ -13,7 +13,7 @@ import xarray as xr
 from envelope.errors import InputError
 from envelope.kernels.fragmentation import label_patches
 from envelope.kernels.transient import ClimatePath, run_transient
-from envelope.reach import DispersalSettings, _cell_lonlat, _occupied_start, build_operator
+from envelope.reach import DispersalSettings, cell_lonlat, occupied_start, build_operator
 
 __all__ = ["CandidatePatches", "ReachGain", "TargetResult", "candidate_patches", "greedy_selection",
            "random_baseline", "nearest_baseline", "target_restoration", "write_target_outputs",
@@ -93,7 +93,7 @@ class ReachGain:
         maps = [now_arr] + [np.asarray(f.values, dtype=np.float64) for _, f in futures]
         hab = np.asarray(habitat.values, dtype=np.float64)
         self.habitat = np.where(np.isfinite(hab), hab, 0.0)
-        self.start = _occupied_start(start, now)
+        self.start = occupied_start(start, now)
         valid = np.isfinite(now_arr)
         for m in maps[1:]:
             valid &= np.isfinite(m)
@@ -287,7 +287,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
     from envelope.grids import cell_area_km2
 
     areas = np.asarray(cell_area_km2(now).values, dtype=np.float64)
-    lat, lon = _cell_lonlat(now)
+    lat, lon = cell_lonlat(now)
     patches = candidate_patches(np.asarray(candidates.values), areas, lon, lat,
                                 cost=None if cost is None else np.asarray(cost.values))
     model = ReachGain(now, futures, habitat, start, patches, threshold=threshold, settings=settings,
