@@ -38,10 +38,10 @@ def landscape():
 def model_and_patches():
     now, futures, hab, start, cand = landscape()
     from envelope.grids import cell_area_km2
-    from envelope.reach import _cell_lonlat
+    from envelope.reach import cell_lonlat
 
     areas = np.asarray(cell_area_km2(now).values)
-    lat, lon = _cell_lonlat(now)
+    lat, lon = cell_lonlat(now)
     patches = candidate_patches(cand.values, areas, lon, lat)
     return ReachGain(now, futures, hab, start, patches, **KW), patches, (now, futures, hab, start, cand)
 
