@@ -24,6 +24,7 @@ COMMANDS = {
     "records": "envelope.cli.records:records",
     "run": "envelope.cli.run:run",
     "target": "envelope.cli.target:target",
+    "fragmentation": "envelope.cli.fragmentation:fragmentation",
 }
 
 SUMMARIES = {
@@ -39,6 +40,7 @@ SUMMARIES = {
     "records": "Clean occurrence records against a grid and report drops.",
     "run": "Run a whole study from a TOML study file.",
     "target": "Rank restoration patches by the reachable range they add.",
+    "fragmentation": "Habitat amount and effective mesh size by latitude band.",
 }
 
 

@@ -7,7 +7,7 @@ Used by:
   climate_opt    -- fit, project
   seed_opt       -- fit, reach
   json_opt       -- info, inspect
-  reach_inputs_opt -- reach, target
+  reach_inputs_opt -- reach, target (optional there: --study can supply them)
 """
 
 from __future__ import annotations
@@ -74,7 +74,9 @@ csv_list = _csv_list
 
 
 def _distance(ctx, param, value):
-    """'3' -> (3, None); '2:5' -> (2, (2, 5)) for per-replicate draws."""
+    """'3' -> (3, None); '2:5' -> (2, (2, 5)) for per-replicate draws; None stays None."""
+    if value is None:
+        return None
     try:
         if ":" in value:
             lo, hi = (float(v) for v in value.split(":"))
@@ -85,6 +87,8 @@ def _distance(ctx, param, value):
 
 
 def _year_list(ctx, param, value):
+    if value is None:
+        return None
     try:
         return [float(v) for v in value.split(",") if v.strip()]
     except ValueError:
@@ -94,26 +98,32 @@ def _year_list(ctx, param, value):
 
 def reach_inputs_opt(distance_metavar="KM|LOW:HIGH",
                      distance_help="Mean dispersal distance per step; LOW:HIGH draws one per replicate "
-                                   "(stochastic mode)."):
-    """The inputs of the reach model, shared by `envelope reach` and `envelope target`."""
+                                   "(stochastic mode).", required=True):
+    """The inputs of the reach model, shared by `envelope reach` and `envelope target`.
+
+    ``required=False`` leaves --now, --future, --years, --habitat, --start and
+    --mean-distance-km optional, for a command that can take them from elsewhere (a study
+    run) and checks them itself.
+    """
     options = [
-        click.option("--now", required=True, type=click.Path(exists=True, dir_okay=False),
+        click.option("--now", required=required, type=click.Path(exists=True, dir_okay=False),
                      help="Suitability raster today (from `envelope project`)."),
-        click.option("--future", "futures", required=True, multiple=True, type=click.Path(exists=True, dir_okay=False),
+        click.option("--future", "futures", required=required, multiple=True,
+                     type=click.Path(exists=True, dir_okay=False),
                      help="Suitability raster at a horizon; repeat for several horizons (one year each in --years)."),
-        click.option("--habitat", required=True, type=click.Path(exists=True, dir_okay=False),
+        click.option("--habitat", required=required, type=click.Path(exists=True, dir_okay=False),
                      help="Habitat fraction 0–1, or land-cover classes with --classes."),
         click.option("--classes", type=click.Path(exists=True, dir_okay=False), default=None,
                      help="Land-cover class table (CSV code,name,habitat_quality): --habitat is then land cover."),
         click.option("--align-habitat", is_flag=True, help="Resample a coarser or misaligned habitat map onto the grid."),
-        click.option("--start", required=True, type=click.Path(exists=True, dir_okay=False),
+        click.option("--start", required=required, type=click.Path(exists=True, dir_okay=False),
                      help="Occupied cells today: records (CSV/TSV) or a raster (occupied where > 0.5)."),
         click.option("--kernel", type=click.Choice(["exponential", "gaussian", "2dt"]), default="exponential",
                      show_default=True, help="Dispersal kernel family."),
-        click.option("--mean-distance-km", required=True, callback=_distance, metavar=distance_metavar,
+        click.option("--mean-distance-km", required=required, callback=_distance, metavar=distance_metavar,
                      help=distance_help),
         click.option("--shape", type=float, default=None, help="2Dt shape parameter (> 1.5 for a finite mean)."),
-        click.option("--years", required=True, callback=_year_list, metavar="Y1,Y2",
+        click.option("--years", required=required, callback=_year_list, metavar="Y1,Y2",
                      help="Horizon year of each --future, in the same order."),
         click.option("--now-year", type=float, default=2020.0, show_default=True, help="Year of the --now map."),
         click.option("--step-years", type=float, default=1.0, show_default=True, help="Years per dispersal step."),

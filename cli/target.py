@@ -7,28 +7,48 @@ import click
 from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
 
 
+# the reach-model options a study run supplies; giving one together with --study is an error
+_STUDY_SUPPLIED = ("now", "futures", "years", "scenario_table", "habitat", "classes", "align_habitat", "start",
+                   "kernel", "mean_distance_km", "shape", "now_year", "step_years", "rate", "threshold",
+                   "persistence_years")
+
+
 @click.command()
-@reach_inputs_opt(distance_metavar="KM", distance_help="Mean dispersal distance per step (deterministic runs: one value).")
+@reach_inputs_opt(distance_metavar="KM", distance_help="Mean dispersal distance per step (deterministic runs: one value).",
+                  required=False)
+@click.option("--scenarios", "scenario_table", type=click.Path(exists=True, dir_okay=False), default=None,
+              help="Suitability table (CSV name,pathway,climate_model,horizon,path, as `envelope project "
+                   "--scenarios` writes it): one climate path per pathway × climate model. Instead of --future/--years.")
+@click.option("--study", type=click.Path(exists=True, dir_okay=False), default=None,
+              help="Study file of a finished `envelope run` (with --run-dir): today's map, each pathway's "
+                   "ensemble-mean futures, habitat, start and dispersal come from the run.")
+@click.option("--run-dir", type=click.Path(exists=True, file_okay=False), default=None,
+              help="Run folder of --study (from `envelope run STUDY --out RUN_DIR`).")
+@click.option("--objective", type=click.Choice(["mean", "worst"]), default="mean", show_default=True,
+              help="With several climate paths: the mean added reachable area over paths, or its minimum.")
 @click.option("--candidates", required=True, type=click.Path(exists=True, dir_okay=False),
               help="Raster of cells that could become habitat (nonzero = candidate).")
 @click.option("--budget-km2", required=True, type=float, help="Total area of patches that may be restored (km²).")
 @click.option("--cost", type=click.Path(exists=True, dir_okay=False), default=None,
               help="Cost per cell; patches are ranked by gain per unit cost (default: per km²).")
 @click.option("--budget-cost", type=float, default=None, help="Total cost allowed (with --cost), besides the area.")
-@click.option("--quality", type=float, default=1.0, show_default=True,
-              help="Habitat quality a restored cell reaches (habitat becomes max(current, Q)).")
+@click.option("--quality", default="1", show_default=True, metavar="Q|RASTER",
+              help="Habitat quality a restored cell reaches, in (0, 1]: one number, or a raster of it per cell "
+                   "(habitat becomes max(current, Q)).")
 @click.option("--random-draws", type=click.IntRange(min=1), default=10, show_default=True,
               help="Random patch orders averaged for the random baseline.")
 @click.option("--max-evaluations", type=click.IntRange(min=1), default=2000, show_default=True,
-              help="Cap on reach runs per greedy pass.")
+              help="Cap on new patch sets evaluated per greedy pass (each one reach run per climate path).")
 @seed_opt
 @click.option("--out", required=True, type=click.Path(dir_okay=False), help="Priority-rank raster to write.")
 @click.option("--table", "table", required=True, type=click.Path(dir_okay=False), help="Chosen-patch table (CSV).")
 @click.option("--summary", required=True, type=click.Path(dir_okay=False), help="Summary JSON to write.")
 @overwrite_opt
-def target(now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years, now_year,
-           step_years, rate, threshold, persistence_years, candidates, budget_km2, cost, budget_cost, quality,
-           random_draws, max_evaluations, seed, out, table, summary, overwrite):
+@click.pass_context
+def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years,
+           now_year, step_years, rate, threshold, persistence_years, scenario_table, study, run_dir, objective,
+           candidates, budget_km2, cost, budget_cost, quality, random_draws, max_evaluations, seed, out, table,
+           summary, overwrite):
     """Rank candidate restoration patches by the reachable range they add by the horizon.
 
     Candidate cells are grouped into 4-connected patches. Patches are chosen by lazy
@@ -37,11 +57,23 @@ def target(now, futures, habitat, classes, align_habitat, start, kernel, mean_di
     until the area budget (and --budget-cost) is spent. Random and nearest-first patch
     choices of the same budget are reported for comparison.
 
+    The climate comes as one path (--now, --future, --years), as several (--now and a
+    suitability table with --scenarios: one path per pathway × climate model), or from a
+    finished study run (--study, --run-dir: one path per pathway, the climate models'
+    ensemble mean). With several paths the gain is their mean, or with --objective worst
+    their minimum.
+
     \b
-    Example:
+    Examples:
       $ envelope target --now now.tif --future f2080.tif --years 2080 --habitat habitat.tif \\
             --start occupied.tif --mean-distance-km 2 --candidates restorable.tif \\
             --budget-km2 500 --out priority.tif --table priority.csv --summary target.json
+      $ envelope target --now now.tif --scenarios proj/suitability_table.csv --habitat habitat.tif \\
+            --start records.csv --mean-distance-km 5 --step-years 5 --rate 4 --objective worst \\
+            --candidates restorable.tif --quality quality.tif --budget-km2 300 \\
+            --out priority.tif --table priority.csv --summary target.json
+      $ envelope target --study sample_grids/study.toml --run-dir demo-run --candidates restorable.tif \\
+            --budget-km2 300 --out priority.tif --table priority.csv --summary target.json
     """
     import time
 
@@ -49,10 +81,8 @@ def target(now, futures, habitat, classes, align_habitat, start, kernel, mean_di
 
     from envelope.errors import InputError
     from envelope.grids import check_same_grid
-    from envelope.habitat import load_habitat
     from envelope.io.atomic import check_writable
-    from envelope.io.rasters import open_layer, read_tags
-    from envelope.reach import DispersalSettings, load_start, threshold_from_tags
+    from envelope.io.rasters import open_layer
     from envelope.targeting import target_restoration, write_target_outputs
 
     for p in (out, table, summary):
@@ -61,41 +91,126 @@ def target(now, futures, habitat, classes, align_habitat, start, kernel, mean_di
         raise InputError(f"--budget-km2 must be > 0, got {budget_km2:g}")
     if budget_cost is not None and cost is None:
         raise InputError("--budget-cost needs --cost (a cost raster)")
-    if len(years) != len(futures):
-        raise InputError(f"--years gives {len(years)} year(s) for {len(futures)} --future map(s); give one per map")
+    if study or run_dir:
+        if not (study and run_dir):
+            raise InputError("--study and --run-dir go together: the study file and the folder of its finished run")
+        for name in _STUDY_SUPPLIED:
+            if ctx.get_parameter_source(name) not in (click.core.ParameterSource.DEFAULT, None):
+                flag = "--" + {"futures": "future", "scenario_table": "scenarios"}.get(name, name).replace("_", "-")
+                raise InputError(f"{flag}: the reach model comes from the study run with --study; leave {flag} out")
+        model = _from_study(study, run_dir)
+    else:
+        model = _from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
+                              mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years)
+    grid, grid_name = model["now"], model["now_name"]
+    cand = open_layer(candidates)
+    check_same_grid(grid, cand, ref_name=grid_name, other_name=f"--candidates {candidates}")
+    cost_layer = None
+    if cost:
+        cost_layer = open_layer(cost)
+        check_same_grid(grid, cost_layer, ref_name=grid_name, other_name=f"--cost {cost}")
+    quality_value = _quality(quality, grid, grid_name)
+
+    t0 = time.perf_counter()
+    with Console(stderr=True).status("choosing patches (deterministic reach runs)"):
+        result = target_restoration(grid, model["futures"], model["habitat"], model["start"], cand,
+                                    budget_km2=budget_km2, threshold=model["threshold"], settings=model["settings"],
+                                    cost=cost_layer, budget_cost=budget_cost, quality=quality_value,
+                                    objective=objective, now_year=model["now_year"], step_years=model["step_years"],
+                                    rate=model["rate"], persistence_years=model["persistence_years"],
+                                    random_draws=random_draws, seed=seed, max_evaluations=max_evaluations)
+    result.summary["seconds"] = round(time.perf_counter() - t0, 3)
+    result.summary["start"] = model["start_info"]
+    result.summary["inputs"] = {**model["inputs"], "candidates": candidates, "cost": cost,
+                                "quality": None if isinstance(quality_value, float) else quality}
+    written = write_target_outputs(result, out, table, summary, overwrite=overwrite, tags={"software": "envelope"})
+    _print(result, written)
+
+
+def _quality(text, grid, grid_name):
+    """--quality: a number in (0, 1], or a raster on the grid (checked per candidate cell later)."""
+    from pathlib import Path
+
+    from envelope.errors import InputError
+    from envelope.grids import check_same_grid
+    from envelope.io.rasters import open_layer
+
+    try:
+        value = float(text)
+    except ValueError:
+        if not Path(text).is_file():
+            raise InputError(f"--quality {text!r}: expected a number in (0, 1] or a quality raster, "
+                             "and there is no such file") from None
+        layer = open_layer(text)
+        check_same_grid(grid, layer, ref_name=grid_name, other_name=f"--quality {text}")
+        return layer
+    if not (0 < value <= 1):
+        raise InputError(f"--quality must lie in (0, 1], got {text}")
+    return value
+
+
+def _from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
+                  mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years) -> dict:
+    """The reach model from the command line: one climate path (--future/--years) or a suitability table."""
+    from envelope.errors import InputError
+    from envelope.grids import check_same_grid
+    from envelope.habitat import load_habitat
+    from envelope.io.rasters import open_layer, read_tags
+    from envelope.reach import DispersalSettings, load_start, threshold_from_tags
+    from envelope.scenarios import suitability_paths
+
+    for flag, value in (("--now", now), ("--habitat", habitat), ("--start", start),
+                        ("--mean-distance-km", mean_distance_km)):
+        if value is None:
+            raise InputError(f"{flag} is required (or give --study and --run-dir)")
+    if scenario_table and (futures or years):
+        raise InputError("--scenarios replaces --future/--years; give one or the other")
+    if scenario_table:
+        paths = suitability_paths(scenario_table)
+    elif futures:
+        years = years or []
+        if len(years) != len(futures):
+            raise InputError(f"--years gives {len(years)} year(s) for {len(futures)} --future map(s); "
+                             "give one per map")
+        paths = {None: list(zip(years, futures))}
+    else:
+        raise InputError("give the future climate: --future with --years, --scenarios, or --study with --run-dir")
     mean_km, mean_range = mean_distance_km
     if mean_range is not None:
         raise InputError("--mean-distance-km: target runs the deterministic model; give one distance, not LOW:HIGH")
     settings = DispersalSettings(kernel=kernel, mean_distance_km=mean_km, shape=shape)
     now_layer = open_layer(now)
-    future_layers = []
-    for year, path in zip(years, futures):
-        layer = open_layer(path)
-        check_same_grid(now_layer, layer, ref_name=f"--now {now}", other_name=f"--future {path}")
-        future_layers.append((year, layer))
-    cand = open_layer(candidates)
-    check_same_grid(now_layer, cand, ref_name=f"--now {now}", other_name=f"--candidates {candidates}")
-    cost_layer = None
-    if cost:
-        cost_layer = open_layer(cost)
-        check_same_grid(now_layer, cost_layer, ref_name=f"--now {now}", other_name=f"--cost {cost}")
-    thr = threshold_from_tags({now: read_tags(now), **{p: read_tags(p) for p in futures}}, threshold)
+    layers = {}
+    for name, horizons in paths.items():
+        layers[name] = []
+        for year, path in horizons:
+            layer = open_layer(path)
+            source = f"--future {path}" if name is None else f"--scenarios {scenario_table}: {path}"
+            check_same_grid(now_layer, layer, ref_name=f"--now {now}", other_name=source)
+            layers[name].append((year, layer))
+    all_paths = [str(p) for horizons in paths.values() for _, p in horizons]
+    thr = threshold_from_tags({now: read_tags(now), **{p: read_tags(p) for p in all_paths}}, threshold)
     hab = load_habitat(habitat, now_layer, classes=classes, align=align_habitat)
     start_arr, start_info = load_start(start, now_layer)
+    return {"now": now_layer, "now_name": f"--now {now}", "futures": layers.get(None, layers),
+            "habitat": hab, "start": start_arr, "start_info": start_info, "threshold": thr, "settings": settings,
+            "now_year": now_year, "step_years": step_years, "rate": rate, "persistence_years": persistence_years,
+            "inputs": {"now": now, "futures": all_paths, "scenarios": scenario_table, "habitat": habitat,
+                       "classes": classes}}
 
-    t0 = time.perf_counter()
-    with Console(stderr=True).status("choosing patches (deterministic reach runs)"):
-        result = target_restoration(now_layer, future_layers, hab, start_arr, cand, budget_km2=budget_km2,
-                                    threshold=thr, settings=settings, cost=cost_layer, budget_cost=budget_cost,
-                                    quality=quality, now_year=now_year, step_years=step_years, rate=rate,
-                                    persistence_years=persistence_years, random_draws=random_draws, seed=seed,
-                                    max_evaluations=max_evaluations)
-    result.summary["seconds"] = round(time.perf_counter() - t0, 3)
-    result.summary["start"] = start_info
-    result.summary["inputs"] = {"now": now, "futures": list(futures), "habitat": habitat, "classes": classes,
-                                "candidates": candidates, "cost": cost}
-    written = write_target_outputs(result, out, table, summary, overwrite=overwrite, tags={"software": "envelope"})
-    _print(result, written)
+
+def _from_study(study_file, run_dir) -> dict:
+    """The reach model of a finished study run: each pathway's ensemble-mean futures."""
+    from envelope.study import load_study
+    from envelope.study_run import reach_inputs_from_run
+
+    study = load_study(study_file)
+    model = reach_inputs_from_run(study, run_dir)
+    model.update({"now_name": f"--run-dir {run_dir}: {model['paths']['now']}",
+                  "inputs": {"study": study_file, "run_dir": run_dir, "now": str(model["paths"]["now"]),
+                             "habitat": str(study.habitat.path), "classes": study.habitat.classes and
+                             str(study.habitat.classes)}})
+    return model
 
 
 def _print(result, written):
@@ -112,7 +227,13 @@ def _print(result, written):
         t.add_row(str(row.rank), str(row.patch_id), f"{row.area_km2:,.1f}", f"{row.added_reachable_km2:,.1f}",
                   f"{row.added_per_km2:.2f}")
     console.print(t)
-    console.print(f"reachable gain {s['reachable_gain_km2']:,.0f} km² (random {s['random_baseline_gain_km2']:,.0f}, "
-                  f"nearest-first {s['nearest_baseline_gain_km2']:,.0f}); {s['n_evaluations']} reach runs")
+    paths = s["climate_paths"]
+    over = f" ({s['objective']} over {len(paths)} climate paths)" if len(paths) > 1 else ""
+    console.print(f"reachable gain{over} {s['reachable_gain_km2']:,.0f} km² "
+                  f"(random {s['random_baseline_gain_km2']:,.0f}, nearest-first {s['nearest_baseline_gain_km2']:,.0f}); "
+                  f"{s['n_reach_runs']} reach runs")
+    if len(paths) > 1:
+        console.print("per climate path: " + ", ".join(f"{p['name']} {p['reachable_gain_km2']:,.0f} km²"
+                                                       for p in paths))
     for key, path in written.items():
         console.print(f"{key}: {path}")

@@ -13,7 +13,7 @@ import xarray as xr
 from envelope.errors import GridMismatchError, InputError
 from envelope.kernels import fragmentation
 
-__all__ = ["read_class_table", "load_habitat", "fragmentation_by_latitude"]
+__all__ = ["read_class_table", "load_habitat", "fragmentation_by_latitude", "fragmentation_summary"]
 
 # Values this close outside 0..1 are float round-off (e.g. a float32 mean of ones) and are clipped.
 _RANGE_SLACK = 1e-6
@@ -475,3 +475,57 @@ def fragmentation_by_latitude(habitat, *, threshold=0.5, band_deg=1.0, land_mask
     table["poleward"] = table["_distance"].round(9).rank(method="dense").astype(int) - 1
     table = table.sort_values(["poleward", "lat_min"]).reset_index(drop=True)
     return table[columns]
+
+
+def fragmentation_summary(table: pd.DataFrame, *, threshold=0.5, band_deg=1.0, connectivity=4,
+                          land="cells with climate data") -> dict:
+    """The fragmentation table as a JSON-ready summary, with a verdict on the poleward half.
+
+    The bands (rows of :func:`fragmentation_by_latitude`, equatorward to poleward) are split
+    into an equatorward and a poleward half (the middle band of an odd number is left
+    out). Each half's effective mesh size is that of the union of its bands under the
+    cutting-out procedure, Σ_bands Σ_i A_i² / Σ_bands A_t: the land-area-weighted mean of
+    the bands' m_eff (Jaeger 2000: m_eff of reporting regions combine this way). The
+    poleward half is called more fragmented when its m_eff is smaller.
+
+    Returns
+    -------
+    dict
+        ``habitat_threshold``, ``band_deg``, ``connectivity``, ``land``, ``bands`` (one dict
+        per row, ordered equator to pole), ``equatorward_half`` and ``poleward_half``
+        (band range, land and habitat area, habitat share, m_eff, patches per 1000 km² of
+        land), ``poleward_half_more_fragmented`` (bool, None with fewer than 2 bands) and
+        ``statement`` (one sentence).
+
+    References
+    ----------
+    Jaeger, J.A.G. (2000) Landscape division, splitting index, and effective mesh size: new
+    measures of landscape fragmentation. Landscape Ecology 15: 115–130.
+    """
+    bands = [{k: (v.item() if hasattr(v, "item") else v) for k, v in row.items()}
+             for row in table.to_dict("records")]
+    out = {"habitat_threshold": float(threshold), "band_deg": float(band_deg), "connectivity": int(connectivity),
+           "land": land, "bands": bands, "equatorward_half": None, "poleward_half": None,
+           "poleward_half_more_fragmented": None,
+           "statement": "fewer than two latitude bands with land: no poleward comparison"}
+    half = len(table) // 2
+    if half == 0:
+        return out
+
+    def pooled(part):
+        land_area = float(part["land_area_km2"].sum())
+        habitat_area = float(part["habitat_area_km2"].sum())
+        return {"lat_min": float(part["lat_min"].min()), "lat_max": float(part["lat_max"].max()),
+                "n_bands": int(len(part)), "land_area_km2": land_area, "habitat_area_km2": habitat_area,
+                "habitat_share_of_land": habitat_area / land_area,
+                "effective_mesh_size_km2": float((part["effective_mesh_size_km2"] * part["land_area_km2"]).sum()
+                                                 / land_area),
+                "patches_per_1000_km2": 1000.0 * float(part["n_patches"].sum()) / land_area}
+
+    low, high = pooled(table.iloc[:half]), pooled(table.iloc[len(table) - half:])
+    more = high["effective_mesh_size_km2"] < low["effective_mesh_size_km2"]
+    out.update({"equatorward_half": low, "poleward_half": high, "poleward_half_more_fragmented": bool(more),
+                "statement": (f"effective mesh size {high['effective_mesh_size_km2']:.3g} km² in the poleward half "
+                              f"of the bands against {low['effective_mesh_size_km2']:.3g} km² in the equatorward "
+                              f"half: the poleward half is {'more' if more else 'not more'} fragmented")})
+    return out

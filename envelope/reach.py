@@ -113,10 +113,19 @@ def occupied_start(start, grid) -> np.ndarray:
     return arr
 
 
+def habitat_array(habitat) -> np.ndarray:
+    """Habitat quality as a float array, NaN (no data) read as 0 = no habitat; values outside 0–1 are an error."""
+    hab = np.asarray(getattr(habitat, "values", habitat), dtype=np.float64)
+    if np.nanmin(hab) < 0 or np.nanmax(hab) > 1:
+        raise InputError(f"habitat must lie in 0..1, found {np.nanmin(hab):g}..{np.nanmax(hab):g}")
+    return np.where(np.isfinite(hab), hab, 0.0)
+
+
 def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, start, *, threshold: float,
                    settings: DispersalSettings, now_year: float = 2020, step_years: float = 1.0,
                    rate: float = 1.0, persistence_years: float = 0.0, replicates: int = 0, seed: int = 0,
-                   snapshot_every_years: float = 10.0, cell_area_km2=None, progress=None) -> ReachResult:
+                   snapshot_every_years: float = 10.0, cell_area_km2=None, progress=None,
+                   fragmentation_band_deg: float | None = 1.0) -> ReachResult:
     """Step habitat-gated dispersal from ``now_year`` through each future horizon.
 
     Parameters
@@ -142,6 +151,10 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         occupancy is then the share of replicates in which a cell is occupied.
     cell_area_km2 : ndarray (y, x), optional
         True cell areas; computed from the grid when omitted.
+    fragmentation_band_deg : float or None, default=1.0
+        Width of the latitude bands of the summary's ``fragmentation_by_latitude`` (habitat
+        amount and Jaeger's effective mesh size per band, habitat = fraction >= 0.5, land =
+        cells with climate data; :func:`envelope.habitat.fragmentation_summary`). None: no table.
 
     Returns
     -------
@@ -164,10 +177,7 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     geographic = is_geographic(now)
     now_arr = np.asarray(now.values, dtype=np.float64)
     maps = [now_arr] + [np.asarray(f.values, dtype=np.float64) for _, f in futures]
-    hab = np.asarray(habitat.values, dtype=np.float64)
-    if np.nanmin(hab) < 0 or np.nanmax(hab) > 1:
-        raise InputError(f"habitat must lie in 0..1, found {np.nanmin(hab):g}..{np.nanmax(hab):g}")
-    hab = np.where(np.isfinite(hab), hab, 0.0)
+    hab = habitat_array(habitat)
     start_arr = occupied_start(start, now)
     valid = np.isfinite(now_arr)
     for _, f in futures:
@@ -252,6 +262,8 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         "n_start_cells_unsuitable": int((start_occ & ~now_suit).sum()),
         "climate_interpolation": "linear in time between the given suitability maps",
     }
+    if fragmentation_band_deg is not None:
+        summary["fragmentation_by_latitude"] = _fragmentation(now, hab, valid, fragmentation_band_deg)
     like = now.copy(data=np.zeros(now.shape, dtype=np.float32))
     occupancy = {yr: like.copy(data=np.where(valid, occ, np.nan).astype(np.float32))
                  for yr, occ in sorted(result.snapshots.items())}
@@ -259,6 +271,15 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     classes_da = now.copy(data=classes).astype(np.uint8)
     front = front_geojson(now, occupancy, level=0.5)
     return ReachResult(classes=classes_da, occupancy=occupancy, arrival_year=arrival, summary=summary, front=front)
+
+
+def _fragmentation(grid, habitat, land, band_deg, threshold=0.5) -> dict:
+    """Habitat amount and effective mesh size by latitude band on the climate grid (land = cells with climate data)."""
+    from envelope.habitat import fragmentation_by_latitude, fragmentation_summary
+
+    table = fragmentation_by_latitude(grid.copy(data=habitat.astype(np.float32)), threshold=threshold,
+                                      band_deg=band_deg, land_mask=grid.copy(data=land.astype(np.float32)))
+    return fragmentation_summary(table, threshold=threshold, band_deg=band_deg, land="cells with climate data")
 
 
 def edge_shift_summary(lat, area, before, after, percentile: float = 95.0, weights_after=None) -> dict:
@@ -390,6 +411,7 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
     """
     import json
 
+    from envelope.fitting import json_ready
     from envelope.io.atomic import atomic_output, check_writable
     from envelope.io.rasters import write_raster
 
@@ -412,6 +434,6 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
                  categories=REACH_CLASSES, nodata=REACH_NODATA)
     written["classes"] = str(out)
     with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json.dumps(result.summary, indent=2))
+        tmp.write_text(json.dumps(json_ready(result.summary), indent=2, allow_nan=False))
     written["summary"] = str(summary_path)
     return written

@@ -10,6 +10,7 @@ from pathlib import Path
 
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_output
+from envelope.study_run import run_paths
 
 log = logging.getLogger(__name__)
 
@@ -118,7 +119,8 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     settings = study.to_dict()
     cache = StepCache(run_dir, settings)
     say = progress or (lambda stage: None)
-    ext = "." + study.outputs.format
+    paths = run_paths(study, run_dir)
+    ext = paths["ext"]
     baseline = list(study.climate.baseline)
     method = study.model.methods[0]
     results = {"run_dir": str(run_dir), "methods": list(study.model.methods)}
@@ -150,7 +152,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
         cache.run(f"fit:{m}", {"records": settings["records"], "model": settings["model"], "method": m,
                                "climate": settings["climate"]}, fit_inputs,
                   [model_path, summary_path], do_fit)
-    fit_summary = json.loads((run_dir / "models" / f"{method}.fit.json").read_text())
+    fit_summary = json.loads(paths["fit_summary"].read_text())
     results["fit"] = fit_summary
     threshold = fit_summary["threshold"]["value"]
     model = models[method]
@@ -159,7 +161,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     from envelope.projection import project_file
     from envelope.scenarios import project_scenarios
 
-    now_path = run_dir / "projection" / f"now_suitability{ext}"
+    now_path = paths["now"]
 
     def do_now():
         say("project today")
@@ -168,8 +170,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
 
     cache.run("project:now", {"clamp": True}, [model, *baseline], [now_path], do_now)
     table = _scenario_table(study, run_dir)
-    proj_dir = run_dir / "projection" / "scenarios"
-    suit_table = proj_dir / "suitability_table.csv"
+    proj_dir, suit_table = paths["proj_dir"], paths["suit_table"]
 
     def do_scen():
         say("project scenarios")
@@ -226,21 +227,21 @@ def run_study(study, run_dir, *, progress=None) -> dict:
 
 def _run_reach(study, run_dir, cache, now_path, proj_dir, suit_rows, threshold, ext, say) -> list:
     """Reach per pathway (ensemble-mean maps by horizon) and the held-climate counterfactual."""
-    from envelope.habitat import load_habitat
     from envelope.io.rasters import open_layer
-    from envelope.reach import DispersalSettings, load_start, simulate_reach, write_reach_outputs
+    from envelope.reach import simulate_reach, write_reach_outputs
+    from envelope.study_run import pathway_futures, study_dispersal, study_habitat, study_start
 
     d = study.dispersal
     start_path = d.start or study.records.path
     reach_dir = run_dir / "reach"
-    horizons = sorted({int(h) for h in suit_rows["horizon"]})
-    runs = {}
-    for pathway in sorted(set(suit_rows["pathway"])):
-        runs[pathway] = [(h, proj_dir / f"ensemble_{pathway}_{h}_mean{ext}") for h in horizons]
+    runs = pathway_futures(suit_rows, proj_dir, ext)
     if d.counterfactual:
-        runs["held-climate"] = [(h, now_path) for h in horizons]
+        runs["held-climate"] = [(h, now_path) for h, _ in next(iter(runs.values()))]
+    # the fragmentation table is part of the reach summary; its settings are in the key so
+    # run folders made before it existed get it on the next run
     settings = {"dispersal": study.to_dict()["dispersal"], "habitat": study.to_dict()["habitat"],
-                "threshold": threshold, "now_year": study.climate.now_year}
+                "threshold": threshold, "now_year": study.climate.now_year,
+                "fragmentation": {"habitat_threshold": 0.5, "band_deg": 1.0}}
     rows = []
     for name, futures in runs.items():
         out = reach_dir / f"{name}_reach{ext}"
@@ -256,17 +257,13 @@ def _run_reach(study, run_dir, cache, now_path, proj_dir, suit_rows, threshold, 
             reach_dir.mkdir(exist_ok=True)
             now_layer = open_layer(now_path)
             future_layers = [(h, open_layer(p)) for h, p in futures]
-            hab = load_habitat(study.habitat.path, now_layer, classes=study.habitat.classes, align=study.habitat.align)
+            hab = study_habitat(study, now_layer)
             # records as the start: the same cleaning rules as the fit (a raster start ignores them)
-            r = study.records
-            start, info = load_start(start_path, now_layer, max_uncertainty_m=r.max_uncertainty_m, years=r.years,
-                                     crs=r.crs)
-            ds = DispersalSettings(kernel=d.kernel, mean_distance_km=d.mean_distance_km, shape=d.shape,
-                                   mean_distance_range_km=d.mean_distance_range_km if d.replicates else None)
-            result = simulate_reach(now_layer, future_layers, hab, start, threshold=threshold, settings=ds,
-                                    now_year=study.climate.now_year, step_years=d.step_years, rate=d.rate,
-                                    persistence_years=d.persistence_years, replicates=d.replicates,
-                                    seed=study.model.seed)
+            start, info = study_start(study, now_layer)
+            result = simulate_reach(now_layer, future_layers, hab, start, threshold=threshold,
+                                    settings=study_dispersal(study), now_year=study.climate.now_year,
+                                    step_years=d.step_years, rate=d.rate, persistence_years=d.persistence_years,
+                                    replicates=d.replicates, seed=study.model.seed)
             result.summary.update({"run": name, "start": info,
                                    "climate": "held at today's" if name == "held-climate" else
                                    f"pathway {name}, ensemble mean of climate models"})

@@ -64,12 +64,13 @@ def _rows_from_toml(path: Path) -> list[dict]:
     return [{k: str(v) for k, v in row.items()} for row in rows]
 
 
-def read_scenarios(path) -> list[Scenario]:
+def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
     """Read a scenario table (CSV with a header, or TOML with ``[[scenario]]`` tables).
 
     Columns / keys: ``name, pathway, climate_model, horizon, path``. ``horizon`` is a
-    year; ``path`` is a climate grid, relative to the table's folder unless absolute.
-    Names must be unique (they name the output files) and every grid must exist.
+    year; ``path`` is a climate grid (or, ``what`` says, another raster such as a
+    suitability map), relative to the table's folder unless absolute. Names must be
+    unique (they name the output files) and every grid must exist.
 
     Examples
     --------
@@ -107,9 +108,25 @@ def read_scenarios(path) -> list[Scenario]:
         if not grid.is_absolute():
             grid = path.parent / grid
         if not grid.exists():
-            raise InputError(f"{path}: row {i} ({name}) climate grid {grid} not found")
+            raise InputError(f"{path}: row {i} ({name}) {what} {grid} not found")
         scenarios.append(Scenario(name, row["pathway"], row["climate_model"], horizon, grid))
     return scenarios
+
+
+def suitability_paths(path) -> dict[str, list[tuple[int, Path]]]:
+    """Climate paths from a suitability table: {"<pathway>/<climate_model>": [(horizon, map), ...]}.
+
+    The table is the one ``envelope project --scenarios`` writes (``suitability_table.csv``;
+    columns ``name, pathway, climate_model, horizon, path``, ``path`` a suitability raster).
+    One path per pathway × climate model, its horizons in time order; a climate model
+    listed twice for one pathway and horizon is an error.
+    """
+    scenarios = read_scenarios(path, what="suitability raster")
+    group_scenarios(scenarios)
+    paths: dict[str, list[tuple[int, Path]]] = {}
+    for sc in scenarios:
+        paths.setdefault(f"{sc.pathway}/{sc.climate_model}", []).append((sc.horizon, sc.path))
+    return {name: sorted(horizons) for name, horizons in paths.items()}
 
 
 def group_scenarios(scenarios) -> dict[tuple[str, int], list[Scenario]]:
@@ -335,4 +352,4 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
 
 __all__ = ["COUNT_NODATA", "DEFAULT_AGREEMENT", "SCENARIO_COLUMNS", "SUITABILITY_TABLE_COLUMNS", "Scenario",
            "consensus_count", "ensemble_statistics", "project_scenarios", "scenario_outputs", "group_scenarios", "read_scenarios",
-           "write_suitability_table"]
+           "suitability_paths", "write_suitability_table"]

@@ -11,117 +11,17 @@ import pandas as pd
 import xarray as xr
 
 from envelope.errors import InputError
-from envelope.kernels.fragmentation import label_patches
-from envelope.kernels.transient import ClimatePath, run_transient
-from envelope.reach import DispersalSettings, cell_lonlat, occupied_start, build_operator
+from envelope.kernels.change import normal_vectors
+from envelope.reach import DispersalSettings, cell_lonlat
+from envelope.reachable_gain import OBJECTIVES, CandidatePatches, ReachGain, candidate_patches
 
 __all__ = ["CandidatePatches", "ReachGain", "TargetResult", "candidate_patches", "greedy_selection",
            "random_baseline", "nearest_baseline", "target_restoration", "write_target_outputs",
-           "TABLE_COLUMNS"]
+           "TABLE_COLUMNS", "OBJECTIVES"]
 
 TABLE_COLUMNS = ["rank", "patch_id", "area_km2", "cost", "added_reachable_km2", "added_per_km2",
                  "centroid_lon", "centroid_lat"]
 RANK_NODATA = 0
-
-
-@dataclass
-class CandidatePatches:
-    """Candidate cells grouped into 4-connected patches (ids 1..n)."""
-
-    labels: np.ndarray       # (ny, nx) int, 0 = not a candidate
-    n: int
-    area_km2: np.ndarray     # (n,) true patch area
-    cost: np.ndarray         # (n,) summed cost (= area when no cost raster)
-    centroid_lon: np.ndarray
-    centroid_lat: np.ndarray
-    cells: list              # per patch: flat indices of its cells
-
-
-def candidate_patches(candidates, cell_area, lon, lat, *, cost=None, name="--candidates",
-                      cost_name="--cost") -> CandidatePatches:
-    """Group nonzero candidate cells into 4-connected patches with area, cost and centroid.
-
-    References
-    ----------
-    SciPy ``scipy.ndimage.label`` via :func:`envelope.kernels.fragmentation.label_patches`.
-    """
-    cand = np.asarray(candidates, dtype=np.float64)
-    mask = np.isfinite(cand) & (cand != 0)
-    if not mask.any():
-        raise InputError(f"{name}: no candidate cell (no nonzero value); expected cells that could become habitat")
-    labels, n = label_patches(mask, connectivity=4)
-    areas = np.asarray(cell_area, dtype=np.float64)
-    flat = labels.ravel()
-    area_km2 = np.bincount(flat, weights=areas.ravel(), minlength=n + 1)[1:]
-    if cost is None:
-        costs = area_km2.copy()
-    else:
-        c = np.asarray(cost, dtype=np.float64)
-        bad = mask & ~(np.isfinite(c) & (c >= 0))
-        if bad.any():
-            raise InputError(f"{cost_name}: {int(bad.sum())} candidate cell(s) have no cost or a negative one; "
-                             "expected a finite cost >= 0 in every candidate cell")
-        costs = np.bincount(flat, weights=np.where(mask, c, 0.0).ravel(), minlength=n + 1)[1:]
-    # area-weighted centroid of cell centres (adequate for patches much smaller than a hemisphere)
-    w = areas.ravel()
-    clon = np.bincount(flat, weights=(w * np.asarray(lon).ravel()), minlength=n + 1)[1:] / area_km2
-    clat = np.bincount(flat, weights=(w * np.asarray(lat).ravel()), minlength=n + 1)[1:] / area_km2
-    order = np.argsort(flat, kind="stable")
-    bounds = np.searchsorted(flat[order], np.arange(n + 2))
-    cells = [order[bounds[i]:bounds[i + 1]] for i in range(1, n + 1)]
-    return CandidatePatches(labels, n, area_km2, costs, clon, clat, cells)
-
-
-class ReachGain:
-    """Deterministic reach model with one spread operator, evaluated for restored patch sets.
-
-    ``gained_reached(patches)`` is exactly :func:`envelope.reach.simulate_reach`'s
-    ``summary["area_km2"]["gained_reached"]`` (deterministic mode) with habitat raised to
-    ``max(current, quality)`` in the given patches; the kernel is discretised once.
-    """
-
-    def __init__(self, now: xr.DataArray, futures: list, habitat: xr.DataArray, start, patches: CandidatePatches,
-                 *, threshold: float, settings: DispersalSettings, quality: float = 1.0, now_year: float = 2020,
-                 step_years: float = 1.0, rate: float = 1.0, persistence_years: float = 0.0, cell_area_km2=None):
-        from envelope.grids import cell_area_km2 as _areas, is_geographic
-
-        if not (0 < quality <= 1):
-            raise InputError(f"--quality must lie in (0, 1], got {quality!r}")
-        futures = sorted(futures, key=lambda t: float(t[0]))
-        self.years = [float(y) for y, _ in futures]
-        now_arr = np.asarray(now.values, dtype=np.float64)
-        maps = [now_arr] + [np.asarray(f.values, dtype=np.float64) for _, f in futures]
-        hab = np.asarray(habitat.values, dtype=np.float64)
-        self.habitat = np.where(np.isfinite(hab), hab, 0.0)
-        self.start = occupied_start(start, now)
-        valid = np.isfinite(now_arr)
-        for m in maps[1:]:
-            valid &= np.isfinite(m)
-        self.areas = np.asarray(_areas(now).values if cell_area_km2 is None else cell_area_km2, dtype=np.float64)
-        # the gain cells of simulate_reach's class 3, before the habitat and reached conditions
-        self.gain_cells = valid & ~(now_arr >= threshold) & (maps[-1] >= threshold)
-        self.operator = build_operator(now, settings, None, is_geographic(now))
-        self.climate = ClimatePath([now_year] + self.years, maps)
-        self.kw = dict(threshold=threshold, start_year=now_year, end_year=self.years[-1], step_years=step_years,
-                       rate=rate, persistence_steps=(int(math.ceil(persistence_years / step_years - 1e-9))
-                                                     if persistence_years > 0 else 0))
-        self.patches, self.quality = patches, float(quality)
-        self.n_evaluations = 0
-
-    def restored_habitat(self, chosen) -> np.ndarray:
-        hab = self.habitat.copy().ravel()
-        for pid in chosen:
-            idx = self.patches.cells[pid - 1]
-            hab[idx] = np.maximum(hab[idx], self.quality)
-        return hab.reshape(self.habitat.shape)
-
-    def gained_reached(self, chosen=()) -> float:
-        """Area (km²) newly suitable, with habitat, and occupied (>= 0.5) at the horizon."""
-        hab = self.restored_habitat(chosen)
-        result = run_transient(self.operator, self.start, hab, self.climate, snapshot_years=(), **self.kw)
-        self.n_evaluations += 1
-        cells = self.gain_cells & (hab > 0) & (result.final >= 0.5)
-        return float(self.areas[cells].sum())
 
 
 def _fits(pid, patches, used_area, used_cost, budget_km2, budget_cost):
@@ -131,10 +31,10 @@ def _fits(pid, patches, used_area, used_cost, budget_km2, budget_cost):
     return budget_cost is None or used_cost + patches.cost[i] <= budget_cost * (1 + 1e-9)
 
 
-def _lazy_greedy(model: ReachGain, budget_km2, budget_cost, per_cost: bool, max_evaluations: int, base: float):
+def _lazy_greedy(model: ReachGain, budget_km2, budget_cost, per_cost: bool, max_evaluations: int):
     """One CELF pass: pop the best stale bound, re-evaluate, accept if still on top."""
     patches = model.patches
-    chosen, steps, current = [], [], base
+    chosen, steps, current = [], [], 0.0
     used_area = used_cost = 0.0
     # initial bounds are +inf so every patch is evaluated once, lazily, when it reaches the top
     heap = [(-math.inf, pid, -1, 0.0) for pid in range(1, patches.n + 1)]
@@ -151,23 +51,33 @@ def _lazy_greedy(model: ReachGain, budget_km2, budget_cost, per_cost: bool, max_
             current += gain
             steps.append(gain)
             continue
+        # only fresh reach runs count towards the cap; cached patch sets are free
         if model.n_evaluations - first >= max_evaluations:
             capped = True
             break
-        gain = model.gained_reached(chosen + [pid]) - current
+        gain = model.value(chosen + [pid]) - current
         score = gain / max(patches.cost[pid - 1], 1e-12) if per_cost else gain
         heapq.heappush(heap, (-score, pid, len(chosen), gain))
     return chosen, steps, current, capped
 
 
 def greedy_selection(model: ReachGain, *, budget_km2: float, budget_cost: float | None = None,
-                     max_evaluations: int = 2000, base: float | None = None) -> dict:
+                     max_evaluations: int = 2000) -> dict:
     """Cost-effective lazy greedy (CELF) selection of patches within the budget.
 
     Runs the lazy greedy twice -- by marginal gain per unit cost and by plain marginal gain --
     and keeps the better set, as Leskovec et al. (2007) do for their budgeted guarantee.
+    The gain is ``model.value``: the added reachable area (mean or worst case over climate
+    paths). Both passes start by evaluating every single patch; the model caches patch sets,
+    so the second pass gets those (and any later set both passes share) without a reach run.
     Trailing patches whose marginal gain is <= 0 are dropped (budget spent for nothing).
-    ``max_evaluations`` caps the reach runs of each pass; a capped pass stops early.
+    ``max_evaluations`` caps the fresh patch-set evaluations of each pass; a capped pass stops early.
+
+    Returns
+    -------
+    dict
+        ``chosen`` (patch ids in order), ``steps`` (marginal gain of each), ``total``
+        (``model.value(chosen)``), ``capped``, ``rule``.
 
     References
     ----------
@@ -177,10 +87,9 @@ def greedy_selection(model: ReachGain, *, budget_km2: float, budget_cost: float 
     """
     if not budget_km2 > 0:
         raise InputError(f"--budget-km2 must be > 0, got {budget_km2!r}")
-    base = model.gained_reached(()) if base is None else base
     best = None
     for per_cost in (True, False):
-        chosen, steps, total, capped = _lazy_greedy(model, budget_km2, budget_cost, per_cost, max_evaluations, base)
+        chosen, steps, total, capped = _lazy_greedy(model, budget_km2, budget_cost, per_cost, max_evaluations)
         if best is None or total > best["total"] + 1e-9:
             best = {"chosen": chosen, "steps": steps, "total": total, "capped": capped,
                     "rule": "gain per unit cost" if per_cost else "gain"}
@@ -188,9 +97,8 @@ def greedy_selection(model: ReachGain, *, budget_km2: float, budget_cost: float 
             best["capped"] = best["capped"] or capped
     # drop trailing patches that add nothing: restoring them is budget spent for no gain
     while best["steps"] and best["steps"][-1] <= 1e-9:
-        best["steps"].pop()
+        best["total"] -= best["steps"].pop()
         best["chosen"].pop()
-    best["base"] = base
     return best
 
 
@@ -204,40 +112,31 @@ def _fill_in_order(order, patches, budget_km2, budget_cost):
     return chosen
 
 
-def random_baseline(model: ReachGain, *, budget_km2, budget_cost=None, draws: int = 10, seed: int = 0,
-                    base: float | None = None) -> float:
-    """Mean gain over seeded random orders of the patches, each filled up to the budget."""
+def random_baseline(model: ReachGain, *, budget_km2, budget_cost=None, draws: int = 10, seed: int = 0) -> float:
+    """Mean objective over seeded random orders of the patches, each filled up to the budget."""
     rng = np.random.default_rng(seed)
-    base = model.gained_reached(()) if base is None else base
     gains = []
     for _ in range(draws):
         order = rng.permutation(np.arange(1, model.patches.n + 1))
-        gains.append(model.gained_reached(_fill_in_order(order, model.patches, budget_km2, budget_cost)) - base)
+        gains.append(model.value(_fill_in_order(order, model.patches, budget_km2, budget_cost)))
     return float(np.mean(gains))
 
 
-def _lonlat_xyz(lon, lat):
-    lam, phi = np.radians(lon), np.radians(lat)
-    return np.column_stack([np.cos(phi) * np.cos(lam), np.cos(phi) * np.sin(lam), np.sin(phi)])
+def nearest_baseline(model: ReachGain, lon, lat, *, budget_km2, budget_cost=None) -> tuple:
+    """Objective of the patches taken nearest the occupied start cells first (great-circle distance).
 
-
-def nearest_baseline(model: ReachGain, lon, lat, *, budget_km2, budget_cost=None,
-                     base: float | None = None) -> tuple:
-    """Gain of patches taken nearest the occupied start cells first (great-circle distance).
-
-    Distances are chord lengths on the unit sphere (monotone in great-circle distance)
-    found with a k-d tree (``scipy.spatial.cKDTree``). Returns (gain, chosen ids).
+    Distances are chord lengths between unit surface normals (monotone in great-circle
+    distance) found with a k-d tree (``scipy.spatial.cKDTree``). Returns (gain, chosen ids).
     """
     from scipy.spatial import cKDTree
 
     occupied = (model.start >= 0.5).ravel()
     lon, lat = np.asarray(lon).ravel(), np.asarray(lat).ravel()
-    tree = cKDTree(_lonlat_xyz(lon[occupied], lat[occupied]))
-    dist = [tree.query(_lonlat_xyz(lon[c], lat[c]))[0].min() for c in model.patches.cells]
+    tree = cKDTree(normal_vectors(lon[occupied], lat[occupied]))
+    dist = [tree.query(normal_vectors(lon[c], lat[c]))[0].min() for c in model.patches.cells]
     order = np.argsort(dist, kind="stable") + 1
     chosen = _fill_in_order(order, model.patches, budget_km2, budget_cost)
-    base = model.gained_reached(()) if base is None else base
-    return model.gained_reached(chosen) - base, chosen
+    return model.value(chosen), chosen
 
 
 @dataclass
@@ -247,17 +146,26 @@ class TargetResult:
     summary: dict
 
 
+def _per_path_steps(model: ReachGain, chosen) -> np.ndarray:
+    """Added area per climate path of each chosen patch in turn, shape (len(chosen), n_paths)."""
+    totals = [model.path_gains(chosen[:k]) for k in range(len(chosen) + 1)]
+    return np.diff(np.array(totals).reshape(len(chosen) + 1, -1), axis=0)
+
+
 def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: float, threshold: float,
-                       settings: DispersalSettings, cost=None, budget_cost=None, quality: float = 1.0,
-                       now_year: float = 2020, step_years: float = 1.0, rate: float = 1.0,
-                       persistence_years: float = 0.0, random_draws: int = 10, seed: int = 0,
+                       settings: DispersalSettings, cost=None, budget_cost=None, quality=1.0,
+                       objective: str = "mean", now_year: float = 2020, step_years: float = 1.0,
+                       rate: float = 1.0, persistence_years: float = 0.0, random_draws: int = 10, seed: int = 0,
                        max_evaluations: int = 2000) -> TargetResult:
     """Rank candidate restoration patches by the reachable range (km²) they add by the horizon.
 
     Parameters
     ----------
-    now, futures, habitat, start, threshold, settings, now_year, step_years, rate, persistence_years
+    now, habitat, start, threshold, settings, now_year, step_years, rate, persistence_years
         As for :func:`envelope.reach.simulate_reach` (deterministic mode).
+    futures : list of (year, DataArray), or dict of name -> list of (year, DataArray)
+        One climate path (suitability at each horizon), or several named paths (e.g.
+        pathway × climate model); the objective then combines their gains.
     candidates : DataArray (y, x)
         Nonzero where a cell could become habitat.
     budget_km2 : float
@@ -266,13 +174,18 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
         Cost per cell; the greedy ranks by gain per unit of it (default: per km²).
     budget_cost : float, optional
         Total cost allowed, in addition to the area budget.
-    quality : float
-        Habitat quality a restored cell reaches: habitat becomes max(current, quality).
+    quality : float or DataArray (y, x)
+        Habitat quality a restored cell reaches, in (0, 1] (one number, or per cell):
+        habitat becomes max(current, quality).
+    objective : {"mean", "worst"}
+        With several climate paths: the mean of the added reachable area over paths, or
+        its minimum (the gain every path gets at least).
 
     Returns
     -------
     TargetResult
-        ``rank`` (int, 1 = chosen first, 0 = nodata), ``table`` (:data:`TABLE_COLUMNS`), ``summary``.
+        ``rank`` (int, 1 = chosen first, 0 = nodata), ``table`` (:data:`TABLE_COLUMNS`, plus
+        ``added_reachable_km2.<path>`` per climate path when there are several), ``summary``.
 
     References
     ----------
@@ -282,8 +195,6 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
         raise InputError(f"--budget-km2 must be a number > 0, got {budget_km2!r}")
     if budget_cost is not None and not budget_cost > 0:
         raise InputError(f"--budget-cost must be > 0, got {budget_cost!r}")
-    if not futures:
-        raise InputError("target needs at least one future suitability map (--future)")
     from envelope.grids import cell_area_km2
 
     areas = np.asarray(cell_area_km2(now).values, dtype=np.float64)
@@ -291,47 +202,59 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
     patches = candidate_patches(np.asarray(candidates.values), areas, lon, lat,
                                 cost=None if cost is None else np.asarray(cost.values))
     model = ReachGain(now, futures, habitat, start, patches, threshold=threshold, settings=settings,
-                      quality=quality, now_year=now_year, step_years=step_years, rate=rate,
+                      quality=quality, objective=objective, now_year=now_year, step_years=step_years, rate=rate,
                       persistence_years=persistence_years, cell_area_km2=areas)
-    base = model.gained_reached(())
-    best = greedy_selection(model, budget_km2=budget_km2, budget_cost=budget_cost,
-                            max_evaluations=max_evaluations, base=base)
+    base = model.path_areas(())
+    best = greedy_selection(model, budget_km2=budget_km2, budget_cost=budget_cost, max_evaluations=max_evaluations)
     random_gain = random_baseline(model, budget_km2=budget_km2, budget_cost=budget_cost, draws=random_draws,
-                                  seed=seed, base=base)
-    nearest_gain, _ = nearest_baseline(model, lon, lat, budget_km2=budget_km2, budget_cost=budget_cost, base=base)
+                                  seed=seed)
+    nearest_gain, _ = nearest_baseline(model, lon, lat, budget_km2=budget_km2, budget_cost=budget_cost)
 
+    several = len(model.names) > 1
+    per_path = _per_path_steps(model, best["chosen"])
+    columns = TABLE_COLUMNS + ([f"added_reachable_km2.{n}" for n in model.names] if several else [])
     rows, rank = [], np.zeros(patches.labels.shape, dtype=np.int32)
     for r, (pid, gain) in enumerate(zip(best["chosen"], best["steps"]), start=1):
         i = pid - 1
         rank[patches.labels == pid] = r
-        rows.append({"rank": r, "patch_id": pid, "area_km2": patches.area_km2[i], "cost": patches.cost[i],
-                     "added_reachable_km2": gain, "added_per_km2": gain / patches.area_km2[i],
-                     "centroid_lon": patches.centroid_lon[i], "centroid_lat": patches.centroid_lat[i]})
-    table = pd.DataFrame(rows, columns=TABLE_COLUMNS)
+        row = {"rank": r, "patch_id": pid, "area_km2": patches.area_km2[i], "cost": patches.cost[i],
+               "added_reachable_km2": gain, "added_per_km2": gain / patches.area_km2[i],
+               "centroid_lon": patches.centroid_lon[i], "centroid_lat": patches.centroid_lat[i]}
+        if several:
+            row.update({f"added_reachable_km2.{n}": float(v) for n, v in zip(model.names, per_path[r - 1])})
+        rows.append(row)
+    table = pd.DataFrame(rows, columns=columns)
     dtype = np.uint16 if len(rows) < 65535 else np.int32
     rank_da = now.copy(data=rank.astype(dtype)).rename("priority_rank")
+    chosen_gains = model.path_gains(best["chosen"])
     summary = {
-        "reachable_gain_km2": best["total"] - base,
+        "reachable_gain_km2": best["total"],
         "random_baseline_gain_km2": random_gain,
         "nearest_baseline_gain_km2": nearest_gain,
+        "objective": objective,
         "budget_km2": float(budget_km2),
         "budget_cost": budget_cost,
         "n_candidate_patches": patches.n,
         "n_chosen": len(rows),
-        "baseline_gained_reached_km2": base,
+        "baseline_gained_reached_km2": float(np.mean(base)),
+        "climate_paths": [{"name": n, "horizon_years": model.horizons[n],
+                           "baseline_gained_reached_km2": float(b), "reachable_gain_km2": float(g)}
+                          for n, b, g in zip(model.names, base, chosen_gains)],
         "chosen_area_km2": float(table["area_km2"].sum()) if rows else 0.0,
         "chosen_cost": float(table["cost"].sum()) if rows else 0.0,
         "cost_source": "raster" if cost is not None else "area (km²)",
         "greedy_rule": best["rule"],
         "n_evaluations": model.n_evaluations,
+        "n_reach_runs": model.n_reach_runs,
+        "n_cache_hits": model.n_cache_hits,
         "evaluations_capped": best["capped"],
         "random_draws": random_draws,
         "seed": seed,
-        "quality": quality,
+        "quality": quality if np.ndim(quality) == 0 else "raster",
         "threshold": threshold,
         "kernel": settings.kernel,
         "mean_distance_km": settings.mean_distance_km,
-        "horizon_years": model.years,
+        "horizon_years": sorted({y for n in model.names for y in model.horizons[n]}),
         "method": "lazy greedy (CELF, Leskovec et al. 2007) on deterministic reach runs",
     }
     return TargetResult(rank=rank_da, table=table, summary=summary)
@@ -341,6 +264,7 @@ def write_target_outputs(result: TargetResult, out, table_path, summary_path, *,
     """Write the rank raster, the patch table (CSV) and the summary JSON; all checked first, each atomic."""
     import json
 
+    from envelope.fitting import json_ready
     from envelope.io.atomic import atomic_output, check_writable
     from envelope.io.rasters import write_raster
 
@@ -351,5 +275,5 @@ def write_target_outputs(result: TargetResult, out, table_path, summary_path, *,
     with atomic_output(table_path, overwrite=overwrite) as tmp:
         result.table.to_csv(tmp, index=False)
     with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json.dumps(result.summary, indent=2))
+        tmp.write_text(json.dumps(json_ready(result.summary), indent=2, allow_nan=False))
     return {"priority": str(out), "table": str(table_path), "summary": str(summary_path)}

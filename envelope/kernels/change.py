@@ -15,6 +15,7 @@ __all__ = [
     "check_threshold",
     "classify_change",
     "class_sums",
+    "normal_vectors",
     "normal_vector_sums",
     "position_from_vector",
     "weighted_quantile",
@@ -121,6 +122,23 @@ def class_sums(classes, weights, n_classes: int = len(CHANGE_CLASSES)) -> np.nda
     return out
 
 
+def normal_vectors(lon, lat) -> np.ndarray:
+    """Unit surface normals (n-vectors) at geodetic ``lon``, ``lat`` (degrees), shape (..., 3).
+
+    (cos phi cos lambda, cos phi sin lambda, sin phi) (Gade 2010, eq. 3). Chord lengths
+    between them are monotone in the angle between the normals.
+
+    References
+    ----------
+    Gade, K. (2010) A non-singular horizontal position representation. Journal of
+    Navigation 63: 395-417.
+    """
+    lam = np.radians(np.asarray(lon, dtype=np.float64))
+    phi = np.radians(np.asarray(lat, dtype=np.float64))
+    cos_phi = np.cos(phi)
+    return np.stack([cos_phi * np.cos(lam), cos_phi * np.sin(lam), np.sin(phi)], axis=-1)
+
+
 def normal_vector_sums(lon, lat, weights) -> np.ndarray:
     """Weighted sum of the ellipsoid's unit surface normals (n-vectors) at geodetic ``lon``, ``lat``.
 
@@ -138,19 +156,12 @@ def normal_vector_sums(lon, lat, weights) -> np.ndarray:
     Gade, K. (2010) A non-singular horizontal position representation. Journal of
     Navigation 63: 395-417.
     """
-    lon = np.radians(np.asarray(lon, dtype=np.float64))
-    lat = np.radians(np.asarray(lat, dtype=np.float64))
-    w = np.asarray(weights, dtype=np.float64)
-    lon, lat, w = np.broadcast_arrays(lon, lat, w)
+    lon, lat, w = np.broadcast_arrays(np.asarray(lon, dtype=np.float64), np.asarray(lat, dtype=np.float64),
+                                      np.asarray(weights, dtype=np.float64))
     keep = np.isfinite(lon) & np.isfinite(lat) & np.isfinite(w)
-    lon, lat, w = lon[keep], lat[keep], w[keep]
-    cos_lat = np.cos(lat)
-    return np.array([
-        np.sum(w * cos_lat * np.cos(lon)),
-        np.sum(w * cos_lat * np.sin(lon)),
-        np.sum(w * np.sin(lat)),
-        np.sum(w),
-    ])
+    w = w[keep]
+    vectors = normal_vectors(lon[keep], lat[keep])
+    return np.append(w @ vectors, np.sum(w))
 
 
 def position_from_vector(vector_sums) -> tuple[float, float]:
