@@ -97,6 +97,9 @@ def _print(summary, written):
     console.print(f"reached share of gain: {'–' if share is None else f'{share:.1%}'}; "
                   f"front advance {_km(summary['front_advance_km'])}, "
                   f"{_km(summary['spread_rate_km_per_decade'])} per decade")
+    frag = summary.get("fragmentation_by_latitude")
+    if frag:
+        console.print(f"habitat fragmentation by latitude: {frag['statement']}")
     for key, path in written.items():
         console.print(f"{key}: {path}")
 

@@ -30,6 +30,7 @@ __all__ = [
     "plot_cv_folds",
     "plot_range_sizes",
     "plot_gain_split",
+    "plot_mesh_size_by_latitude",
     "figure_to_png_bytes",
     "figure_to_data_uri",
     "add_scale_bar",
@@ -726,6 +727,39 @@ def plot_gain_split(table, *, title: str = "What becomes of the climatic gain") 
     ax.set_axisbelow(True)
     ax.legend(fontsize=8, loc="lower right", framealpha=0.9)
     ax.set_title(title, fontsize=11)
+    return fig
+
+
+def plot_mesh_size_by_latitude(bands, *, title: str = "Habitat fragmentation by latitude") -> Figure:
+    """Effective mesh size and habitat share per latitude band, equator at the bottom, pole at the top.
+
+    Parameters
+    ----------
+    bands : DataFrame with columns lat_min, lat_max, hemisphere, effective_mesh_size_km2,
+        habitat_share_of_land (rows equatorward to poleward, as from
+        :func:`envelope.habitat.fragmentation_by_latitude`)
+    """
+    cols = ["lat_min", "lat_max", "hemisphere", "effective_mesh_size_km2", "habitat_share_of_land"]
+    _require_columns(bands, cols, "plot_mesh_size_by_latitude: bands")
+    mesh = pd.to_numeric(bands["effective_mesh_size_km2"], errors="coerce").fillna(0).to_numpy(dtype=float)
+    share = pd.to_numeric(bands["habitat_share_of_land"], errors="coerce").fillna(0).to_numpy(dtype=float)
+    if np.any(mesh < 0) or np.any(share < 0):
+        raise InputError("plot_mesh_size_by_latitude: negative mesh size or habitat share; expected values >= 0")
+    fig = _plot_figure((7.5, 0.32 * len(bands) + 1.6))
+    ax_mesh, ax_share = fig.subplots(1, 2, sharey=True)
+    pos = np.arange(len(bands))
+    labels = [f"{abs(a):g}–{abs(b):g}° {h}" for a, b, h in zip(bands["lat_min"], bands["lat_max"],
+                                                                 bands["hemisphere"])]
+    ax_mesh.barh(pos, mesh, color=palettes.OKABE_ITO["bluish_green"], edgecolor="0.2", linewidth=0.5)
+    ax_mesh.set_xlabel("effective mesh size (km²)")
+    ax_share.barh(pos, 100 * share, color=palettes.OKABE_ITO["sky_blue"], edgecolor="0.2", linewidth=0.5)
+    ax_share.set_xlabel("habitat share of land (%)")
+    ax_mesh.set_yticks(pos, labels, fontsize=8)
+    for ax in (ax_mesh, ax_share):
+        ax.grid(True, axis="x", color="0.85", linewidth=0.5)
+        ax.set_axisbelow(True)
+        ax.tick_params(labelsize=8)
+    fig.suptitle(title + " (poleward at the top)", fontsize=11)
     return fig
 
 

@@ -120,13 +120,20 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
                        "front_advance_km": s["front_advance_km"],
                        "spread_rate_km_per_decade": s["spread_rate_km_per_decade"]})
         rs = pd.DataFrame(rs)
+        # the habitat is the same in every run: its fragmentation table is taken from the first
+        frag = json.loads(Path(reach_rows[0]["summary"]).read_text()).get("fragmentation_by_latitude")
         if study.outputs.figures:
             tables.append((figures.plot_gain_split(rs), "Climatic gain reached, not reached, without habitat"))
+            if frag and frag["bands"]:
+                tables.append((figures.plot_mesh_size_by_latitude(pd.DataFrame(frag["bands"])),
+                               f"Habitat (fraction >= {frag['habitat_threshold']:g}) by {frag['band_deg']:g}° "
+                               "latitude band: effective mesh size (Jaeger 2000) and habitat share of land"))
         rep.add_section("reach", "Reachable gains", paragraphs=[
             "Reach runs step habitat-gated dispersal through the ensemble-mean suitability of each pathway; "
             "suitability between the given horizons is interpolated linearly in time (an assumption). "
             "The held-climate run keeps today's climate: the difference between it and a pathway is what the "
-            "changing climate opens, beyond what habitat and dispersal allow anyway."],
+            "changing climate opens, beyond what habitat and dispersal allow anyway.",
+            *([f"Habitat fragmentation by latitude: {frag['statement']}."] if frag else [])],
             table=rs.round(3), figures=tables, table_caption="Reach by pathway (km²)")
     novel = suit_rows["novel_share"].max() if "novel_share" in suit_rows else None
     rep.add_section("cautions", paragraphs=[

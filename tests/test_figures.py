@@ -345,6 +345,23 @@ def test_plot_gain_split():
         figures.plot_gain_split(bad)
 
 
+def test_plot_mesh_size_by_latitude():
+    bands = pd.DataFrame({"lat_min": [40.0, 41.0, 42.0], "lat_max": [41.0, 42.0, 43.0], "hemisphere": ["N"] * 3,
+                          "effective_mesh_size_km2": [120.0, 30.0, 2.5],
+                          "habitat_share_of_land": [0.3, 0.1, 0.02]})
+    fig = figures.plot_mesh_size_by_latitude(bands)
+    mesh_ax, share_ax = fig.axes
+    # Analytic: bar lengths are the table's values (shares in %), equatorward band at the bottom
+    np.testing.assert_allclose([p.get_width() for p in mesh_ax.patches], [120.0, 30.0, 2.5])
+    np.testing.assert_allclose([p.get_width() for p in share_ax.patches], [30.0, 10.0, 2.0])
+    assert [t.get_text() for t in mesh_ax.get_yticklabels()] == ["40–41° N", "41–42° N", "42–43° N"]
+    assert mesh_ax.patches[0].get_y() < mesh_ax.patches[2].get_y()
+    with pytest.raises(InputError, match=r"missing column\(s\) \['hemisphere'\]"):
+        figures.plot_mesh_size_by_latitude(bands.drop(columns="hemisphere"))
+    with pytest.raises(InputError, match="negative mesh size"):
+        figures.plot_mesh_size_by_latitude(bands.assign(effective_mesh_size_km2=[-1.0, 0.0, 0.0]))
+
+
 # ----------------------------------------------------------------- output --------------
 
 def test_figure_to_png_and_data_uri():

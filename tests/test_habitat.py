@@ -10,7 +10,7 @@ from affine import Affine
 from pyproj import Geod
 
 from envelope.errors import GridMismatchError, InputError
-from envelope.habitat import fragmentation_by_latitude, load_habitat, read_class_table
+from envelope.habitat import fragmentation_by_latitude, fragmentation_summary, load_habitat, read_class_table
 
 
 def layer(values, *, x0=-150.0, y_top=45.0, res=0.04, crs="EPSG:4326", nodata=None, dtype=None):
@@ -364,6 +364,43 @@ def test_fragmentation_projected_grid_uses_cell_latitudes():
     assert ranks == {-0.05: 0, 0.0: 0, -0.1: 1, 0.05: 1}
     np.testing.assert_allclose(table["land_area_km2"], 4 * 25.0, rtol=1e-6)
     np.testing.assert_allclose(table["effective_mesh_size_km2"], 100.0, rtol=1e-6)
+
+
+def test_fragmentation_summary_pools_halves_by_land_area():
+    # Source: Jaeger 2000: m_eff = Σ A_i² / A_t; with cutting-out the union of bands has
+    # Σ_bands Σ_i A_i² / Σ_bands A_t (hand computation on the same 0–2°N grid as above,
+    # cut into 0.5° bands: 4 bands, halves {0–0.5, 0.5–1} and {1–1.5, 1.5–2}).
+    hab = np.array([
+        [0.9, 0.0, 0.0, 0.0],   # 1.5-2.0
+        [0.9, 0.0, 0.7, 0.7],   # 1.0-1.5
+        [0.9, 0.0, 0.0, 0.3],   # 0.5-1.0
+        [0.9, 0.0, 0.6, 0.0],   # 0.0-0.5
+    ], "float32")
+    table = fragmentation_by_latitude(layer(hab, x0=0.0, y_top=2.0, res=0.5), band_deg=0.5)
+    out = fragmentation_summary(table, band_deg=0.5)
+    a = {lat: ellipsoid_band_area_km2(lat, lat + 0.5, 0.5) for lat in (0.0, 0.5, 1.0, 1.5)}
+    # equatorward half: row 0.0-0.5 has patches {col 0} and {col 2}; row 0.5-1 has {col 0}
+    low = (2 * a[0.0] ** 2 + a[0.5] ** 2) / (4 * a[0.0] + 4 * a[0.5])
+    # poleward half: row 1.0-1.5 has {col 0} and {cols 2-3}; row 1.5-2 has {col 0}
+    high = (a[1.0] ** 2 + (2 * a[1.0]) ** 2 + a[1.5] ** 2) / (4 * a[1.0] + 4 * a[1.5])
+    assert out["equatorward_half"]["effective_mesh_size_km2"] == pytest.approx(low, rel=1e-9)
+    assert out["poleward_half"]["effective_mesh_size_km2"] == pytest.approx(high, rel=1e-9)
+    assert out["poleward_half_more_fragmented"] is (high < low) is False
+    assert out["poleward_half"]["patches_per_1000_km2"] == pytest.approx(3000 / (4 * a[1.0] + 4 * a[1.5]), rel=1e-9)
+    assert [b["lat_min"] for b in out["bands"]] == [0.0, 0.5, 1.0, 1.5]
+    assert "not more fragmented" in out["statement"]
+
+
+def test_fragmentation_summary_odd_and_single_band():
+    # Common practice, no source: the middle band of an odd number belongs to neither half;
+    # one band has nothing to compare with.
+    da = layer(np.ones((3, 2), "float32"), x0=0.0, y_top=3.0, res=1.0)
+    out = fragmentation_summary(fragmentation_by_latitude(da))
+    assert out["equatorward_half"]["lat_max"] == 1.0 and out["poleward_half"]["lat_min"] == 2.0
+    one = fragmentation_summary(fragmentation_by_latitude(layer(np.ones((1, 2), "float32"), x0=0.0, y_top=1.0,
+                                                                res=1.0)))
+    assert one["poleward_half_more_fragmented"] is None and one["poleward_half"] is None
+    assert "fewer than two latitude bands" in one["statement"]
 
 
 # --------------------------------------------------------------------------- demo study

@@ -144,3 +144,58 @@ def test_threshold_from_tags():
     with pytest.raises(InputError, match="disagree"):
         threshold_from_tags({"a.tif": {"threshold": 0.4}, "b.tif": {"threshold": 0.5}})
     assert threshold_from_tags({"a.tif": {}}, given=0.3) == 0.3
+
+
+def test_summary_has_fragmentation_by_latitude():
+    # Source: Jaeger 2000, m_eff = Σ A_i² / A_t per band (cutting-out). Grid 7–10° N: the
+    # southern band is one habitat patch covering its land (m_eff = land area); the northern
+    # band is a checkerboard, so with 4-connectivity every habitat cell is its own patch.
+    now, fut, _, start = corridor()                 # 60 rows of 0.05°: bands 7-8, 8-9, 9-10 °N
+    hab = np.ones(start.shape)
+    checker = (np.add.outer(np.arange(20), np.arange(30)) % 2 == 0)
+    hab[:20] = checker
+    res = run(now, fut, layer(hab), start)
+    frag = res.summary["fragmentation_by_latitude"]
+    assert [b["lat_min"] for b in frag["bands"]] == [7.0, 8.0, 9.0]
+    areas = np.asarray(cell_area_km2(now).values)
+    south, north = frag["bands"][0], frag["bands"][2]
+    assert south["n_patches"] == 1
+    assert south["effective_mesh_size_km2"] == pytest.approx(areas[40:].sum(), rel=1e-9)
+    assert north["n_patches"] == checker.sum()
+    expected = (areas[:20][checker] ** 2).sum() / areas[:20].sum()
+    assert north["effective_mesh_size_km2"] == pytest.approx(expected, rel=1e-9)
+    assert frag["poleward_half_more_fragmented"] is True
+    # land is where the climate maps have data: a NaN row leaves the band's land smaller
+    now_nan = now.copy(data=np.where(np.arange(60)[:, None] == 0, np.nan, now.values).astype("float32"))
+    frag2 = run(now_nan, fut, layer(hab), start).summary["fragmentation_by_latitude"]
+    assert frag2["bands"][2]["land_area_km2"] == pytest.approx(areas[1:20].sum(), rel=1e-9)
+    assert "fragmentation_by_latitude" not in run(now, fut, layer(hab), start,
+                                                  fragmentation_band_deg=None).summary
+
+
+def test_fragmentation_on_projected_grid_uses_cell_latitudes():
+    # Source: pyproj (reference library) gives each cell centre's latitude; the summary's
+    # bands are exactly the 1° bands those latitudes fall in, and its land areas are the
+    # equal-area grid's 25 km² cells counted per band.
+    import pyproj
+
+    crs = "+proj=laea +lat_0=45 +lon_0=-150 +datum=WGS84 +units=m"
+    ny, nx = 60, 20
+    x = (np.arange(nx) - nx / 2 + 0.5) * 5000.0
+    y = (np.arange(ny)[::-1] - ny / 2 + 0.5) * 5000.0
+
+    def grid(values):
+        return xr.DataArray(values.astype("float32"), dims=("y", "x"), coords={"y": y, "x": x}).rio.write_crs(crs)
+
+    now = np.zeros((ny, nx))
+    now[40:] = 1.0
+    start = np.zeros((ny, nx))
+    start[-2:] = 1.0
+    res = simulate_reach(grid(now), [(2050, grid(np.ones((ny, nx))))], grid(np.ones((ny, nx))), start,
+                         threshold=0.5, settings=DispersalSettings(mean_distance_km=5.0), now_year=2020)
+    xx, yy = np.meshgrid(x, y)
+    lat = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True).transform(xx, yy)[1]
+    bands = res.summary["fragmentation_by_latitude"]["bands"]
+    want, counts = np.unique(np.floor(lat), return_counts=True)
+    assert [b["lat_min"] for b in bands] == list(want)
+    np.testing.assert_allclose([b["land_area_km2"] for b in bands], counts * 25.0, rtol=1e-6)

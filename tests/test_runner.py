@@ -152,3 +152,49 @@ def test_study_errors_name_the_key(tmp_path):
     assert "nmae" in result.output
     with pytest.raises(InputError):
         load_study(bad)
+
+
+def test_reach_summaries_hold_fragmentation_by_latitude(full_run):
+    # Source: sample_grids/README.md: the demo's open-ground habitat grows fewer and smaller
+    # patches poleward, so the poleward half of the bands is the more fragmented.
+    _, run_dir, _ = full_run
+    summary = json.loads((run_dir / "reach" / "high_reach.json").read_text())
+    frag = summary["fragmentation_by_latitude"]
+    lats = [b["lat_min"] for b in frag["bands"]]
+    assert lats == sorted(lats) and frag["band_deg"] == 1.0
+    assert frag["poleward_half_more_fragmented"] is True
+    assert "more fragmented" in frag["statement"]
+
+
+def test_target_reads_the_study_run(full_run, tmp_path):
+    # Consistency: with nothing restored, each pathway's reachable area in targeting equals
+    # the run's own deterministic reach step for that pathway (same maps, settings, start).
+    import numpy as np
+
+    from envelope.io.rasters import open_layer, write_raster
+
+    study_path, run_dir, _ = full_run
+    now = open_layer(run_dir / "projection" / "now_suitability.tif")
+    hab = open_layer(DEMO / "habitat.tif").values
+    cand = np.zeros(now.shape, "float32")
+    window = (slice(60, 72), slice(110, 122))
+    cand[window] = (np.isfinite(now.values) & (hab < 0.2))[window]
+    cand_path = tmp_path / "restorable.tif"
+    write_raster(now.copy(data=cand).rename("candidates"), cand_path)
+    out = tmp_path / "out"
+    out.mkdir()
+    result = CliRunner().invoke(cli, ["target", "--study", str(study_path), "--run-dir", str(run_dir),
+                                      "--candidates", str(cand_path), "--budget-km2", "200", "--random-draws", "2",
+                                      "--out", str(out / "p.tif"), "--table", str(out / "p.csv"),
+                                      "--summary", str(out / "t.json")])
+    assert result.exit_code == 0, result.output
+    summary = json.loads((out / "t.json").read_text())
+    paths = {p["name"]: p for p in summary["climate_paths"]}
+    assert set(paths) == {"high", "low"}
+    for name, p in paths.items():
+        reach = json.loads((run_dir / "reach" / f"{name}_reach.json").read_text())
+        assert p["baseline_gained_reached_km2"] == pytest.approx(reach["area_km2"]["gained_reached"], rel=1e-9)
+        assert p["horizon_years"] == [2050.0, 2080.0]
+    fit = json.loads((run_dir / "models" / "pointprocess.fit.json").read_text())
+    assert summary["threshold"] == fit["threshold"]["value"]
+    assert summary["mean_distance_km"] == 5.0 and summary["inputs"]["study"] == str(study_path)

@@ -43,6 +43,10 @@ def test_reach_writes_classes_summary_front_arrival(inputs, tmp_path):
         assert key in summary["area_km2"]
     for key in ("reached_share_of_gain", "front_advance_km", "spread_rate_km_per_decade"):
         assert key in summary
+    # Definition: the grid's rows span 7-10° N, so three 1° bands, equator to pole
+    frag = summary["fragmentation_by_latitude"]
+    assert [b["lat_min"] for b in frag["bands"]] == [7.0, 8.0, 9.0]
+    assert "habitat fragmentation by latitude" in result.output
     tags = read_tags(out / "reach.tif")
     assert tags["categories"][3] == "gained_reached"
     classes = open_layer(out / "reach.tif", categorical=True).values

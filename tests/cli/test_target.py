@@ -10,7 +10,7 @@ from click.testing import CliRunner
 from envelope.cli.main import cli
 from envelope.io.rasters import open_layer, write_raster
 from tests.test_reach import layer
-from tests.test_targeting import landscape
+from tests.test_targeting import landscape, model_and_patches
 
 
 @pytest.fixture
@@ -89,4 +89,152 @@ def test_bad_input_exit_2_nothing_written(inputs, tmp_path, case, phrase):
     assert result.exit_code == 2, result.output
     assert phrase in result.output
     assert len([ln for ln in result.output.strip().splitlines() if ln.strip()]) == 1
+    assert list(out.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- several climate paths
+
+
+def _paths_table(tmp_path, inputs, rows=None, header="name,pathway,climate_model,horizon,path"):
+    """A suitability table (the format `envelope project --scenarios` writes) with two climate models."""
+    from tests.test_targeting import two_paths
+
+    _, paths, _, _, _ = two_paths()
+    east = tmp_path / "east.tif"
+    write_raster(paths["east"][0][1].rename("suitability"), east, tags={"threshold": 0.5})
+    rows = rows or [f"p_all_2100,p,all,2100,{inputs['fut'].name}", "p_east_2100,p,east,2100,east.tif"]
+    table = tmp_path / "suitability_table.csv"
+    table.write_text(header + "\n" + "\n".join(rows) + "\n")
+    return table
+
+
+def table_args(p, out_dir, table, *extra, budget="1000"):
+    return ["target", "--now", str(p["now"]), "--scenarios", str(table), "--habitat", str(p["hab"]),
+            "--start", str(p["start"]), "--mean-distance-km", "3", "--rate", "3", "--candidates", str(p["cand"]),
+            "--budget-km2", budget, "--random-draws", "2", "--out", str(out_dir / "priority.tif"),
+            "--table", str(out_dir / "priority.csv"), "--summary", str(out_dir / "target.json"), *extra]
+
+
+@pytest.mark.parametrize("objective, first", [("mean", (12, 9)), ("worst", (20, 15))])
+def test_scenario_table_mean_and_worst(inputs, tmp_path, objective, first):
+    # Analytic (tests/test_targeting.py::two_paths): the bridge adds nothing under the "east"
+    # climate model, so the worst case ranks the stub first and the mean the bridge.
+    out = tmp_path / "out"
+    out.mkdir()
+    table = _paths_table(tmp_path, inputs)
+    _, patches, _ = model_and_patches()
+    budget = f"{patches.area_km2[patches.labels[12, 9] - 1] * 1.001:.3f}"   # room for the bridge only
+    result = CliRunner().invoke(cli, table_args(inputs, out, table, "--objective", objective, budget=budget))
+    assert result.exit_code == 0, result.output
+    summary = json.loads((out / "target.json").read_text())
+    assert summary["objective"] == objective
+    assert [p["name"] for p in summary["climate_paths"]] == ["p/all", "p/east"]
+    rank = open_layer(out / "priority.tif", categorical=True).values
+    assert rank[first] == 1
+    csv = pd.read_csv(out / "priority.csv")
+    assert {"added_reachable_km2.p/all", "added_reachable_km2.p/east"} <= set(csv.columns)
+    assert "per climate path" in result.output
+
+
+@pytest.mark.parametrize("case, phrase", [
+    ("missing_column", "column 'climate_model' missing"),
+    ("missing_file", "suitability raster"),
+    ("mismatched_grid", "--scenarios"),
+    ("with_future", "--scenarios replaces --future/--years"),
+])
+def test_bad_scenario_table(inputs, tmp_path, case, phrase):
+    out = tmp_path / "out"
+    out.mkdir()
+    extra = []
+    if case == "missing_column":
+        table = _paths_table(tmp_path, inputs, rows=[f"a,p,2100,{inputs['fut'].name}"],
+                             header="name,pathway,horizon,path")
+    elif case == "missing_file":
+        table = _paths_table(tmp_path, inputs, rows=["a,p,m,2100,nowhere.tif"])
+    elif case == "mismatched_grid":
+        table = _paths_table(tmp_path, inputs, rows=[f"a,p,m,2100,{_other_grid(tmp_path).name}"])
+    else:
+        table = _paths_table(tmp_path, inputs)
+        extra = ["--future", str(inputs["fut"]), "--years", "2100"]
+    result = CliRunner().invoke(cli, table_args(inputs, out, table, *extra))
+    assert result.exit_code == 2, result.output
+    assert phrase in result.output
+    assert list(out.iterdir()) == []
+
+
+def test_bad_objective_is_a_usage_error(inputs, tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    result = CliRunner().invoke(cli, args(inputs, out, "--objective", "best"))
+    assert result.exit_code == 2
+    assert "Invalid value for '--objective'" in result.output
+    assert list(out.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- quality
+
+
+def _quality_raster(tmp_path, value, shape=(40, 20)):
+    p = tmp_path / "quality.tif"
+    q = np.full(shape, 0.5)
+    q[20, 15] = value
+    write_raster(layer(q).rename("quality"), p)
+    return p
+
+
+def test_quality_raster_runs_and_is_recorded(inputs, tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    q = _quality_raster(tmp_path, 1.0)
+    result = CliRunner().invoke(cli, args(inputs, out, "--quality", str(q)))
+    assert result.exit_code == 0, result.output
+    summary = json.loads((out / "target.json").read_text())
+    assert summary["quality"] == "raster" and summary["inputs"]["quality"] == str(q)
+
+
+@pytest.mark.parametrize("case, phrase", [
+    ("zero", "--quality must lie in (0, 1], got 0"),
+    ("above", "--quality must lie in (0, 1], got 1.5"),
+    ("no_file", "expected a number in (0, 1] or a quality raster"),
+    ("raster_above", "outside (0, 1]"),
+    ("raster_grid", "--quality"),
+])
+def test_bad_quality_exit_2(inputs, tmp_path, case, phrase):
+    out = tmp_path / "out"
+    out.mkdir()
+    value = {"zero": "0", "above": "1.5", "no_file": "high"}.get(case)
+    if case == "raster_above":
+        value = str(_quality_raster(tmp_path, 1.2))
+    elif case == "raster_grid":
+        value = str(_other_grid(tmp_path))
+    result = CliRunner().invoke(cli, args(inputs, out, "--quality", value))
+    assert result.exit_code == 2, result.output
+    assert phrase in result.output
+    assert len([ln for ln in result.output.strip().splitlines() if ln.strip()]) == 1
+    assert list(out.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- --study / --run-dir
+
+
+@pytest.mark.parametrize("extra, phrase", [
+    (["--study", "STUDY"], "--study and --run-dir go together"),
+    (["--study", "STUDY", "--run-dir", "RUN", "--now", "NOW"], "--now: the reach model comes from the study run"),
+    (["--study", "STUDY", "--run-dir", "RUN", "--rate", "2"], "--rate: the reach model comes from the study run"),
+    (["--study", "STUDY", "--run-dir", "RUN"], "not found; expected a finished run"),
+    ([], "--now is required (or give --study and --run-dir)"),
+])
+def test_study_option_errors(inputs, tmp_path, extra, phrase):
+    from tests.test_runner import small_study
+
+    out = tmp_path / "out"
+    out.mkdir()
+    run_dir = tmp_path / "empty-run"
+    run_dir.mkdir()
+    subs = {"STUDY": str(small_study(tmp_path)), "RUN": str(run_dir), "NOW": str(inputs["now"])}
+    argv = ["target", *(subs.get(a, a) for a in extra), "--candidates", str(inputs["cand"]), "--budget-km2", "10",
+            "--out", str(out / "p.tif"), "--table", str(out / "p.csv"), "--summary", str(out / "t.json")]
+    result = CliRunner().invoke(cli, argv)
+    assert result.exit_code == 2, result.output
+    assert phrase in result.output
     assert list(out.iterdir()) == []
