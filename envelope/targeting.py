@@ -156,7 +156,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
                        settings: DispersalSettings, cost=None, budget_cost=None, quality=1.0,
                        objective: str = "mean", now_year: float = 2020, step_years: float = 1.0,
                        rate: float = 1.0, persistence_years: float = 0.0, random_draws: int = 10, seed: int = 0,
-                       max_evaluations: int = 2000) -> TargetResult:
+                       max_evaluations: int = 2000, cache: bool = True) -> TargetResult:
     """Rank candidate restoration patches by the reachable range (km²) they add by the horizon.
 
     Parameters
@@ -180,6 +180,9 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
     objective : {"mean", "worst"}
         With several climate paths: the mean of the added reachable area over paths, or
         its minimum (the gain every path gets at least).
+    cache : bool, default=True
+        Reuse the reach runs of patch sets already evaluated (:class:`ReachGain`); off only
+        to measure what the cache saves (bench/bench_target.py).
 
     Returns
     -------
@@ -203,7 +206,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
                                 cost=None if cost is None else np.asarray(cost.values))
     model = ReachGain(now, futures, habitat, start, patches, threshold=threshold, settings=settings,
                       quality=quality, objective=objective, now_year=now_year, step_years=step_years, rate=rate,
-                      persistence_years=persistence_years, cell_area_km2=areas)
+                      persistence_years=persistence_years, cell_area_km2=areas, cache=cache)
     base = model.path_areas(())
     best = greedy_selection(model, budget_km2=budget_km2, budget_cost=budget_cost, max_evaluations=max_evaluations)
     random_gain = random_baseline(model, budget_km2=budget_km2, budget_cost=budget_cost, draws=random_draws,

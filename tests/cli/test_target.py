@@ -54,6 +54,14 @@ def test_target_writes_rank_table_summary(inputs, tmp_path):
     assert table["area_km2"].sum() <= 2000
 
 
+def failed_cleanly(result, out, phrase):
+    """Exit status 2, one line `Error: ...` holding ``phrase``, nothing written to ``out``."""
+    assert result.exit_code == 2, result.output
+    assert phrase in result.output
+    assert len([ln for ln in result.output.strip().splitlines() if ln.strip()]) == 1
+    assert list(out.iterdir()) == []
+
+
 def _other_grid(tmp_path):
     other = layer(np.ones((10, 10)))
     p = tmp_path / "other.tif"
@@ -86,10 +94,7 @@ def test_bad_input_exit_2_nothing_written(inputs, tmp_path, case, phrase):
     else:
         kw["cand"] = _empty(tmp_path)
     result = CliRunner().invoke(cli, args(inputs, out, **kw))
-    assert result.exit_code == 2, result.output
-    assert phrase in result.output
-    assert len([ln for ln in result.output.strip().splitlines() if ln.strip()]) == 1
-    assert list(out.iterdir()) == []
+    failed_cleanly(result, out, phrase)
 
 
 # --------------------------------------------------------------------------- several climate paths
@@ -157,9 +162,7 @@ def test_bad_scenario_table(inputs, tmp_path, case, phrase):
         table = _paths_table(tmp_path, inputs)
         extra = ["--future", str(inputs["fut"]), "--years", "2100"]
     result = CliRunner().invoke(cli, table_args(inputs, out, table, *extra))
-    assert result.exit_code == 2, result.output
-    assert phrase in result.output
-    assert list(out.iterdir()) == []
+    failed_cleanly(result, out, phrase)
 
 
 def test_bad_objective_is_a_usage_error(inputs, tmp_path):
@@ -208,10 +211,7 @@ def test_bad_quality_exit_2(inputs, tmp_path, case, phrase):
     elif case == "raster_grid":
         value = str(_other_grid(tmp_path))
     result = CliRunner().invoke(cli, args(inputs, out, "--quality", value))
-    assert result.exit_code == 2, result.output
-    assert phrase in result.output
-    assert len([ln for ln in result.output.strip().splitlines() if ln.strip()]) == 1
-    assert list(out.iterdir()) == []
+    failed_cleanly(result, out, phrase)
 
 
 # --------------------------------------------------------------------------- --study / --run-dir
@@ -235,6 +235,4 @@ def test_study_option_errors(inputs, tmp_path, extra, phrase):
     argv = ["target", *(subs.get(a, a) for a in extra), "--candidates", str(inputs["cand"]), "--budget-km2", "10",
             "--out", str(out / "p.tif"), "--table", str(out / "p.csv"), "--summary", str(out / "t.json")]
     result = CliRunner().invoke(cli, argv)
-    assert result.exit_code == 2, result.output
-    assert phrase in result.output
-    assert list(out.iterdir()) == []
+    failed_cleanly(result, out, phrase)
