@@ -216,18 +216,26 @@ def project_mess(stack: xr.DataArray, variables, reference) -> xr.DataArray:
                                                 "variables": list(variables)})
 
 
-def novel_share(mess_values: xr.DataArray, cell_area: xr.DataArray) -> float:
-    """Share of the valid area in novel climate: sum of true cell areas where MESS < 0
-    over the sum where MESS is defined (area weighting, not cell counting)."""
+def novel_area_sums(mess_values: xr.DataArray, cell_area: xr.DataArray) -> tuple:
+    """Lazy (valid area, novel area): sums of true cell areas where MESS is defined and
+    where MESS < 0 (area weighting, not cell counting)."""
     valid = mess_values.notnull()
     novel = (mess_values < 0) & valid
     area = cell_area.astype(np.float64)
-    total, novel_area = xr.dot(area, valid.astype(np.float64)), xr.dot(area, novel.astype(np.float64))
+    return xr.dot(area, valid.astype(np.float64)).data, xr.dot(area, novel.astype(np.float64)).data
+
+
+def share_of(total, part) -> float:
+    """``part / total`` as a float, NaN when ``total`` is 0."""
+    total = float(total)
+    return float(part) / total if total > 0 else float("nan")
+
+
+def novel_share(mess_values: xr.DataArray, cell_area: xr.DataArray) -> float:
+    """Share of the valid area in novel climate (MESS < 0), weighted by true cell areas."""
     import dask
 
-    total, novel_area = dask.compute(total, novel_area)
-    total = float(total)
-    return float(novel_area) / total if total > 0 else float("nan")
+    return share_of(*dask.compute(*novel_area_sums(mess_values, cell_area)))
 
 
 def binary_map(suitability: xr.DataArray, threshold: float, *, nodata: int = 255) -> xr.DataArray:
@@ -295,13 +303,14 @@ def projection_tags(model_file, method, sha256, metadata, climate, clamp) -> dic
 
 
 def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, clamp=True,
-                 overwrite=False, scheduler=None, chunks=None) -> dict:
+                 overwrite=False, scheduler=None, chunks=None, progress=None) -> dict:
     """Project a model file onto climate grid file(s) and write suitability (and MESS, binary).
 
-    Everything is streamed chunk by chunk; the outputs appear together at the end or
-    not at all (nothing half-written). The MESS raster is written first, so the share of
-    the area in novel climate (MESS < 0, weighted by true cell areas) can go into the
-    suitability raster's tags; the binary map is read back from the written suitability.
+    Everything is streamed chunk by chunk in one pass: each window of the model's
+    variables is read once and feeds the suitability, the MESS and the binary map, and
+    the share of the area in novel climate (MESS < 0, weighted by true cell areas) is
+    summed on the way and stored in the suitability raster's tags. The outputs appear
+    together at the end or not at all (nothing half-written).
 
     Parameters
     ----------
@@ -319,6 +328,8 @@ def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, cl
         dask.distributed scheduler address.
     chunks : dict, optional
         Spatial chunks of the streamed stack (default :data:`PROJECT_CHUNKS`).
+    progress : callable(done, total), optional
+        Called as blocks finish (local threads only).
 
     Returns
     -------
@@ -326,7 +337,6 @@ def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, cl
     ``threshold``, ``method``, ``n_cells``.
     """
     from envelope.io.atomic import atomic_outputs, check_writable
-    from envelope.io.rasters import open_climate
 
     climate = [climate] if isinstance(climate, (str, os.PathLike)) else list(climate)
     targets = [p for p in (out, mess_out, binary_out) if p is not None]
@@ -338,70 +348,65 @@ def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, cl
     if mess_out is not None and not metadata.get("mess_reference"):
         raise InputError(f"{model_file}: model metadata has no mess_reference; cannot write MESS")
     bounds = training_range(metadata) if clamp else None
-    stack = open_climate(climate, chunks=_chunk_spec(chunks))
-    stack = match_variables(stack, variables, source=", ".join(map(str, climate)))
+    stack = open_model_climate(climate, variables, chunks=chunks)
     tags = projection_tags(model_file, method, sha, metadata, climate, clamp)
     with scheduler_context(scheduler), atomic_outputs(targets, overwrite=overwrite) as tmps:
-        summary = _write_projection(estimator, stack, variables, bounds, metadata, tags,
-                                    dict(zip(["out"] + (["mess"] if mess_out else []) + (["binary"] if binary_out else []), tmps)))
+        names = ["out"] + (["mess"] if mess_out else []) + (["binary"] if binary_out else [])
+        summary = _write_projection(estimator, stack, variables, bounds, metadata, tags, dict(zip(names, tmps)),
+                                    progress=progress)
     summary.update(out=str(out), mess=None if mess_out is None else str(mess_out),
                    binary=None if binary_out is None else str(binary_out))
     return summary
 
 
-def _chunk_spec(chunks):
-    spec = dict(PROJECT_CHUNKS if chunks is None else chunks)
-    # rioxarray chunks a GeoTIFF by (band, y, x): one band per chunk, merged per cell later
-    return {"band": 1, **spec}
+def open_model_climate(climate, variables, *, chunks=None, source=None) -> xr.DataArray:
+    """The model's variables from climate grid file(s), in the model's order, lazily.
 
-
-def _on_cluster() -> bool:
-    try:
-        from distributed import default_client
-        default_client()
-        return True
-    except (ImportError, ValueError):
-        return False
-
-
-def _for_writing(layer: xr.DataArray) -> xr.DataArray:
-    """The layer as handed to ``write_raster``.
-
-    ``write_raster`` stores dask chunks under a ``threading.Lock``, which cannot be sent to
-    dask.distributed workers; on a cluster the layer is therefore computed there and only
-    the finished output layer (4 bytes a cell, never the climate stack) is gathered here
-    and written. Locally the layer stays lazy and is streamed chunk by chunk.
+    Only those variables are ever read (the other bands of a multi-band GeoTIFF are
+    skipped), every variable of a window in one read. A missing variable is an error that
+    names it (:func:`match_variables`).
     """
-    return layer.compute() if _on_cluster() else layer
+    from envelope.io.rasters import open_climate
+
+    climate = [climate] if isinstance(climate, (str, os.PathLike)) else list(climate)
+    source = source or ", ".join(map(str, climate))
+    spec = {"band": -1, **(PROJECT_CHUNKS if chunks is None else chunks)}
+    match_variables(open_climate(climate, chunks=spec), variables, source=source)  # names only, no reading
+    return open_climate(climate, variables=list(variables), chunks=spec)
 
 
-def _write_projection(estimator, stack, variables, bounds, metadata, tags, paths) -> dict:
-    """Write suitability (+ MESS, binary) of ``stack`` to the (temporary) ``paths``."""
+def _write_projection(estimator, stack, variables, bounds, metadata, tags, paths, progress=None) -> dict:
+    """Write suitability (+ MESS, binary) of ``stack`` to the (temporary) ``paths`` in one pass.
+
+    All outputs come from one dask graph, so each climate block is read once; the share
+    of the area in novel climate is summed in the same pass and lands in the suitability
+    raster's tags.
+    """
     from envelope.grids import cell_area_km2
-    from envelope.io.rasters import open_layer, write_raster
+    from envelope.io.writing import RasterOutput, write_rasters
 
     tags = dict(tags)
-    share = None
+    threshold = float(tags["threshold"])
+    suitability = project_suitability(estimator, stack, variables, bounds, clamp=bounds is not None)
+    outputs, also = [], ()
     if "mess" in paths:
         mess_da = project_mess(stack, variables, metadata["mess_reference"])
-        write_raster(_for_writing(mess_da), paths["mess"], overwrite=True,
-                     tags={**tags, "most_dissimilar_variables": list(variables)},
-                     categories=dict(enumerate(variables)))
-        written = open_layer(paths["mess"], band="mess")
-        share = novel_share(written, cell_area_km2(written))
-        tags["novel_share"] = share
-    suitability = project_suitability(estimator, stack, variables, bounds, clamp=bounds is not None)
-    write_raster(_for_writing(suitability), paths["out"], overwrite=True, tags=tags)
-    threshold = float(tags["threshold"])
+        outputs.append(RasterOutput(mess_da, paths["mess"], tags={**tags, "most_dissimilar_variables": list(variables)},
+                                    categories=dict(enumerate(variables))))
+        mess_values = mess_da.sel(variable="mess")
+        also = novel_area_sums(mess_values, cell_area_km2(mess_values))
+    outputs.insert(0, RasterOutput(suitability, paths["out"],
+                                   tags=(lambda sums: {**tags, "novel_share": share_of(*sums)}) if also else tags))
     if "binary" in paths:
-        written = open_layer(paths["out"])
-        write_raster(_for_writing(binary_map(written, threshold, nodata=BINARY_NODATA)), paths["binary"], overwrite=True,
-                     tags={**tags, "nodata": BINARY_NODATA}, categories=BINARY_CATEGORIES,
-                     nodata=BINARY_NODATA)
-    return {"novel_share": share, "threshold": threshold, "method": tags["method"],
+        outputs.append(RasterOutput(binary_map(suitability, threshold, nodata=BINARY_NODATA), paths["binary"],
+                                    tags={**tags, "nodata": BINARY_NODATA}, categories=BINARY_CATEGORIES,
+                                    nodata=BINARY_NODATA))
+    sums = write_rasters(outputs, overwrite=True, also=also, progress=progress)
+    return {"novel_share": share_of(*sums) if sums else None, "threshold": threshold, "method": tags["method"],
             "n_cells": int(stack.sizes["y"] * stack.sizes["x"])}
 
 
-__all__ = ["BINARY_CATEGORIES", "CELL_BATCH", "MESS_BANDS", "binary_map", "match_variables", "novel_share", "pointprocess_table",
+__all__ = ["BINARY_CATEGORIES", "CELL_BATCH", "MESS_BANDS", "binary_map", "match_variables", "novel_area_sums",
+           "novel_share", "pointprocess_table", "share_of",
            "load_projection_model", "project_file", "project_mess", "project_suitability", "projection_tags",
            "scheduler_context", "training_range"]

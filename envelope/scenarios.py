@@ -280,9 +280,10 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
     """
     from envelope.grids import check_same_grid
     from envelope.io.atomic import atomic_outputs, check_writable
-    from envelope.io.rasters import open_climate, open_layer, write_raster
-    from envelope.projection import (_chunk_spec, _for_writing, _write_projection, load_projection_model, match_variables,
-                                     projection_tags, scheduler_context, training_range)
+    from envelope.io.rasters import open_layer
+    from envelope.io.writing import RasterOutput, write_rasters
+    from envelope.projection import (_write_projection, load_projection_model, open_model_climate, projection_tags,
+                                     scheduler_context, training_range)
 
     scenarios = read_scenarios(table)
     groups = group_scenarios(scenarios)
@@ -297,8 +298,7 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
     bounds = training_range(metadata) if clamp else None
     stacks, first = {}, None
     for sc in scenarios:
-        stack = match_variables(open_climate(sc.path, chunks=_chunk_spec(chunks)), variables,
-                                source=f"scenario {sc.name} ({sc.path})")
+        stack = open_model_climate(sc.path, variables, chunks=chunks, source=f"scenario {sc.name} ({sc.path})")
         if first is None:
             first = sc
         else:
@@ -335,15 +335,17 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
                     "threshold": threshold, "threshold_rule": metadata["threshold"].get("rule", ""),
                     "agreement": float(agreement), "consensus_min_models": ds.attrs["consensus_min_models"],
                     "sd_ddof": ds.attrs["sd_ddof"], "model_file": str(model_file), "model_sha256": sha}
+            outputs = []
             for stat in ENSEMBLE_STATISTICS:
-                layer = ds[stat].rio.write_crs(stack.rio.crs)
                 kw = {}
                 if stat in ("count", "consensus"):
                     kw = {"nodata": COUNT_NODATA}
                 if stat == "consensus":
                     kw["categories"] = CONSENSUS_CATEGORIES
-                write_raster(_for_writing(layer), tmp[files["ensemble"][(pathway, horizon, stat)]], overwrite=True,
-                             tags={**base, "statistic": stat}, **kw)
+                outputs.append(RasterOutput(ds[stat].rio.write_crs(stack.rio.crs),
+                                            tmp[files["ensemble"][(pathway, horizon, stat)]],
+                                            tags={**base, "statistic": stat}, **kw))
+            write_rasters(outputs, overwrite=True)  # one pass over the members for all statistics
             ensembles.append({**base, "files": {stat: str(files["ensemble"][(pathway, horizon, stat)])
                                                 for stat in ENSEMBLE_STATISTICS}})
         write_suitability_table(rows, tmp[files["table"]], overwrite=True)

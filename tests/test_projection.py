@@ -262,3 +262,38 @@ def test_ensemble_uses_member_tables():
     grid = _grid(np.random.default_rng(6).normal(0, 1, (2, 5, 6)), names=["t", "p"])
     got = project_suitability(ens, grid, ["t", "p"], None, clamp=False).values
     np.testing.assert_allclose(got.ravel(), ens.predict_proba(grid.values.reshape(2, -1).T)[:, 1], atol=1e-6)
+
+
+def test_one_pass_reads_each_window_once(files, monkeypatch):
+    # Common practice, no source: suitability, MESS, binary map and novel share share one read
+    from envelope.io import blocks
+
+    tmp, *_ = files
+    seen = []
+    original = blocks.WindowReader.__getitem__
+
+    def logged(self, key):
+        seen.append(tuple((k.start, k.stop) for k in key[1:]))
+        return original(self, key)
+
+    monkeypatch.setattr(blocks.WindowReader, "__getitem__", logged)
+    project_file(tmp / "m.envm", tmp / "clim.tif", tmp / "s.tif", mess_out=tmp / "m.tif", binary_out=tmp / "b.tif",
+                 chunks={"y": 8, "x": 16})
+    assert len(seen) == 3 * 2 and len(set(seen)) == len(seen)  # 20 x 24 grid in 8 x 16 windows
+
+
+def test_novel_share_tag_equals_area_sum_of_written_mess(files):
+    # Analytic: the definition (area where MESS < 0 over area where MESS is defined), summed here
+    # from the written file; cell areas from envelope.grids.cell_area_km2, itself checked against
+    # pyproj.Geod in tests/kernels/test_areas.py
+    from envelope.grids import cell_area_km2
+
+    tmp, *_ = files
+    res = project_file(tmp / "m.envm", tmp / "clim.tif", tmp / "s.tif", mess_out=tmp / "m.tif")
+    values = open_layer(tmp / "m.tif", band="mess")
+    area = cell_area_km2(values).values
+    m = values.values
+    expected = area[np.isfinite(m) & (m < 0)].sum() / area[np.isfinite(m)].sum()
+    assert 0 < expected < 1
+    assert read_tags(tmp / "s.tif")["novel_share"] == pytest.approx(expected, rel=1e-12)
+    assert res["novel_share"] == pytest.approx(expected, rel=1e-12)

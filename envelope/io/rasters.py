@@ -1,12 +1,10 @@
-"""Raster I/O: read GeoTIFF / CF-NetCDF into climate stacks and layers, write COG or CF-NetCDF atomically."""
+"""Raster reading: GeoTIFF / CF-NetCDF into climate stacks and layers (writing is in envelope.io.writing)."""
 
 from __future__ import annotations
 
-import contextlib
 import json
 import logging
 import os
-import threading
 from pathlib import Path
 
 import numpy as np
@@ -14,7 +12,6 @@ import xarray as xr
 import rioxarray  # noqa: F401  (registers .rio)
 
 from envelope.errors import InputError
-from envelope.io.atomic import atomic_output, check_writable
 
 log = logging.getLogger(__name__)
 
@@ -99,8 +96,13 @@ def _open_rasterio_dataset(path: Path):
         raise InputError(f"{path}: not a readable raster ({_EXPECTED})") from None
 
 
-def _read_gdal(path: Path, *, chunks, categorical: bool, name_from_stem: bool) -> xr.DataArray:
-    """A GDAL raster as (variable, y, x): float32 NaN nodata, or native dtype if categorical."""
+def _read_gdal(path: Path, *, chunks, categorical: bool, name_from_stem: bool, bands=None) -> xr.DataArray:
+    """A GDAL raster as (variable, y, x): float32 NaN nodata, or native dtype if categorical.
+
+    ``bands`` (0-based indexes) keeps only those bands; only they are ever read.
+    """
+    from envelope.io.blocks import WindowReader, window_array
+
     with _open_rasterio_dataset(path) as src:
         if src.crs is None:
             raise InputError(f"{path}: no CRS (expected a georeferenced grid with a CRS)")
@@ -114,15 +116,9 @@ def _read_gdal(path: Path, *, chunks, categorical: bool, name_from_stem: bool) -
         nodata = src.nodata
         crs = src.crs
         scales, offsets = src.scales, src.offsets
-        if chunks in (True, "auto"):
-            # rioxarray's own "auto" passes dimension-order tuples (deprecated in xarray);
-            # the same tile-aware choice, given by dimension name
-            from dask.array.core import normalize_chunks
-
-            band_c, y_c, x_c = normalize_chunks((1, "auto", "auto"), shape=(count, src.height, src.width),
-                                                dtype=np.dtype(src.dtypes[0]),
-                                                previous_chunks=(1,) + tuple(src.block_shapes[0]))
-            chunks = {"band": band_c, "y": y_c, "x": x_c}
+        height, width, transform = src.height, src.width, src.transform
+        file_dtype = np.dtype(src.dtypes[0])
+        block_shape = tuple(src.block_shapes[0])
     if count == 1 and name_from_stem:
         names = [path.stem]
     else:
@@ -132,21 +128,46 @@ def _read_gdal(path: Path, *, chunks, categorical: bool, name_from_stem: bool) -
                         ", ".join(n for n, d in zip(names, descriptions) if not d))
     if len(set(names)) != len(names):
         raise InputError(f"{path}: band descriptions {names} repeat a name (expected one name per band)")
-    import rioxarray as rxr
-
-    packed = any(s != 1.0 for s in scales) or any(o != 0.0 for o in offsets)
-    da = rxr.open_rasterio(path, chunks=chunks, masked=not categorical, mask_and_scale=packed and not categorical,
-                           lock=False)
-    if not categorical:
-        da = da.astype(np.float32)
-    da = da.rename({"band": "variable"}).assign_coords(variable=names)
+    keep = list(range(count)) if bands is None else [int(b) for b in bands]
+    packed = not categorical and (any(s != 1.0 for s in scales) or any(o != 0.0 for o in offsets))
+    reader = WindowReader(path, [b + 1 for b in keep], shape=(height, width),
+                          dtype=file_dtype if categorical else np.float32,
+                          nodata=None if categorical else nodata,
+                          scales=[scales[b] for b in keep] if packed else None,
+                          offsets=[offsets[b] for b in keep] if packed else None, categorical=categorical)
+    data = window_array(reader, _window_chunks(chunks, reader, block_shape))
+    # pixel centres, as GDAL and rioxarray compute them from the geotransform
+    x = transform * (np.arange(width) + 0.5, np.full(width, 0.5))
+    y = transform * (np.full(height, 0.5), np.arange(height) + 0.5)
+    da = xr.DataArray(data, dims=("variable", "y", "x"),
+                      coords={"variable": [names[b] for b in keep], "y": np.asarray(y[1], dtype=np.float64),
+                              "x": np.asarray(x[0], dtype=np.float64)})
     out = _normalised(da, crs, path)
-    out = out.assign_coords(units=("variable", units))
+    out = out.assign_coords(units=("variable", [units[b] for b in keep]))
     out.attrs = {k: v for k, v in tags.items()}
-    out.attrs["band_tags"] = json.dumps(band_tags)
+    out.attrs["band_tags"] = json.dumps([band_tags[b] for b in keep])
     if categorical and nodata is not None:
         out = out.rio.write_nodata(nodata)
     return out
+
+
+def _window_chunks(chunks, reader, block_shape) -> tuple:
+    """(band, y, x) chunks for a window reader from ``"auto"``, a dict by dim name or a tuple.
+
+    ``"auto"`` reads every band of a window together, in windows of whole file blocks
+    sized by dask's ``array.chunk-size``.
+    """
+    from dask.array.core import normalize_chunks
+
+    shape = reader.shape
+    if chunks in (True, "auto", None):
+        return normalize_chunks((-1, "auto", "auto"), shape=shape, dtype=reader.dtype,
+                                previous_chunks=(shape[0],) + tuple(block_shape))
+    if isinstance(chunks, dict):
+        spec = (chunks.get("band", chunks.get("variable", -1)), chunks.get("y", "auto"), chunks.get("x", "auto"))
+        return normalize_chunks(spec, shape=shape, dtype=reader.dtype,
+                                previous_chunks=(shape[0],) + tuple(block_shape))
+    return normalize_chunks(chunks, shape=shape, dtype=reader.dtype)
 
 
 def _normalised(da: xr.DataArray, crs, path) -> xr.DataArray:
@@ -296,13 +317,13 @@ def _read_netcdf(path: Path, *, time, chunks, categorical: bool) -> xr.DataArray
     return out
 
 
-def _read(path, *, time=None, chunks="auto", categorical=False, name_from_stem=True) -> xr.DataArray:
+def _read(path, *, time=None, chunks="auto", categorical=False, name_from_stem=True, bands=None) -> xr.DataArray:
     path = _check_file(path)
     if raster_format(path) == "NetCDF":
         return _read_netcdf(path, time=time, chunks=chunks, categorical=categorical)
     if time is not None:
         raise InputError(f"{path}: time= applies to NetCDF files only (a GeoTIFF has no time axis)")
-    return _read_gdal(path, chunks=chunks, categorical=categorical, name_from_stem=name_from_stem)
+    return _read_gdal(path, chunks=chunks, categorical=categorical, name_from_stem=name_from_stem, bands=bands)
 
 
 # --------------------------------------------------------------------------- public readers
@@ -354,29 +375,51 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
         part = _read(path, time=time, chunks=chunks)
         if parts:
             check_same_grid(parts[0], part, ref_name=str(items[0]), other_name=str(path))
-            part = part.assign_coords(x=parts[0]["x"].values, y=parts[0]["y"].values)
         parts.append(part)
-    stack = parts[0] if len(parts) == 1 else xr.concat(parts, dim="variable", join="override",
-                                                       combine_attrs="drop_conflicts")
-    names = [str(v) for v in stack["variable"].values]
+    per_file = [[str(v) for v in part["variable"].values] for part in parts]
+    names = [n for file_names in per_file for n in file_names]
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
         raise InputError(f"{', '.join(map(str, items))}: variable names repeat: {', '.join(dup)} "
                          f"(expected one file or band per variable)")
-    if rename:
-        missing = [k for k in rename if k not in names]
-        if missing:
-            raise InputError(f"rename: no variable {', '.join(missing)} (the grids hold {', '.join(names)})")
-        names = [rename.get(n, n) for n in names]
-        stack = stack.assign_coords(variable=names)
+    rename = dict(rename or {})
+    missing = [k for k in rename if k not in names]
+    if missing:
+        raise InputError(f"rename: no variable {', '.join(missing)} (the grids hold {', '.join(names)})")
     if variables is not None:
-        missing = [v for v in variables if v not in names]
+        renamed = [rename.get(n, n) for n in names]
+        missing = [v for v in variables if v not in renamed]
         if missing:
-            raise InputError(f"variables: {', '.join(missing)} not found (the grids hold {', '.join(names)})")
+            raise InputError(f"variables: {', '.join(missing)} not found (the grids hold {', '.join(renamed)})")
+        parts = _keep_variables(items, parts, per_file, {k for k, v in zip(names, renamed) if v in variables},
+                                time=time, chunks=chunks)
+    for i in range(1, len(parts)):
+        parts[i] = parts[i].assign_coords(x=parts[0]["x"].values, y=parts[0]["y"].values)
+    stack = parts[0] if len(parts) == 1 else xr.concat(parts, dim="variable", join="override",
+                                                       combine_attrs="drop_conflicts")
+    if rename:
+        stack = stack.assign_coords(variable=[rename.get(str(n), str(n)) for n in stack["variable"].values])
+    if variables is not None:
         stack = stack.sel(variable=list(variables))
     stack.name = "climate"
     stack.attrs.pop("band_tags", None)
     return stack.rio.write_crs(parts[0].rio.crs)
+
+
+def _keep_variables(items, parts, per_file, wanted: set, *, time, chunks) -> list:
+    """Drop the parts (files) and bands not in ``wanted``; a multi-band GeoTIFF is reopened
+    with only the wanted bands, so the others are never read."""
+    kept = []
+    for path, part, file_names in zip(items, parts, per_file):
+        index = [i for i, n in enumerate(file_names) if n in wanted]
+        if not index:
+            continue
+        if len(index) < len(file_names) and raster_format(path) != "NetCDF":
+            part = _read(path, time=time, chunks=chunks, bands=index)
+        elif len(index) < len(file_names):
+            part = part.isel(variable=index)
+        kept.append(part)
+    return kept
 
 
 def open_layer(path, *, band=None, chunks="auto", categorical=False) -> xr.DataArray:
@@ -448,204 +491,5 @@ def read_tags(path) -> dict:
     return _decode_tags(tags)
 
 
-# --------------------------------------------------------------------------- writing
-
-
-def _as_stack(da: xr.DataArray, path) -> xr.DataArray:
-    if not isinstance(da, xr.DataArray):
-        raise InputError(f"{path}: can only write an xarray.DataArray, got {type(da).__name__}")
-    if da.rio.crs is None:
-        raise InputError(f"{path}: the grid has no CRS (expected a CRS attached with rio.write_crs)")
-    if da.ndim == 2:
-        name = str(da.name) if da.name is not None else Path(path).stem
-        units = str(da.attrs.get("units", ""))
-        da = da.expand_dims(variable=[name]).assign_coords(units=("variable", [units]))
-    if da.ndim != 3 or set(da.dims) != {"variable", "y", "x"}:
-        raise InputError(f"{path}: cannot write dims {da.dims} (expected (y, x) or (variable, y, x))")
-    return da.transpose("variable", "y", "x")
-
-
-def _block_size(width: int, height: int) -> int:
-    """Tile edge: 512, or 256 / 128 for small grids (GDAL's COG driver needs >= 128)."""
-    largest = max(width, height)
-    return 512 if largest > 512 else 256 if largest > 256 else 128
-
-
-def write_raster(da, path, *, overwrite=False, tags=None, categories=None, nodata=None, dtype=None) -> Path:
-    """Write a layer or stack to a cloud-optimised GeoTIFF or a CF-NetCDF file, atomically.
-
-    Parameters
-    ----------
-    da : DataArray (y, x) or (variable, y, x)
-        With CRS attached; dask-backed arrays are written block by block (never loaded whole).
-    path : path
-        ``.tif``/``.tiff`` -> GeoTIFF (COG layout: 512-pixel tiles or smaller, DEFLATE with
-        predictor, internal overviews); ``.nc`` -> CF-1.8 NetCDF (zlib compression).
-    overwrite : bool, default=False
-        Replace an existing file; otherwise :class:`OutputExistsError`.
-    tags : dict, optional
-        Dataset tags (GeoTIFF) / global attributes (NetCDF); non-string values JSON-encoded.
-    categories : dict, optional
-        ``{code: meaning}`` for categorical rasters, stored as JSON tag ``categories``
-        (and CF ``flag_values``/``flag_meanings`` in NetCDF).
-    nodata : number, optional
-        Nodata value for integer outputs (NaN is used for floating-point outputs).
-    dtype : str or numpy dtype, optional
-        Output data type (default: the array's).
-
-    Returns
-    -------
-    Path
-        The written file. Nothing is left behind if writing fails.
-    """
-    path = Path(path)
-    suffix = path.suffix.lower()
-    if suffix not in GEOTIFF_SUFFIXES and suffix != ".nc":
-        raise InputError(f"{path}: unknown output format {suffix or '(no suffix)'!r} (expected .tif, .tiff or .nc)")
-    check_writable(path, overwrite)
-    stack = _as_stack(da, path)
-    dtype = np.dtype(dtype or stack.dtype)
-    if dtype == np.float64 and stack.dtype != np.float64:
-        dtype = np.dtype(np.float64)
-    integer = np.issubdtype(dtype, np.integer) or dtype == np.bool_
-    if dtype == np.bool_:
-        dtype = np.dtype(np.uint8)
-    if integer:
-        if nodata is None:
-            nodata = stack.rio.nodata if stack.rio.nodata is not None and np.isfinite(stack.rio.nodata) else None
-        values = stack.fillna(nodata if nodata is not None else 0) if np.issubdtype(stack.dtype, np.floating) else stack
-        values = values.astype(dtype)
-    else:
-        nodata = np.nan
-        values = stack.astype(dtype)
-    all_tags = {k: _encode(v) for k, v in (tags or {}).items()}
-    if categories is not None:
-        all_tags["categories"] = json.dumps({str(k): v for k, v in dict(categories).items()})
-    names = [str(v) for v in stack["variable"].values]
-    units = ([str(u) for u in np.atleast_1d(stack["units"].values)] if "units" in stack.coords
-             else [""] * len(names))
-    with atomic_output(path, overwrite) as tmp:
-        if suffix == ".nc":
-            _write_netcdf(values, tmp, names, units, all_tags, categories, nodata)
-        else:
-            _write_geotiff(values, tmp, names, units, all_tags, nodata)
-    return path
-
-
-def _write_geotiff(values: xr.DataArray, tmp: Path, names, units, tags: dict, nodata) -> None:
-    import rasterio
-    import rasterio.shutil
-
-    height, width = values.sizes["y"], values.sizes["x"]
-    block = _block_size(width, height)
-    floating = np.issubdtype(values.dtype, np.floating)
-    predictor = 3 if floating else 2
-    stage = tmp.with_name(tmp.name + ".stage.tif")
-    clean = xr.DataArray(values.data, dims=("band", "y", "x"),
-                         coords={"band": np.arange(1, len(names) + 1), "y": values["y"].values,
-                                 "x": values["x"].values})
-    clean = clean.rio.write_crs(values.rio.crs)
-    if nodata is not None:
-        clean = clean.rio.write_nodata(nodata, encoded=False)
-    try:
-        # stage 1: a tiled GTiff streamed from dask (one block at a time, under a lock)
-        clean.rio.to_raster(stage, driver="GTiff", tiled=True, blockxsize=block, blockysize=block,
-                            compress="DEFLATE", predictor=predictor, BIGTIFF="IF_SAFER",
-                            lock=threading.Lock() if clean.chunks is not None else None)
-        with rasterio.open(stage, "r+") as dst:
-            for i, (name, unit) in enumerate(zip(names, units), start=1):
-                dst.set_band_description(i, name)
-                dst.update_tags(i, units=unit)
-            dst.update_tags(**tags)
-        # stage 2: cloud-optimised layout (tiles, overviews ahead of data) by GDAL's copy
-        tmp.unlink(missing_ok=True)
-        if _driver_available("COG"):
-            rasterio.shutil.copy(stage, tmp, driver="COG", COMPRESS="DEFLATE", PREDICTOR=str(predictor),
-                                 BLOCKSIZE=str(block), OVERVIEWS="AUTO", RESAMPLING="NEAREST" if not floating
-                                 else "AVERAGE", BIGTIFF="IF_SAFER")
-        else:  # pragma: no cover - old GDAL
-            _overviews_and_copy(stage, tmp, block, predictor, floating)
-    finally:
-        stage.unlink(missing_ok=True)
-        with contextlib.suppress(FileNotFoundError):
-            Path(str(stage) + ".aux.xml").unlink()
-
-
-def _driver_available(name: str) -> bool:
-    import rasterio
-
-    with rasterio.Env() as env:
-        return name in env.drivers()
-
-
-def _overviews_and_copy(stage: Path, tmp: Path, block: int, predictor: int, floating: bool) -> None:
-    import rasterio
-    import rasterio.shutil
-    from rasterio.enums import Resampling
-
-    with rasterio.open(stage, "r+") as dst:
-        factors, size = [], max(dst.width, dst.height)
-        while size / (2 ** (len(factors) + 1)) >= block / 2 and len(factors) < 8:
-            factors.append(2 ** (len(factors) + 1))
-        if factors:
-            dst.build_overviews(factors, Resampling.average if floating else Resampling.nearest)
-    rasterio.shutil.copy(stage, tmp, driver="GTiff", tiled=True, blockxsize=block, blockysize=block,
-                         compress="DEFLATE", predictor=predictor, copy_src_overviews=True)
-
-
-_KNOWN_CF = {
-    # name -> (standard_name, long_name); only names whose meaning is unambiguous
-    "suitability": (None, "habitat suitability (0-1)"),
-    "mess": (None, "multivariate environmental similarity surface"),
-    "tas": ("air_temperature", "near-surface air temperature"),
-    "pr": ("precipitation_flux", "precipitation"),
-}
-
-
-def _write_netcdf(values: xr.DataArray, tmp: Path, names, units, tags: dict, categories, nodata) -> None:
-    from pyproj import CRS
-
-    pcrs = CRS.from_user_input(values.rio.crs.to_wkt())
-    geographic = pcrs.is_geographic
-    xname, yname = ("lon", "lat") if geographic else ("x", "y")
-    coords = {
-        yname: (yname, values["y"].values.astype(np.float64)),
-        xname: (xname, values["x"].values.astype(np.float64)),
-    }
-    ds = xr.Dataset(coords=coords)
-    if geographic:
-        ds[xname].attrs = {"standard_name": "longitude", "long_name": "longitude", "units": "degrees_east", "axis": "X"}
-        ds[yname].attrs = {"standard_name": "latitude", "long_name": "latitude", "units": "degrees_north", "axis": "Y"}
-    else:
-        unit = pcrs.axis_info[0].unit_name if pcrs.axis_info else "m"
-        unit = "m" if unit in ("metre", "meter") else unit
-        ds[xname].attrs = {"standard_name": "projection_x_coordinate", "long_name": "x coordinate of projection",
-                           "units": unit, "axis": "X"}
-        ds[yname].attrs = {"standard_name": "projection_y_coordinate", "long_name": "y coordinate of projection",
-                           "units": unit, "axis": "Y"}
-    mapping = pcrs.to_cf()
-    mapping["crs_wkt"] = pcrs.to_wkt()
-    mapping["spatial_ref"] = mapping["crs_wkt"]
-    ds["crs"] = xr.DataArray(np.int32(0), attrs=mapping)
-    encoding = {}
-    for i, (name, unit) in enumerate(zip(names, units)):
-        var = xr.DataArray(values.data[i], dims=(yname, xname))
-        standard, long_name = _KNOWN_CF.get(name, (None, name))
-        attrs = {"long_name": long_name, "units": unit, "grid_mapping": "crs"}
-        if standard:
-            attrs["standard_name"] = standard
-        if categories:
-            codes = sorted(int(k) for k in categories)
-            attrs["flag_values"] = np.array(codes, dtype=values.dtype)
-            attrs["flag_meanings"] = " ".join(str(categories[k]).replace(" ", "_") for k in codes)
-        var.attrs = attrs
-        ds[name] = var
-        enc = {"zlib": True, "complevel": 4, "dtype": values.dtype}
-        if nodata is not None:
-            enc["_FillValue"] = nodata
-        if values.chunks is not None:
-            enc["chunksizes"] = (min(512, values.sizes["y"]), min(512, values.sizes["x"]))
-        encoding[name] = enc
-    ds.attrs = {"Conventions": "CF-1.8", **tags}
-    tmp.unlink(missing_ok=True)
-    ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding)
+# writing lives in envelope.io.writing; re-exported here for callers that read and write
+from envelope.io.writing import write_raster, write_rasters  # noqa: E402,F401

@@ -6,9 +6,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-# Cells evaluated together: with the variable axis outermost, a (n_vars, BLOCK_CELLS)
-# float64 block of 19 variables is ~1.2 MB and its temporaries stay in the CPU cache.
-BLOCK_CELLS = 8192
+# Cells evaluated together: with the variable axis outermost, one (BLOCK_CELLS,) float64
+# row is 128 KiB, so the rows in use at once stay in the CPU cache.
+BLOCK_CELLS = 16384
 
 # eta is capped before exp so 1 - exp(-exp(eta)) never overflows (same cap as the model)
 ETA_CAP = 700.0
@@ -139,52 +139,159 @@ def compile_pointprocess(mean, scale, knots, classes, coef, constant) -> Additiv
                          quadratic=quadratic, product=product, constant=float(constant))
 
 
+@dataclass(frozen=True)
+class _VariableTerms:
+    """Terms of one variable in centred raw units ``u = x - mean`` (no division per cell).
+
+    ``g(u) = linear * u + quadratic * u**2 + sum_k bends[k] * max(u, knots[k])`` plus a
+    constant folded into :attr:`_Plan.constant`: a hinge ``max(0, u - k)`` is
+    ``max(u, k) - k``, and on the segments between knots the sum of hinges reproduces
+    :class:`AdditiveTable`'s per-segment slopes (each knot bends the slope by
+    ``slopes[s + 1] - slopes[s]``).
+    """
+
+    index: int
+    centre: float
+    linear: float
+    quadratic: float
+    knots: np.ndarray
+    bends: np.ndarray
+
+
+@dataclass(frozen=True)
+class _Plan:
+    """What :func:`linear_predictor_table` evaluates: only variables with a nonzero term."""
+
+    terms: tuple
+    pairs: tuple           # ((slot_a, slot_b, coefficient), ...) product terms in u units
+    product: np.ndarray | None  # (n_active, n_active) upper-triangular, when pairs are many
+    constant: float
+
+
+# Above this many knots on one variable, np.interp (one binary search per cell) beats
+# summing hinges (3 array passes per knot); measured on 32 768-cell blocks (bench/README.md).
+HINGE_SUM_MAX_KNOTS = 12
+
+
+def _plan(table: AdditiveTable) -> _Plan:
+    scale = 1.0 / table.inv_scale
+    active = []
+    constant = table.constant
+    for j in range(table.n_vars):
+        inv = table.inv_scale[j]
+        slopes, intercepts, knots_z = table.slopes[j], table.intercepts[j], table.knots[j]
+        bends_z = np.diff(slopes)
+        keep = bends_z != 0
+        knots_u = knots_z[keep] * scale[j]
+        bends_u = bends_z[keep] * inv
+        # segment 0 line (valid left of every knot) + hinges: constant = intercept_0 - sum(bend * knot)
+        constant += float(intercepts[0]) - float(np.sum(bends_u * knots_u))
+        has_product = table.product is not None and (np.any(table.product[j]) or np.any(table.product[:, j]))
+        term = _VariableTerms(j, float(table.mean[j]), float(slopes[0] * inv), float(table.quadratic[j] * inv * inv),
+                              knots_u, bends_u)
+        if term.linear or term.quadratic or knots_u.size or has_product:
+            active.append(term)
+    slot = {t.index: i for i, t in enumerate(active)}
+    pairs, product = [], None
+    if table.product is not None:
+        rows, cols = np.nonzero(table.product)
+        for a, b in zip(rows, cols):
+            pairs.append((slot[a], slot[b], float(table.product[a, b] * table.inv_scale[a] * table.inv_scale[b])))
+        if len(pairs) > 2 * len(active):
+            product = np.zeros((len(active), len(active)))
+            for a, b, c in pairs:
+                product[a, b] = c
+    return _Plan(tuple(active), tuple(pairs), product, float(constant))
+
+
 def linear_predictor_table(table: AdditiveTable, X, *, lower=None, upper=None,
                            block_cells: int = BLOCK_CELLS) -> np.ndarray:
     """eta for every cell of ``X`` (n_vars, n_cells), float64; NaN where any variable is NaN.
 
-    ``lower`` / ``upper`` (n_vars,) clamp each variable first when given. Cells are
-    processed ``block_cells`` at a time with the variable axis outermost, so the working
-    set is a few (n_vars, block_cells) arrays whatever the size of ``X``.
+    ``lower`` / ``upper`` (n_vars,) clamp each variable first when given. ``X`` may be
+    float32 (as read from a grid); every sum is in float64. Cells are processed
+    ``block_cells`` at a time with the variable axis outermost, so the working set is a
+    few (n_vars, block_cells) arrays whatever the size of ``X``.
+
+    Only variables with a nonzero coefficient are read. Each is centred (``u = x - mean``,
+    converted to float64 in the same pass) and its piecewise-quadratic term evaluated as a
+    quadratic plus a sum of ``bend * max(u, knot)`` hinges -- three array passes per knot,
+    no per-cell search -- or, beyond :data:`HINGE_SUM_MAX_KNOTS` knots, with
+    ``numpy.interp``. A cell missing a variable the model does not use still comes back
+    NaN, so the valid area does not depend on the model.
     """
     X = np.asarray(X)
     if X.ndim != 2 or X.shape[0] != table.n_vars:
         raise ValueError(f"X: got shape {X.shape}; expected ({table.n_vars}, n_cells)")
+    plan = _plan(table)
     n = X.shape[1]
     out = np.empty(n, dtype=np.float64)
-    lo = None if lower is None else np.asarray(lower, dtype=np.float64)[:, None]
-    hi = None if upper is None else np.asarray(upper, dtype=np.float64)[:, None]
-    mean = table.mean[:, None]
-    inv_scale = table.inv_scale[:, None]
-    quadratic = table.quadratic[:, None]
-    # all segment tables end to end: row j's segment s sits at offset[j] + s, so one
-    # gather per block serves every variable
-    offset = np.cumsum([0] + [k.size + 1 for k in table.knots[:-1]])[:, None]
-    slope_flat = np.concatenate(table.slopes)
-    intercept_flat = np.concatenate(table.intercepts)
-    with_knots = [j for j, k in enumerate(table.knots) if k.size]
+    bounds = []
+    for t in plan.terms:
+        lo = -np.inf if lower is None else float(lower[t.index]) - t.centre
+        hi = np.inf if upper is None else float(upper[t.index]) - t.centre
+        bounds.append((lo, hi, lower is not None or upper is not None))
+    unused = [j for j in range(table.n_vars) if j not in {t.index for t in plan.terms}]
+    width = min(block_cells, max(n, 1))
+    U = np.empty((max(len(plan.terms), 1), width))
+    work = np.empty(width)
     for start in range(0, n, block_cells):
         stop = min(start + block_cells, n)
-        Z = X[:, start:stop].astype(np.float64)   # a copy: clamping happens in place
-        if lo is not None or hi is not None:
-            np.clip(Z, lo, hi, out=Z)             # NaN stays NaN
-        Z -= mean
-        Z *= inv_scale
-        seg = np.broadcast_to(offset, Z.shape).copy()
-        for j in with_knots:
-            # NaN sorts last: the segment index stays valid and z keeps the NaN
-            seg[j] += np.searchsorted(table.knots[j], Z[j], side="left")
-        G = quadratic * Z
-        G += slope_flat[seg]
-        G *= Z
-        G += intercept_flat[seg]
-        eta = G.sum(axis=0)
-        eta += table.constant
-        if table.product is not None:
-            # sum_{j<l} P_jl z_j z_l as a column-wise quadratic form
-            eta += np.einsum("ic,ic->c", table.product @ Z, Z)
-        out[start:stop] = eta
+        m = stop - start
+        eta = out[start:stop]
+        eta.fill(plan.constant)
+        tmp = work[:m]
+        for slot, (term, (lo, hi, clamp)) in enumerate(zip(plan.terms, bounds)):
+            u = U[slot, :m]
+            np.subtract(X[term.index, start:stop], term.centre, out=u, dtype=np.float64)
+            if clamp:
+                np.clip(u, lo, hi, out=u)  # NaN stays NaN
+            if term.quadratic:
+                np.multiply(u, term.quadratic, out=tmp)
+                tmp += term.linear
+                tmp *= u
+                eta += tmp
+            elif term.linear:
+                np.multiply(u, term.linear, out=tmp)
+                eta += tmp
+            if term.knots.size > HINGE_SUM_MAX_KNOTS:
+                eta += _hinges_interp(u, term.knots, term.bends)
+            else:
+                for knot, bend in zip(term.knots, term.bends):
+                    np.maximum(u, knot, out=tmp)  # NaN propagates
+                    tmp *= bend
+                    eta += tmp
+        if plan.product is not None:
+            Um = U[:, :m]
+            eta += np.einsum("ic,ic->c", plan.product @ Um, Um)
+        else:
+            for a, b, coef in plan.pairs:
+                np.multiply(U[a, :m], coef, out=tmp)
+                tmp *= U[b, :m]
+                eta += tmp
+        if unused:
+            # keep NaN where a variable the model ignores is missing: their sum times 0 is
+            # NaN there and 0 elsewhere (summed in the input's dtype, one pass each)
+            probe = np.array(X[unused[0], start:stop])
+            for j in unused[1:]:
+                probe += X[j, start:stop]
+            probe *= 0
+            eta += probe
     return out
+
+
+def _hinges_interp(u, knots, bends) -> np.ndarray:
+    """``sum_k bends[k] * max(u, knots[k])`` by linear interpolation between the knots.
+
+    The sum is piecewise linear with its breaks at the knots: left of the first knot it
+    is the constant ``sum(bends * knots)``, right of the last its slope is ``sum(bends)``.
+    """
+    values = np.array([np.sum(bends * np.maximum(k, knots)) for k in knots])
+    inside = np.interp(u, knots, values)      # clamps to the end values outside the knots
+    tail = np.maximum(u, knots[-1])
+    tail -= knots[-1]
+    tail *= bends.sum()
+    return inside + tail
 
 
 def cloglog(eta: np.ndarray) -> np.ndarray:

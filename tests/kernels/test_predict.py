@@ -99,3 +99,71 @@ def test_bad_shapes_refused():
     model, X = _fit(("linear",))
     with pytest.raises(ValueError, match="expected \\(3, n_cells\\)"):
         linear_predictor_table(_table(model), X)
+
+
+# --------------------------------------------------------------------------- fast evaluation paths
+
+
+def _direct_eta(mean, scale, knots, classes, coef, constant, X):
+    """Slow, obvious reference: build every feature column from its definition and sum."""
+    Z = (np.asarray(X, dtype=np.float64) - mean) / scale  # (cells, p)
+    cols = []
+    for cls in classes:
+        if cls == "linear":
+            cols += [Z[:, j] for j in range(Z.shape[1])]
+        elif cls == "quadratic":
+            cols += [Z[:, j] ** 2 for j in range(Z.shape[1])]
+        elif cls == "product":
+            i, j = np.triu_indices(Z.shape[1], k=1)
+            cols += [Z[:, a] * Z[:, b] for a, b in zip(i, j)]
+        elif cls == "hinge":
+            for j, kk in enumerate(knots):
+                cols += [np.maximum(0.0, Z[:, j] - k) for k in kk] + [np.maximum(0.0, k - Z[:, j]) for k in kk]
+    return np.column_stack(cols) @ coef + constant
+
+
+@pytest.mark.parametrize("n_knots", [3, 20])  # 20 knots: beyond HINGE_SUM_MAX_KNOTS, the np.interp path
+def test_table_against_direct_features(n_knots):
+    # Analytic: the table is an exact rewrite of the feature sum (Phillips & Dudik 2008 features)
+    from envelope.kernels.predict import HINGE_SUM_MAX_KNOTS
+
+    rng = np.random.default_rng(11)
+    p = 4
+    mean, scale = rng.normal(0, 5, p), rng.uniform(0.5, 3, p)
+    knots = [np.sort(rng.normal(0, 1, n_knots)) for _ in range(p)]
+    classes = ("linear", "quadratic", "product", "hinge")
+    n_coef = p + p + p * (p - 1) // 2 + 2 * n_knots * p
+    coef = rng.normal(0, 0.3, n_coef) * (rng.uniform(size=n_coef) < 0.7)
+    coef[:p] = 0.0  # a variable whose linear term is zero still counts through its other terms
+    table = compile_pointprocess(mean, scale, knots, classes, coef, 0.4)
+    X = mean + scale * rng.normal(0, 1.5, (3000, p))
+    X[5] = mean + scale * knots[0][0] * np.ones(p)  # exactly at a knot
+    expected = _direct_eta(mean, scale, knots, classes, coef, 0.4, X)
+    got = linear_predictor_table(table, X.T, block_cells=701)
+    np.testing.assert_allclose(got, expected, rtol=1e-12, atol=1e-10)
+    if n_knots > HINGE_SUM_MAX_KNOTS:
+        from envelope.kernels.predict import _plan
+
+        assert max(t.knots.size for t in _plan(table).terms) > HINGE_SUM_MAX_KNOTS
+
+
+def test_float32_cells_give_float64_sums():
+    # Source: predict_proba on the same values widened to float64 (grids arrive as float32)
+    model, X = _fit(("linear", "quadratic", "product", "hinge"))
+    cells32 = X.T.astype(np.float32)
+    got = suitability_table(_table(model), cells32)
+    np.testing.assert_allclose(got, model.predict_proba(cells32.T.astype(np.float64))[:, 1], rtol=0, atol=1e-10)
+
+
+def test_unused_variable_is_skipped_but_keeps_nan():
+    # Common practice, no source: the valid area does not depend on which variables the model uses
+    from envelope.kernels.predict import _plan
+
+    coef = np.array([0.8, 0.0, -0.5])  # variable 1 has no term
+    table = compile_pointprocess([0, 0, 0], [1, 1, 1], [[], [], []], ("linear",), coef, 0.1)
+    assert [t.index for t in _plan(table).terms] == [0, 2]
+    cells = np.array([[1.0, 2.0, 3.0], [5.0, np.nan, 7.0], [0.5, 0.5, np.inf * 0]])
+    eta = linear_predictor_table(table, cells)
+    # Analytic: eta = 0.1 + 0.8 x0 - 0.5 x2 where every variable is present
+    assert eta[0] == pytest.approx(0.1 + 0.8 * 1.0 - 0.5 * 0.5)
+    assert np.isnan(eta[1]) and np.isnan(eta[2])

@@ -1,0 +1,375 @@
+"""Raster writing: cloud-optimised GeoTIFF or CF-NetCDF, several outputs streamed from one dask pass, atomically."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import threading
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from envelope.errors import InputError
+from envelope.io.atomic import atomic_outputs, check_writable
+from envelope.io.rasters import GEOTIFF_SUFFIXES, _encode
+
+__all__ = ["DEFLATE_LEVEL", "RasterOutput", "write_raster", "write_rasters"]
+
+#: zlib level of GeoTIFF tiles. Level 1 is about twice as fast as GDAL's default 6 for
+#: files only a few per cent larger on suitability-like grids (bench/README.md).
+DEFLATE_LEVEL = 1
+
+
+@dataclass
+class RasterOutput:
+    """One raster for :func:`write_rasters`.
+
+    ``tags`` may be a callable: it is called with the computed values of ``also`` (see
+    :func:`write_rasters`) and returns the tags, for values known only after the pass.
+    """
+
+    data: xr.DataArray
+    path: os.PathLike | str
+    tags: dict | Callable | None = None
+    categories: dict | None = None
+    nodata: float | None = None
+    dtype: object = None
+
+
+@dataclass
+class _Prepared:
+    values: xr.DataArray      # (variable, y, x), converted to the output dtype
+    path: Path
+    names: list
+    units: list
+    tags: dict | Callable
+    categories: dict | None
+    nodata: float | None
+    dataset: object = None    # the open staging GeoTIFF
+
+    @property
+    def netcdf(self) -> bool:
+        return self.path.suffix.lower() == ".nc"
+
+
+def _as_stack(da: xr.DataArray, path) -> xr.DataArray:
+    if not isinstance(da, xr.DataArray):
+        raise InputError(f"{path}: can only write an xarray.DataArray, got {type(da).__name__}")
+    if da.rio.crs is None:
+        raise InputError(f"{path}: the grid has no CRS (expected a CRS attached with rio.write_crs)")
+    if da.ndim == 2:
+        name = str(da.name) if da.name is not None else Path(path).stem
+        units = str(da.attrs.get("units", ""))
+        da = da.expand_dims(variable=[name]).assign_coords(units=("variable", [units]))
+    if da.ndim != 3 or set(da.dims) != {"variable", "y", "x"}:
+        raise InputError(f"{path}: cannot write dims {da.dims} (expected (y, x) or (variable, y, x))")
+    return da.transpose("variable", "y", "x")
+
+
+def _block_size(width: int, height: int) -> int:
+    """Tile edge: 512, or 256 / 128 for small grids (GDAL's COG driver needs >= 128)."""
+    largest = max(width, height)
+    return 512 if largest > 512 else 256 if largest > 256 else 128
+
+
+def _prepare(output: RasterOutput, overwrite: bool) -> _Prepared:
+    path = Path(output.path)
+    suffix = path.suffix.lower()
+    if suffix not in GEOTIFF_SUFFIXES and suffix != ".nc":
+        raise InputError(f"{path}: unknown output format {suffix or '(no suffix)'!r} (expected .tif, .tiff or .nc)")
+    check_writable(path, overwrite)
+    stack = _as_stack(output.data, path)
+    dtype = np.dtype(output.dtype or stack.dtype)
+    if dtype == np.float64 and stack.dtype != np.float64:
+        dtype = np.dtype(np.float64)
+    integer = np.issubdtype(dtype, np.integer) or dtype == np.bool_
+    if dtype == np.bool_:
+        dtype = np.dtype(np.uint8)
+    nodata = output.nodata
+    if integer:
+        if nodata is None:
+            nodata = stack.rio.nodata if stack.rio.nodata is not None and np.isfinite(stack.rio.nodata) else None
+        values = stack.fillna(nodata if nodata is not None else 0) if np.issubdtype(stack.dtype, np.floating) else stack
+        values = values.astype(dtype)
+    else:
+        nodata = np.nan
+        values = stack.astype(dtype)
+    names = [str(v) for v in stack["variable"].values]
+    units = ([str(u) for u in np.atleast_1d(stack["units"].values)] if "units" in stack.coords
+             else [""] * len(names))
+    return _Prepared(values, path, names, units, output.tags or {}, output.categories, nodata)
+
+
+def _all_tags(prep: _Prepared, also_values) -> dict:
+    tags = prep.tags(also_values) if callable(prep.tags) else prep.tags
+    out = {k: _encode(v) for k, v in (tags or {}).items()}
+    if prep.categories is not None:
+        out["categories"] = json.dumps({str(k): v for k, v in dict(prep.categories).items()})
+    return out
+
+
+def write_raster(da, path, *, overwrite=False, tags=None, categories=None, nodata=None, dtype=None) -> Path:
+    """Write a layer or stack to a cloud-optimised GeoTIFF or a CF-NetCDF file, atomically.
+
+    Parameters
+    ----------
+    da : DataArray (y, x) or (variable, y, x)
+        With CRS attached; dask-backed arrays are written block by block (never loaded whole).
+    path : path
+        ``.tif``/``.tiff`` -> GeoTIFF (COG layout: 512-pixel tiles or smaller, DEFLATE with
+        predictor, internal overviews); ``.nc`` -> CF-1.8 NetCDF (zlib compression).
+    overwrite : bool, default=False
+        Replace an existing file; otherwise :class:`OutputExistsError`.
+    tags : dict, optional
+        Dataset tags (GeoTIFF) / global attributes (NetCDF); non-string values JSON-encoded.
+    categories : dict, optional
+        ``{code: meaning}`` for categorical rasters, stored as JSON tag ``categories``
+        (and CF ``flag_values``/``flag_meanings`` in NetCDF).
+    nodata : number, optional
+        Nodata value for integer outputs (NaN is used for floating-point outputs).
+    dtype : str or numpy dtype, optional
+        Output data type (default: the array's).
+
+    Returns
+    -------
+    Path
+        The written file. Nothing is left behind if writing fails.
+    """
+    write_rasters([RasterOutput(da, path, tags, categories, nodata, dtype)], overwrite=overwrite)
+    return Path(path)
+
+
+def write_rasters(outputs, *, overwrite=False, also=(), progress=None) -> tuple:
+    """Write several rasters computed from one dask graph in a single pass, atomically.
+
+    Outputs that derive from the same inputs (suitability, MESS and a binary map of one
+    climate stack, say) share their dask tasks, so every input block is read and every
+    shared intermediate computed once (NetCDF outputs are written in a second pass
+    through xarray's writer). GeoTIFFs are first streamed block by block into
+    an uncompressed tiled staging file (dask computes blocks in parallel; writes are
+    serialised by a lock), then turned into a cloud-optimised GeoTIFF by GDAL's COG
+    driver (overviews, DEFLATE tiles compressed on all cores). Everything appears at the
+    end or nothing does.
+
+    Parameters
+    ----------
+    outputs : list of RasterOutput
+    overwrite : bool, default=False
+    also : sequence of dask arrays
+        Further values (reductions, say) computed in the same pass; their results are
+        returned and handed to callable ``tags``.
+    progress : callable(done, total), optional
+        Called as dask tasks finish (local schedulers only).
+
+    Returns
+    -------
+    tuple
+        The computed values of ``also``.
+    """
+    import dask
+
+    prepared = [_prepare(o, overwrite) for o in outputs]
+    paths = [p.path for p in prepared]
+    if len({os.path.abspath(p) for p in paths}) != len(paths):
+        raise InputError(f"outputs: the same file is given twice ({', '.join(map(str, paths))})")
+    on_cluster = _on_cluster()
+    with atomic_outputs(paths, overwrite=overwrite) as tmps, contextlib.ExitStack() as stages:
+        also_values = ()
+        if on_cluster:
+            # file handles and locks cannot travel to dask.distributed workers: compute the
+            # output layers there and gather them (never the input stacks), then write here
+            computed = dask.compute(*[p.values.data for p in prepared], *also)
+            for prep, data in zip(prepared, computed):
+                prep.values = prep.values.copy(data=np.asarray(data))
+            also_values = tuple(computed[len(prepared):])
+        # pass 1: every GeoTIFF and the extra values from one graph (dask arrays only:
+        # mixing arrays and Delayed objects in one compute reorders results in dask 2026.8
+        # and optimises them apart, which would read shared inputs more than once)
+        stores = [_stage_task(prep, tmp, stages) for prep, tmp in zip(prepared, tmps) if not prep.netcdf]
+        stores = [t for t in stores if t is not None]
+        if stores or (also and not on_cluster):
+            with _progress_callback(progress):
+                computed = dask.compute(*stores, *([] if on_cluster else also))
+            if not on_cluster:
+                also_values = tuple(computed[len(stores):])
+        # pass 2: NetCDF files through xarray's writer (a second read of shared inputs)
+        netcdf = [_netcdf_task(prep, tmp) for prep, tmp in zip(prepared, tmps) if prep.netcdf]
+        if netcdf:
+            with _progress_callback(progress):
+                dask.compute(*netcdf)
+        for prep, tmp in zip(prepared, tmps):
+            tags = _all_tags(prep, also_values)
+            if prep.netcdf:
+                _netcdf_attributes(tmp, tags)
+            else:
+                _finish_geotiff(prep, tmp, tags, stages)
+    return also_values
+
+
+def _on_cluster() -> bool:
+    try:
+        from distributed import default_client
+        default_client()
+        return True
+    except (ImportError, ValueError):
+        return False
+
+
+@contextlib.contextmanager
+def _progress_callback(progress):
+    if progress is None:
+        yield
+        return
+    from dask.callbacks import Callback
+
+    class _Count(Callback):
+        def _posttask(self, key, result, dsk, state, worker_id):
+            done = len(state["finished"])
+            progress(done, done + sum(len(state[k]) for k in ("ready", "waiting", "running")))
+
+    with _Count():
+        yield
+
+
+# ----------------------------------------------------------------------------- GeoTIFF
+
+
+def _stage_path(tmp: Path) -> Path:
+    return tmp.with_name(tmp.name + ".stage.tif")
+
+
+def _stage_task(prep: _Prepared, tmp: Path, stages: contextlib.ExitStack):
+    """Open the uncompressed staging GeoTIFF; return the dask task that fills it (None:
+    in-memory data, written at once)."""
+    import dask.array as dsa
+    import rasterio
+
+    values = prep.values
+    height, width = values.sizes["y"], values.sizes["x"]
+    block = _block_size(width, height)
+    stage = _stage_path(tmp)
+    stages.callback(_remove_stage, stage)
+    dst = stages.enter_context(rasterio.open(
+        stage, "w", driver="GTiff", width=width, height=height, count=len(prep.names), dtype=values.dtype.name,
+        crs=values.rio.crs, transform=values.rio.transform(), nodata=prep.nodata, tiled=True,
+        blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER"))
+    prep.dataset = dst
+    data = values.data
+    if not isinstance(data, dsa.Array):
+        dst.write(np.asarray(data))
+        return None
+    return dsa.store(data, _window_writer(dst), lock=threading.Lock(), compute=False)
+
+
+def _window_writer(dst):
+    from envelope.io.blocks import WindowWriter
+
+    return WindowWriter(dst)
+
+
+def _remove_stage(stage: Path) -> None:
+    stage.unlink(missing_ok=True)
+    with contextlib.suppress(FileNotFoundError):
+        Path(str(stage) + ".aux.xml").unlink()
+
+
+def _compress_threads() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict, stages) -> None:
+    """Band names, units and tags on the staged file, then GDAL's COG copy into ``tmp``."""
+    import rasterio.shutil
+
+    dst = prep.dataset
+    for i, (name, unit) in enumerate(zip(prep.names, prep.units), start=1):
+        dst.set_band_description(i, name)
+        dst.update_tags(i, units=unit)
+    dst.update_tags(**tags)
+    dst.close()
+    stage = _stage_path(tmp)
+    floating = np.issubdtype(prep.values.dtype, np.floating)
+    block = _block_size(prep.values.sizes["x"], prep.values.sizes["y"])
+    tmp.unlink(missing_ok=True)
+    rasterio.shutil.copy(stage, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=str(DEFLATE_LEVEL),
+                         PREDICTOR="3" if floating else "2", BLOCKSIZE=str(block), OVERVIEWS="AUTO",
+                         RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
+                         NUM_THREADS=str(_compress_threads()))
+    _remove_stage(stage)
+
+
+# ----------------------------------------------------------------------------- NetCDF
+
+_KNOWN_CF = {
+    # name -> (standard_name, long_name); only names whose meaning is unambiguous
+    "suitability": (None, "habitat suitability (0-1)"),
+    "mess": (None, "multivariate environmental similarity surface"),
+    "tas": ("air_temperature", "near-surface air temperature"),
+    "pr": ("precipitation_flux", "precipitation"),
+}
+
+
+def _netcdf_task(prep: _Prepared, tmp: Path):
+    """The CF-1.8 dataset of ``prep`` and the delayed write of it to ``tmp``."""
+    from pyproj import CRS
+
+    values, names, units, categories, nodata = prep.values, prep.names, prep.units, prep.categories, prep.nodata
+    pcrs = CRS.from_user_input(values.rio.crs.to_wkt())
+    geographic = pcrs.is_geographic
+    xname, yname = ("lon", "lat") if geographic else ("x", "y")
+    coords = {
+        yname: (yname, values["y"].values.astype(np.float64)),
+        xname: (xname, values["x"].values.astype(np.float64)),
+    }
+    ds = xr.Dataset(coords=coords)
+    if geographic:
+        ds[xname].attrs = {"standard_name": "longitude", "long_name": "longitude", "units": "degrees_east", "axis": "X"}
+        ds[yname].attrs = {"standard_name": "latitude", "long_name": "latitude", "units": "degrees_north", "axis": "Y"}
+    else:
+        unit = pcrs.axis_info[0].unit_name if pcrs.axis_info else "m"
+        unit = "m" if unit in ("metre", "meter") else unit
+        ds[xname].attrs = {"standard_name": "projection_x_coordinate", "long_name": "x coordinate of projection",
+                           "units": unit, "axis": "X"}
+        ds[yname].attrs = {"standard_name": "projection_y_coordinate", "long_name": "y coordinate of projection",
+                           "units": unit, "axis": "Y"}
+    mapping = pcrs.to_cf()
+    mapping["crs_wkt"] = pcrs.to_wkt()
+    mapping["spatial_ref"] = mapping["crs_wkt"]
+    ds["crs"] = xr.DataArray(np.int32(0), attrs=mapping)
+    encoding = {}
+    for i, (name, unit) in enumerate(zip(names, units)):
+        var = xr.DataArray(values.data[i], dims=(yname, xname))
+        standard, long_name = _KNOWN_CF.get(name, (None, name))
+        attrs = {"long_name": long_name, "units": unit, "grid_mapping": "crs"}
+        if standard:
+            attrs["standard_name"] = standard
+        if categories:
+            codes = sorted(int(k) for k in categories)
+            attrs["flag_values"] = np.array(codes, dtype=values.dtype)
+            attrs["flag_meanings"] = " ".join(str(categories[k]).replace(" ", "_") for k in codes)
+        var.attrs = attrs
+        ds[name] = var
+        enc = {"zlib": True, "complevel": 4, "dtype": values.dtype}
+        if nodata is not None:
+            enc["_FillValue"] = nodata
+        if values.chunks is not None:
+            enc["chunksizes"] = (min(512, values.sizes["y"]), min(512, values.sizes["x"]))
+        encoding[name] = enc
+    ds.attrs = {"Conventions": "CF-1.8"}
+    tmp.unlink(missing_ok=True)
+    return ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding, compute=False)
+
+
+def _netcdf_attributes(tmp: Path, tags: dict) -> None:
+    """Global attributes, set once the data are written (their values may come from the pass)."""
+    import netCDF4
+
+    with netCDF4.Dataset(tmp, "a") as nc:
+        nc.setncatts(tags)

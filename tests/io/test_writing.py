@@ -1,0 +1,92 @@
+"""Several rasters from one dask pass: each input window read once, late tags, progress, COG layout."""
+
+import numpy as np
+import pytest
+import rasterio
+
+from envelope.io import blocks
+from envelope.io.rasters import open_climate, open_layer, read_tags
+from envelope.io.writing import RasterOutput, write_raster, write_rasters
+from tests.conftest import make_stack
+
+
+@pytest.fixture
+def read_log(monkeypatch):
+    """Records (bands, window) of every WindowReader read."""
+    calls = []
+    original = blocks.WindowReader.__getitem__
+
+    def logged(self, key):
+        out = original(self, key)
+        calls.append((tuple(self.bands), tuple((k.start, k.stop) for k in key[1:])))
+        return out
+
+    monkeypatch.setattr(blocks.WindowReader, "__getitem__", logged)
+    return calls
+
+
+def test_open_climate_reads_only_wanted_bands(tmp_path, read_log):
+    stack = make_stack(nx=30, ny=20, variables=("a", "b", "c", "d"))
+    write_raster(stack, tmp_path / "s.tif")
+    read_log.clear()
+    sub = open_climate(tmp_path / "s.tif", variables=["d", "b"], chunks={"y": 10, "x": 30})
+    # Source: the same bands read through rasterio-backed open_climate without selection
+    np.testing.assert_array_equal(sub.values, stack.sel(variable=["d", "b"]).values)
+    assert list(sub["variable"].values) == ["d", "b"]
+    assert read_log and all(bands == (2, 4) for bands, _ in read_log)  # a and c never read
+
+
+def test_outputs_of_one_graph_read_each_window_once(tmp_path, read_log):
+    stack = make_stack(nx=40, ny=30)
+    write_raster(stack, tmp_path / "s.tif")
+    read_log.clear()
+    climate = open_climate(tmp_path / "s.tif", chunks={"y": 10, "x": 20})
+    total = (climate.sel(variable="t") + climate.sel(variable="p")).rename("sum")
+    diff = (climate.sel(variable="t") - climate.sel(variable="p")).rename("diff")
+    count = climate.sel(variable="t").notnull().sum().data
+    (n,) = write_rasters([RasterOutput(total, tmp_path / "sum.tif", tags=lambda also: {"cells": int(also[0])}),
+                          RasterOutput(diff, tmp_path / "diff.tif", tags={"kind": "difference"}),
+                          RasterOutput(diff, tmp_path / "diff.nc", tags=lambda also: {"cells": int(also[0])})],
+                         also=[count])
+    assert int(n) == 30 * 40
+    windows = [w for _, w in read_log]
+    # both GeoTIFFs and the count in one pass: 3 x 2 chunks, each read once; the NetCDF
+    # file (second pass) reads them once more
+    assert len(windows) == 12 and len(set(windows)) == 6
+    assert windows[:6] and len(set(windows[:6])) == 6
+    # Source: the arithmetic done by numpy on the same values
+    np.testing.assert_allclose(open_layer(tmp_path / "sum.tif").values, (stack[0] + stack[1]).values)
+    np.testing.assert_allclose(open_layer(tmp_path / "diff.nc").values, (stack[0] - stack[1]).values)
+    np.testing.assert_allclose(open_layer(tmp_path / "diff.tif").values, (stack[0] - stack[1]).values)
+    assert read_tags(tmp_path / "diff.tif")["kind"] == "difference"
+    assert read_tags(tmp_path / "sum.tif")["cells"] == 1200 and read_tags(tmp_path / "diff.nc")["cells"] == 1200
+
+
+def test_progress_reports_every_task(tmp_path):
+    stack = make_stack(nx=64, ny=64).chunk({"y": 16, "x": 16})
+    seen = []
+    write_rasters([RasterOutput(stack, tmp_path / "p.tif")], progress=lambda done, total: seen.append((done, total)))
+    assert seen and seen[-1][0] == seen[-1][1] and all(d <= t for d, t in seen)
+
+
+def test_numpy_layers_and_integer_nodata(tmp_path):
+    layer = make_stack(nx=300, ny=200).isel(variable=0, drop=True)
+    codes = (layer > 0).astype("float32").where(layer > -1.5)  # NaN where very low
+    codes.name = "flag"
+    write_rasters([RasterOutput(codes, tmp_path / "c.tif", categories={0: "no", 1: "yes"}, nodata=255,
+                                dtype="uint8")])
+    with rasterio.open(tmp_path / "c.tif") as src:  # Source: rasterio / GDAL metadata of the file
+        values = src.read(1)
+        assert src.nodata == 255 and src.dtypes[0] == "uint8"
+        assert src.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") == "COG" and src.overviews(1)
+    expected = np.where(np.isnan(codes.values), 255, codes.values).astype("uint8")
+    np.testing.assert_array_equal(values, expected)
+
+
+def test_same_file_twice_refused(tmp_path):
+    from envelope.errors import InputError
+
+    stack = make_stack()
+    with pytest.raises(InputError, match="the same file is given twice"):
+        write_rasters([RasterOutput(stack, tmp_path / "x.tif"), RasterOutput(stack, tmp_path / "x.tif")])
+    assert list(tmp_path.iterdir()) == []
