@@ -68,8 +68,10 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
             raise click.UsageError("--scenarios needs --out-dir")
         from envelope.scenarios import project_scenarios
 
-        result = project_scenarios(model_file, scenarios, out_dir, mess=mess is not None, agreement=agreement,
-                                   clamp=not no_clamp, overwrite=overwrite, scheduler=scheduler)
+        with _progress_bar() as progress:
+            result = project_scenarios(model_file, scenarios, out_dir, mess=mess is not None, agreement=agreement,
+                                       clamp=not no_clamp, overwrite=overwrite, scheduler=scheduler,
+                                       progress=progress)
         for row in result["rows"]:
             share = "" if row["novel_share"] is None else f"  novel climate {100 * row['novel_share']:.2f} % of area"
             click.echo(f"{row['name']}: {row['path']}{share}")
@@ -86,10 +88,31 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
         raise click.UsageError("--out-dir goes with --scenarios")
     from envelope.projection import project_file
 
-    result = project_file(model_file, list(climate), out, mess_out=mess, binary_out=binary, clamp=not no_clamp,
-                          overwrite=overwrite, scheduler=scheduler)
+    with _progress_bar() as progress:
+        result = project_file(model_file, list(climate), out, mess_out=mess, binary_out=binary, clamp=not no_clamp,
+                              overwrite=overwrite, scheduler=scheduler, progress=progress)
     click.echo(f"suitability: {result['out']} ({result['method']}, threshold {result['threshold']:.4g})")
     if result["mess"]:
         click.echo(f"MESS: {result['mess']}; novel climate (MESS < 0): {100 * result['novel_share']:.2f} % of area")
     if result["binary"]:
         click.echo(f"binary: {result['binary']}")
+
+
+class _progress_bar:
+    """A transient rich progress bar on stderr; yields ``progress(done, total, what=None)``."""
+
+    def __enter__(self):
+        from rich.console import Console
+        from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeElapsedColumn
+
+        self.bar = Progress(TextColumn("{task.description}"), BarColumn(), TaskProgressColumn(), TimeElapsedColumn(),
+                            console=Console(stderr=True), transient=True)
+        self.bar.__enter__()
+        self.task = self.bar.add_task("projecting", total=None)
+        return self.update
+
+    def update(self, done, total, what=None):
+        self.bar.update(self.task, completed=done, total=total, **({"description": what} if what else {}))
+
+    def __exit__(self, *exc):
+        return self.bar.__exit__(*exc)

@@ -159,15 +159,13 @@ def project_suitability(estimator, stack: xr.DataArray, variables, training_rang
 
 
 def _mess_block(block, reference):
-    from envelope.kernels.mess import mess
+    from envelope.kernels.mess import mess_cells
 
     X, shape = _as_cells(block)
-    out = np.full((2, X.shape[1]), np.nan, dtype=np.float32)
-    valid = np.flatnonzero(np.isfinite(X).all(axis=0))
-    if valid.size:
-        values, index = mess(X[:, valid].T.astype(np.float64), reference)
-        out[0, valid] = values
-        out[1, valid] = index
+    values, index = mess_cells(X, reference)
+    out = np.empty((2, X.shape[1]), dtype=np.float32)
+    out[0] = values
+    out[1] = np.where(index >= 0, index, np.nan)
     return np.moveaxis(out.reshape((2,) + shape), 0, -1)
 
 

@@ -262,7 +262,8 @@ def _all_paths(files) -> list[Path]:
 
 
 def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreement: float = DEFAULT_AGREEMENT,
-                      clamp: bool = True, overwrite: bool = False, scheduler=None, chunks=None) -> dict:
+                      clamp: bool = True, overwrite: bool = False, scheduler=None, chunks=None,
+                      progress=None) -> dict:
     """Project a model onto every scenario of a table and build the climate-model ensembles.
 
     Writes into ``out_dir`` (created if missing): ``<name>_suitability.tif`` (and
@@ -273,6 +274,9 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
     the table's folder). All scenario grids must share one grid (CRS, resolution, shape,
     origin); a difference is an error naming both scenarios. Files appear together at the
     end or not at all.
+
+    ``progress(done, total, what)``, when given, is called as dask tasks finish, with
+    ``what`` naming the scenario or ensemble being written.
 
     Returns
     -------
@@ -320,7 +324,9 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
             paths = {"out": tmp[files["suitability"][sc.name]]}
             if mess:
                 paths["mess"] = tmp[files["mess"][sc.name]]
-            summary = _write_projection(estimator, stacks[sc.name], variables, bounds, metadata, tags, paths)
+            step = None if progress is None else (lambda d, t, what=f"scenario {sc.name}": progress(d, t, what))
+            summary = _write_projection(estimator, stacks[sc.name], variables, bounds, metadata, tags, paths,
+                                        progress=step)
             rows.append({"name": sc.name, "pathway": sc.pathway, "climate_model": sc.climate_model,
                          "horizon": sc.horizon, "path": files["suitability"][sc.name].name,
                          "mess_path": files["mess"][sc.name].name if mess else None,
@@ -345,7 +351,8 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
                 outputs.append(RasterOutput(ds[stat].rio.write_crs(stack.rio.crs),
                                             tmp[files["ensemble"][(pathway, horizon, stat)]],
                                             tags={**base, "statistic": stat}, **kw))
-            write_rasters(outputs, overwrite=True)  # one pass over the members for all statistics
+            step = None if progress is None else (lambda d, t, what=f"ensemble {pathway} {horizon}": progress(d, t, what))
+            write_rasters(outputs, overwrite=True, progress=step)  # one pass over the members for all statistics
             ensembles.append({**base, "files": {stat: str(files["ensemble"][(pathway, horizon, stat)])
                                                 for stat in ENSEMBLE_STATISTICS}})
         write_suitability_table(rows, tmp[files["table"]], overwrite=True)

@@ -8,7 +8,7 @@ import numpy as np
 
 from envelope.errors import InputError
 
-__all__ = ["PERCENTILE_LEVELS", "MessReference", "reference_from_training", "mess"]
+__all__ = ["PERCENTILE_LEVELS", "MessReference", "reference_from_training", "mess", "mess_cells"]
 
 #: Percentile levels kept per variable for the model file's description of the training climate.
 PERCENTILE_LEVELS = (0.0, 1.0, 5.0, 10.0, 25.0, 50.0, 75.0, 90.0, 95.0, 99.0, 100.0)
@@ -124,22 +124,6 @@ def reference_from_training(X_ref, *, max_values: int = MAX_REFERENCE_VALUES) ->
                          percentiles=np.percentile(X, PERCENTILE_LEVELS, axis=0), n_source=n)
 
 
-def _similarity(p: np.ndarray, ref: np.ndarray, lo: float, hi: float) -> np.ndarray:
-    """Per-variable similarity S_i of Elith et al. (2010) for values ``p`` against sorted ``ref``."""
-    # f = % of reference values strictly smaller than p (side="left" counts those < p)
-    f = 100.0 * np.searchsorted(ref, p, side="left") / ref.size
-    span = hi - lo
-    with np.errstate(divide="ignore", invalid="ignore"):
-        s = np.where(f <= 50.0, 2.0 * f, 2.0 * (100.0 - f))
-        if span > 0:
-            s = np.where(f == 0.0, 100.0 * (p - lo) / span, s)
-            s = np.where(f == 100.0, 100.0 * (hi - p) / span, s)
-        else:
-            # a constant reference variable: similar only at that value, otherwise fully novel
-            s = np.where(p == lo, 0.0, -100.0)
-    return s
-
-
 def mess(X, reference: MessReference):
     """MESS value and most-dissimilar variable for each row of ``X``.
 
@@ -186,17 +170,73 @@ def mess(X, reference: MessReference):
     if X.ndim != 2 or X.shape[1] != reference.n_variables:
         raise InputError(f"X: shape {X.shape}; expected (cells, {reference.n_variables}) with the "
                          "reference's variables as columns")
-    n = X.shape[0]
-    best = np.full(n, np.inf)
-    best_idx = np.zeros(n, dtype=np.int64)
-    missing = np.zeros(n, dtype=bool)
-    for i in range(X.shape[1]):
-        p = X[:, i].astype(np.float64, copy=False)
-        missing |= np.isnan(p)
-        s = _similarity(p, reference.values[:, i], float(reference.minimum[i]), float(reference.maximum[i]))
-        lower = s < best  # strict: the first variable wins ties
-        best = np.where(lower, s, best)
-        best_idx[lower] = i
-    best[missing] = np.nan
-    best_idx[missing] = -1
-    return best, best_idx
+    values, index = mess_cells(X.T, reference)
+    return values, index
+
+
+#: Cells evaluated together by :func:`mess_cells` (one float64 row is 128 KiB).
+BLOCK_CELLS = 16384
+
+
+def mess_cells(X, reference: MessReference, *, block_cells: int = BLOCK_CELLS):
+    """:func:`mess` for cells laid out variable-major: ``X`` of shape (n_variables, n_cells).
+
+    This is the layout of a climate block (variables outermost), so a grid wrapper needs
+    no transposed float64 copy; float32 input is fine. Cells are processed
+    ``block_cells`` at a time. Between the reference extremes the similarity depends on
+    the count ``c`` of reference values below ``p`` only: with ``n`` reference values,
+    ``f = 100 c / n`` and ``S = min(2 f, 200 − 2 f)``; the two extreme formulas are
+    applied only to the cells with ``c = 0`` or ``c = n``.
+
+    Returns
+    -------
+    mess_values : ndarray of float64, shape (n_cells,)
+    most_dissimilar_index : ndarray of int64, shape (n_cells,); −1 where a variable is NaN
+    """
+    if not isinstance(reference, MessReference):
+        raise InputError(f"reference: got {type(reference).__name__}; expected a MessReference "
+                         "(reference_from_training or MessReference.from_dict)")
+    X = np.asarray(X)
+    if X.ndim != 2 or X.shape[0] != reference.n_variables:
+        raise InputError(f"X: shape {X.shape}; expected ({reference.n_variables}, cells) with the "
+                         "reference's variables as rows")
+    n_ref = reference.values.shape[0]
+    columns = [np.ascontiguousarray(reference.values[:, i]) for i in range(X.shape[0])]
+    n = X.shape[1]
+    best_all = np.empty(n)
+    index_all = np.zeros(n, dtype=np.int64)
+    for start in range(0, n, block_cells):
+        stop = min(start + block_cells, n)
+        best = best_all[start:stop]
+        best.fill(np.inf)
+        index = index_all[start:stop]
+        for i, ref in enumerate(columns):
+            p = X[i, start:stop]
+            count = np.searchsorted(ref, p, side="left")  # reference values strictly below p; NaN -> n
+            # 2 f and 2 (100 - f) = 200 - 2 f, rounded exactly as the formula is written
+            # (doubling is exact), so ties between variables break as in the formula
+            s = np.multiply(count, 100.0)
+            s /= n_ref
+            s *= 2.0
+            np.minimum(s, 200.0 - s, out=s)
+            edge = np.flatnonzero((count == 0) | (count == n_ref))
+            if edge.size:
+                s[edge] = _extreme_similarity(p[edge].astype(np.float64), count[edge] == 0,
+                                              float(reference.minimum[i]), float(reference.maximum[i]))
+            lower = s < best  # strict: the first variable wins ties; NaN never lower
+            np.copyto(index, i, where=lower)
+            np.minimum(best, s, out=best)  # NaN propagates: a missing variable makes the cell NaN
+        index[np.isnan(best)] = -1
+    return best_all, index_all
+
+
+def _extreme_similarity(p, below, lo: float, hi: float) -> np.ndarray:
+    """S at or below the reference minimum (``below``) or above its maximum (Elith et al. 2010)."""
+    span = hi - lo
+    if span > 0:
+        s = np.where(below, p - lo, hi - p) * (100.0 / span)
+    else:
+        # a constant reference variable: similar only at that value, otherwise fully novel
+        s = np.where(p == lo, 0.0, -100.0)
+    s[np.isnan(p)] = np.nan
+    return s
