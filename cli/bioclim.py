@@ -38,7 +38,7 @@ def write_bioclim(paths: dict, out, *, variables=None, gdd_base=5.0, wrap=True, 
     from envelope.bioclim import check_monthly, check_monthly_grids
     from envelope.io.atomic import check_writable
     from envelope.io.monthly import PRECIPITATION, TEMPERATURE, open_monthly
-    from envelope.io.rasters import write_raster
+    from envelope.io.writing import write_raster
 
     check_writable(out, overwrite)
     arrays = {role: open_monthly(p, name=role, units=PRECIPITATION if role == "prec" else TEMPERATURE)

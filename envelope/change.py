@@ -360,7 +360,7 @@ def _open_elevation(now, now_path, elevation_path):
 
 
 def _write_pair(classes, summary, raster_tmp, summary_tmp):
-    from envelope.io.rasters import write_raster
+    from envelope.io.writing import write_raster
 
     tags = {"threshold": summary["threshold"], "threshold_state": ">=", "content": "range change classes"}
     if summary.get("threshold_rule") is not None:

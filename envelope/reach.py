@@ -413,7 +413,7 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
 
     from envelope.fitting import json_ready
     from envelope.io.atomic import atomic_output, check_writable
-    from envelope.io.rasters import write_raster
+    from envelope.io.writing import write_raster
 
     targets = [p for p in (out, summary_path, front, arrival) if p]
     for p in targets:

@@ -269,7 +269,7 @@ def write_target_outputs(result: TargetResult, out, table_path, summary_path, *,
 
     from envelope.fitting import json_ready
     from envelope.io.atomic import atomic_output, check_writable
-    from envelope.io.rasters import write_raster
+    from envelope.io.writing import write_raster
 
     for p in (out, table_path, summary_path):
         check_writable(p, overwrite)

@@ -209,7 +209,7 @@ def test_change_table_flattens():
 # ----------------------------------------------------------------------- files
 
 def _write(da, path, **tags):
-    from envelope.io.rasters import write_raster
+    from envelope.io.writing import write_raster
 
     write_raster(da, path, tags=tags or None)
     return path

@@ -8,7 +8,8 @@ from dask.callbacks import Callback
 
 from envelope.errors import InputError, ModelError, OutputExistsError
 from envelope.io.modelfile import save_model
-from envelope.io.rasters import open_layer, read_tags, write_raster
+from envelope.io.rasters import open_layer, read_tags
+from envelope.io.writing import write_raster
 from envelope.kernels.mess import mess, reference_from_training
 from envelope.models import BoostedTrees, PointProcessModel
 from envelope.projection import (match_variables, novel_share, project_file, project_mess,

@@ -171,7 +171,8 @@ def test_target_reads_the_study_run(full_run, tmp_path):
     # the run's own deterministic reach step for that pathway (same maps, settings, start).
     import numpy as np
 
-    from envelope.io.rasters import open_layer, write_raster
+    from envelope.io.rasters import open_layer
+    from envelope.io.writing import write_raster
 
     study_path, run_dir, _ = full_run
     now = open_layer(run_dir / "projection" / "now_suitability.tif")

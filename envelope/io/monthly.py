@@ -242,7 +242,7 @@ def open_monthly(path, *, name: str, variable: str | None = None, units: str | N
 
 def write_monthly(da: xr.DataArray, path, *, overwrite: bool = False, tags: dict | None = None) -> Path:
     """Write a (month, y, x) stack as 12 bands described ``M01`` ... ``M12`` (GeoTIFF or NetCDF by suffix)."""
-    from envelope.io.rasters import write_raster
+    from envelope.io.writing import write_raster
 
     crs = da.rio.crs
     stack = da.rename(month="variable").assign_coords(

@@ -489,7 +489,3 @@ def read_tags(path) -> dict:
         with _open_rasterio_dataset(path) as src:
             tags = src.tags()
     return _decode_tags(tags)
-
-
-# writing lives in envelope.io.writing; re-exported here for callers that read and write
-from envelope.io.writing import write_raster, write_rasters  # noqa: E402,F401

@@ -163,8 +163,7 @@ class _Plan:
     """What :func:`linear_predictor_table` evaluates: only variables with a nonzero term."""
 
     terms: tuple
-    pairs: tuple           # ((slot_a, slot_b, coefficient), ...) product terms in u units
-    product: np.ndarray | None  # (n_active, n_active) upper-triangular, when pairs are many
+    products: tuple        # ((slot_a, ((slot_b, coefficient), ...)), ...) product terms in u units, by row
     constant: float
 
 
@@ -192,16 +191,12 @@ def _plan(table: AdditiveTable) -> _Plan:
         if term.linear or term.quadratic or knots_u.size or has_product:
             active.append(term)
     slot = {t.index: i for i, t in enumerate(active)}
-    pairs, product = [], None
+    rows = {}
     if table.product is not None:
-        rows, cols = np.nonzero(table.product)
-        for a, b in zip(rows, cols):
-            pairs.append((slot[a], slot[b], float(table.product[a, b] * table.inv_scale[a] * table.inv_scale[b])))
-        if len(pairs) > 2 * len(active):
-            product = np.zeros((len(active), len(active)))
-            for a, b, c in pairs:
-                product[a, b] = c
-    return _Plan(tuple(active), tuple(pairs), product, float(constant))
+        for a, b in zip(*np.nonzero(table.product)):
+            coef = float(table.product[a, b] * table.inv_scale[a] * table.inv_scale[b])
+            rows.setdefault(slot[a], []).append((slot[b], coef))
+    return _Plan(tuple(active), tuple((a, tuple(pairs)) for a, pairs in rows.items()), float(constant))
 
 
 def linear_predictor_table(table: AdditiveTable, X, *, lower=None, upper=None,
@@ -235,6 +230,7 @@ def linear_predictor_table(table: AdditiveTable, X, *, lower=None, upper=None,
     width = min(block_cells, max(n, 1))
     U = np.empty((max(len(plan.terms), 1), width))
     work = np.empty(width)
+    work2 = np.empty(width)
     for start in range(0, n, block_cells):
         stop = min(start + block_cells, n)
         m = stop - start
@@ -261,14 +257,17 @@ def linear_predictor_table(table: AdditiveTable, X, *, lower=None, upper=None,
                     np.maximum(u, knot, out=tmp)  # NaN propagates
                     tmp *= bend
                     eta += tmp
-        if plan.product is not None:
-            Um = U[:, :m]
-            eta += np.einsum("ic,ic->c", plan.product @ Um, Um)
-        else:
-            for a, b, coef in plan.pairs:
-                np.multiply(U[a, :m], coef, out=tmp)
-                tmp *= U[b, :m]
-                eta += tmp
+        # products grouped by row: eta += u_a * sum_b c_ab u_b, two passes per pair plus two
+        # per row (no BLAS call: dask already runs one block per core)
+        acc = work2[:m]
+        for a, pairs in plan.products:
+            (b0, c0), rest = pairs[0], pairs[1:]
+            np.multiply(U[b0, :m], c0, out=acc)
+            for b, coef in rest:
+                np.multiply(U[b, :m], coef, out=tmp)
+                acc += tmp
+            acc *= U[a, :m]
+            eta += acc
         if unused:
             # keep NaN where a variable the model ignores is missing: their sum times 0 is
             # NaN there and 0 elsewhere (summed in the input's dtype, one pass each)

@@ -20,7 +20,7 @@ def _layer(values, lon0=0.0, lat0=10.0):
 
 
 def _write(da, path, **tags):
-    from envelope.io.rasters import write_raster
+    from envelope.io.writing import write_raster
 
     write_raster(da, path, tags=tags or None)
     return str(path)

@@ -8,7 +8,7 @@ import pytest
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
-from envelope.io.rasters import write_raster
+from envelope.io.writing import write_raster
 from tests.test_habitat import ellipsoid_band_area_km2, layer
 
 # The hand-computed grid of tests/test_habitat.py: 0–2° N, 0.5° cells, bands 0–1 and 1–2° N.

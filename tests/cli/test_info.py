@@ -8,7 +8,7 @@ import xarray as xr
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
-from envelope.io.rasters import write_raster
+from envelope.io.writing import write_raster
 from envelope.kernels.areas import ellipsoid_band_area
 from tests.conftest import make_stack
 

@@ -10,7 +10,8 @@ from click.testing import CliRunner
 
 from envelope.cli.main import cli
 from envelope.io.modelfile import save_model
-from envelope.io.rasters import open_layer, read_tags, write_raster
+from envelope.io.rasters import open_layer, read_tags
+from envelope.io.writing import write_raster
 from envelope.kernels.mess import reference_from_training
 from envelope.models import PointProcessModel
 

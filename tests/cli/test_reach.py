@@ -8,7 +8,8 @@ import pytest
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
-from envelope.io.rasters import open_layer, read_tags, write_raster
+from envelope.io.rasters import open_layer, read_tags
+from envelope.io.writing import write_raster
 from tests.test_reach import corridor, layer
 
 

@@ -8,7 +8,8 @@ import pytest
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
-from envelope.io.rasters import open_layer, write_raster
+from envelope.io.rasters import open_layer
+from envelope.io.writing import write_raster
 from tests.test_reach import layer
 from tests.test_targeting import landscape, model_and_patches
 

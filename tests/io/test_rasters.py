@@ -12,7 +12,8 @@ from pyproj import CRS
 from rasterio.transform import from_origin
 
 from envelope.errors import GridMismatchError, InputError, OutputExistsError
-from envelope.io.rasters import open_climate, open_layer, read_tags, write_raster
+from envelope.io.rasters import open_climate, open_layer, read_tags
+from envelope.io.writing import write_raster
 from tests.conftest import make_stack
 
 RNG = np.random.default_rng(7)
