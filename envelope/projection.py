@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import functools
 import os
 
 import numpy as np
@@ -30,6 +31,8 @@ def match_variables(stack: xr.DataArray, variables, *, source="climate grid") ->
             f"{source}: variable {missing[0]!r} needed by the model is missing "
             f"(grid has {', '.join(have)})"
         )
+    if have == list(variables):
+        return stack  # already in the model's order: selecting would copy every block
     return stack.sel(variable=list(variables))
 
 
@@ -60,10 +63,43 @@ def pointprocess_table(estimator) -> AdditiveTable | None:
 
 
 def _as_cells(block: np.ndarray) -> tuple[np.ndarray, tuple]:
-    """(y, x, variable) chunk -> (variable, cells) view; dask chunks are (variable, y, x)
-    in memory, so moving the axis back is free and the variable axis stays outermost."""
-    shape = block.shape[:-1]
-    return np.moveaxis(block, -1, 0).reshape(block.shape[-1], -1), shape
+    """(variable, y, x) block -> (variable, cells) view: each variable's cells stay one
+    contiguous row, the layout the kernels are fastest on."""
+    return block.reshape(block.shape[0], -1), block.shape[1:]
+
+
+def map_cells(function, stack: xr.DataArray, *, bands=None, **kwargs) -> xr.DataArray:
+    """Apply ``function(block, **kwargs)`` to each (variable, y, x) block of ``stack``.
+
+    ``function`` returns a float32 (y, x) block, or (bands, y, x) when ``bands`` is given.
+    The variable axis is one chunk and stays first, so a block is handed over exactly as
+    it was read; going through ``xarray.apply_ufunc`` with a core dimension would move
+    it last, which dask does by copying every block into a cell-major layout that makes
+    the per-variable kernels several times slower. Lazy when ``stack`` is dask-backed.
+    """
+    import dask.array as dsa
+
+    data = stack.data
+    if isinstance(data, dsa.Array):
+        data = data.rechunk({0: -1})
+        if bands is None:
+            out = data.map_blocks(function, drop_axis=0, dtype=np.float32, meta=np.empty((0, 0), np.float32),
+                                  **kwargs)
+        else:
+            out = data.map_blocks(function, chunks=((bands,),) + data.chunks[1:], dtype=np.float32,
+                                  meta=np.empty((0, 0, 0), np.float32), **kwargs)
+    else:
+        out = function(np.asarray(data), **kwargs)
+    coords = {"y": stack["y"].values, "x": stack["x"].values}
+    return xr.DataArray(out, dims=("y", "x") if bands is None else ("variable", "y", "x"), coords=coords)
+
+
+@functools.cache
+def _openmp_controller():
+    """One threadpoolctl controller (building one scans the loaded libraries)."""
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
 
 
 def _suitability_block(block, members, lower, upper):
@@ -73,7 +109,10 @@ def _suitability_block(block, members, lower, upper):
         if table is not None:
             s = suitability_table(table, X, lower=lower, upper=upper)
         else:
-            s = predict_cells(predict_proba, X, lower=lower, upper=upper, batch_cells=CELL_BATCH)
+            # dask already runs one block per core: an estimator's own OpenMP threads
+            # (scikit-learn's tree ensembles) would only oversubscribe the cores
+            with _openmp_controller().limit(limits=1, user_api="openmp"):
+                s = predict_cells(predict_proba, X, lower=lower, upper=upper, batch_cells=CELL_BATCH)
         total = s if weight is None else (weight * s if total is None else total + weight * s)
     return total.astype(np.float32).reshape(shape)
 
@@ -144,18 +183,8 @@ def project_suitability(estimator, stack: xr.DataArray, variables, training_rang
     if clamp:
         lower = np.array([training_range[v][0] for v in variables], dtype=np.float64)
         upper = np.array([training_range[v][1] for v in variables], dtype=np.float64)
-    if stack.chunks is not None:
-        stack = stack.chunk({"variable": -1})
-    result = xr.apply_ufunc(
-        _suitability_block, stack,
-        kwargs={"members": _members(estimator), "lower": lower, "upper": upper},
-        input_core_dims=[["variable"]],
-        dask="parallelized",
-        output_dtypes=[np.float32],
-    )
-    result = result.drop_vars([c for c in ("units",) if c in result.coords])
-    return _layer_like(result.transpose("y", "x"), stack, "suitability",
-                       {"long_name": "climatic suitability", "units": "1"})
+    result = map_cells(_suitability_block, stack, members=_members(estimator), lower=lower, upper=upper)
+    return _layer_like(result, stack, "suitability", {"long_name": "climatic suitability", "units": "1"})
 
 
 def _mess_block(block, reference):
@@ -166,7 +195,7 @@ def _mess_block(block, reference):
     out = np.empty((2, X.shape[1]), dtype=np.float32)
     out[0] = values
     out[1] = np.where(index >= 0, index, np.nan)
-    return np.moveaxis(out.reshape((2,) + shape), 0, -1)
+    return out.reshape((2,) + shape)
 
 
 def project_mess(stack: xr.DataArray, variables, reference) -> xr.DataArray:
@@ -199,17 +228,8 @@ def project_mess(stack: xr.DataArray, variables, reference) -> xr.DataArray:
         raise InputError(f"mess_reference: {reference.n_variables} variables; the model has "
                          f"{len(variables)} ({', '.join(variables)})")
     stack = match_variables(stack, variables)
-    if stack.chunks is not None:
-        stack = stack.chunk({"variable": -1})
-    result = xr.apply_ufunc(
-        _mess_block, stack, kwargs={"reference": reference},
-        input_core_dims=[["variable"]], output_core_dims=[["band"]],
-        dask="parallelized", output_dtypes=[np.float32],
-        dask_gufunc_kwargs={"output_sizes": {"band": 2}},
-    )
-    result = result.drop_vars([c for c in ("units",) if c in result.coords])
-    result = result.rename({"band": "variable"}).assign_coords(variable=list(MESS_BANDS))
-    result = result.transpose("variable", "y", "x")
+    result = map_cells(_mess_block, stack, bands=len(MESS_BANDS), reference=reference)
+    result = result.assign_coords(variable=list(MESS_BANDS))
     return _layer_like(result, stack, "mess", {"long_name": "multivariate environmental similarity",
                                                 "variables": list(variables)})
 
@@ -246,9 +266,11 @@ def binary_map(suitability: xr.DataArray, threshold: float, *, nodata: int = 255
     return out
 
 
-# Spatial chunk of the streamed stack: with 19 float32 variables a 1024 x 1024 chunk is
-# 76 MiB, so a few chunks in flight per thread bound the working set whatever the grid size.
-PROJECT_CHUNKS = {"y": 1024, "x": 1024}
+# Spatial window of the streamed stack (rounded to whole file blocks when read): with 19
+# float32 variables a 512 x 1024 window is 38 MiB, so a few windows in flight per thread
+# bound the working set whatever the grid size. Measured faster than 1024 x 1024 or
+# 512 x 512 windows on 512-pixel tiles (bench/README.md).
+PROJECT_CHUNKS = {"y": 512, "x": 1024}
 BINARY_CATEGORIES = {0: "unsuitable", 1: "suitable"}
 BINARY_NODATA = 255
 
@@ -404,7 +426,7 @@ def _write_projection(estimator, stack, variables, bounds, metadata, tags, paths
             "n_cells": int(stack.sizes["y"] * stack.sizes["x"])}
 
 
-__all__ = ["BINARY_CATEGORIES", "CELL_BATCH", "MESS_BANDS", "binary_map", "match_variables", "novel_area_sums",
+__all__ = ["BINARY_CATEGORIES", "CELL_BATCH", "MESS_BANDS", "binary_map", "map_cells", "match_variables", "novel_area_sums",
            "novel_share", "pointprocess_table", "share_of",
            "load_projection_model", "project_file", "project_mess", "project_suitability", "projection_tags",
            "scheduler_context", "training_range"]

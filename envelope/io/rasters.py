@@ -155,7 +155,10 @@ def _window_chunks(chunks, reader, block_shape) -> tuple:
     """(band, y, x) chunks for a window reader from ``"auto"``, a dict by dim name or a tuple.
 
     ``"auto"`` reads every band of a window together, in windows of whole file blocks
-    sized by dask's ``array.chunk-size``.
+    sized by dask's ``array.chunk-size``. Sizes given by dim name of at least one file
+    block are rounded to whole blocks (a window that cuts a compressed tile or strip
+    makes GDAL decompress it once per window), and a file stored in strips is read full
+    width; smaller sizes are taken as given.
     """
     from dask.array.core import normalize_chunks
 
@@ -164,8 +167,20 @@ def _window_chunks(chunks, reader, block_shape) -> tuple:
         return normalize_chunks((-1, "auto", "auto"), shape=shape, dtype=reader.dtype,
                                 previous_chunks=(shape[0],) + tuple(block_shape))
     if isinstance(chunks, dict):
-        spec = (chunks.get("band", chunks.get("variable", -1)), chunks.get("y", "auto"), chunks.get("x", "auto"))
-        return normalize_chunks(spec, shape=shape, dtype=reader.dtype,
+        band = chunks.get("band", chunks.get("variable", -1))
+        (block_y, block_x), (height, width) = block_shape, shape[1:]
+        y, x = chunks.get("y", "auto"), chunks.get("x", "auto")
+        strips = block_x >= width and block_y < block_x
+        if isinstance(x, int) and x > 0:
+            if strips and x < width:
+                # full rows, and as many of them as the requested window holds cells
+                y = max(1, y * x // width) if isinstance(y, int) and y > 0 else y
+                x = width
+            elif x >= block_x:
+                x = round(x / block_x) * block_x
+        if isinstance(y, int) and y >= block_y:
+            y = round(y / block_y) * block_y
+        return normalize_chunks((band, y, x), shape=shape, dtype=reader.dtype,
                                 previous_chunks=(shape[0],) + tuple(block_shape))
     return normalize_chunks(chunks, shape=shape, dtype=reader.dtype)
 
@@ -399,8 +414,8 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
                                                        combine_attrs="drop_conflicts")
     if rename:
         stack = stack.assign_coords(variable=[rename.get(str(n), str(n)) for n in stack["variable"].values])
-    if variables is not None:
-        stack = stack.sel(variable=list(variables))
+    if variables is not None and [str(v) for v in stack["variable"].values] != list(variables):
+        stack = stack.sel(variable=list(variables))  # (a no-op selection would copy every block)
     stack.name = "climate"
     stack.attrs.pop("band_tags", None)
     return stack.rio.write_crs(parts[0].rio.crs)

@@ -301,3 +301,24 @@ def test_writer_is_atomic(tmp_path, suffix):
         write_raster(broken, tmp_path / f"x{suffix}")
     # Common practice, no source: nothing half-written, no temporary file left behind
     assert list(tmp_path.iterdir()) == []
+
+
+def test_read_windows_follow_file_blocks(tmp_path):
+    # Source: the file's own block layout as rasterio reports it (GDAL block_shapes)
+    from envelope.io.rasters import open_climate
+
+    data = RNG.normal(size=(2, 300, 700)).astype("float32")
+    tiled = tmp_path / "tiled.tif"
+    with rasterio.open(tiled, "w", driver="GTiff", width=700, height=300, count=2, dtype="float32", crs="EPSG:4326",
+                       transform=from_origin(-150.0, 45.0, 0.1, 0.1), tiled=True, blockxsize=128,
+                       blockysize=128) as dst:
+        dst.write(data)
+    chunks = open_climate(tiled, chunks={"y": 200, "x": 300}).chunks
+    assert chunks[0] == (2,) and set(chunks[1][:-1]) == {256} and set(chunks[2][:-1]) == {256}
+    assert open_climate(tiled, chunks={"y": 50, "x": 60}).chunks[1][0] == 50  # below one block: as given
+    stripped = _tif(tmp_path / "strips.tif", data)  # GDAL's default layout: strips of whole rows
+    with rasterio.open(stripped) as src:
+        assert src.block_shapes[0][1] == 700
+    chunks = open_climate(stripped, chunks={"y": 100, "x": 350}).chunks
+    assert chunks[2] == (700,) and chunks[1][0] == 50  # same cells per window, full rows
+    np.testing.assert_array_equal(open_climate(stripped, chunks={"y": 100, "x": 350}).values, data)
