@@ -200,9 +200,12 @@ def call(kind, **args):
 
 # ----------------------------------------------------------------------------- main
 def repeated(kind, repeats, **args):
-    """Run a measurement ``repeats`` times (fresh subprocess each); the run with the median
-    wall time, plus every time and the largest peak."""
-    runs = [call(kind, **args) for _ in range(repeats)]
+    """Run a measurement ``repeats`` times (fresh subprocess each); see :func:`_median_run`."""
+    return _median_run([call(kind, **args) for _ in range(repeats)])
+
+
+def _median_run(runs):
+    """The run with the median wall time, with every time and the largest peak."""
     times = [r["seconds"] for r in runs]
     median = sorted(runs, key=lambda r: r["seconds"])[len(runs) // 2]
     return {**median, "seconds": float(np.median(times)), "all_seconds": times,
@@ -248,7 +251,15 @@ def main():
     rows = []
     for name in a.methods.split(","):
         model = models[name]["path"]
-        r = repeated("project", a.repeats, model=model, stack=str(stack), out=str(work / f"suit_{name}.tif"))
+        sizes = a.ref_cells if name.startswith("pointprocess") or name == "ensemble" else \
+            [a.tree_ref_cells // 2, a.tree_ref_cells]
+        # streamed and in-memory runs alternate, so a drift in machine speed during the
+        # benchmark hits both alike
+        streamed, refs = [], []
+        for _ in range(a.repeats):
+            streamed.append(call("project", model=model, stack=str(stack), out=str(work / f"suit_{name}.tif")))
+            refs.append(call("reference", model=model, stack=str(stack), cells=sizes[1]))
+        r = _median_run(streamed)
         r.update(method=name, kind="streamed", cells=cells, cells_per_s=cells / r["seconds"])
         rows.append(r)
         if name == "pointprocess":
@@ -256,17 +267,17 @@ def main():
                          mess=str(work / "mess_pp.tif"))
             r.update(method=name + "+mess", kind="streamed", cells=cells, cells_per_s=cells / r["seconds"])
             rows.append(r)
-        sizes = a.ref_cells if name.startswith("pointprocess") or name == "ensemble" else \
-            [a.tree_ref_cells // 2, a.tree_ref_cells]
-        refs = [call("reference", model=model, stack=str(stack), cells=n) for n in sizes]
-        # peak(N) = base + slope * N, fitted through the two runs, extrapolated to the full grid
-        slope = (refs[1]["peak_mib"] - refs[0]["peak_mib"]) / (refs[1]["cells"] - refs[0]["cells"])
-        base = refs[1]["peak_mib"] - slope * refs[1]["cells"]
-        rows.append({"method": name, "kind": "in-memory predict_proba", "cells": refs[1]["cells"],
-                     "seconds": refs[1]["seconds"], "cells_per_s": refs[1]["cells"] / refs[1]["seconds"],
-                     "peak_mib": refs[1]["peak_mib"], "peak_mib_full_grid_extrapolated": base + slope * cells,
+        small = call("reference", model=model, stack=str(stack), cells=sizes[0])
+        big = _median_run(refs)
+        # peak(N) = base + slope * N, fitted through the two sizes, extrapolated to the full grid
+        slope = (big["peak_mib"] - small["peak_mib"]) / (big["cells"] - small["cells"])
+        base = big["peak_mib"] - slope * big["cells"]
+        rows.append({"method": name, "kind": "in-memory predict_proba", "cells": big["cells"],
+                     "seconds": big["seconds"], "all_seconds": big["all_seconds"],
+                     "cells_per_s": big["cells"] / big["seconds"],
+                     "peak_mib": big["peak_mib"], "peak_mib_full_grid_extrapolated": base + slope * cells,
                      "memory_formula": f"{base:.0f} MiB + {slope * 1e6:.1f} MiB per million cells",
-                     "seconds_full_grid_extrapolated": cells / (refs[1]["cells"] / refs[1]["seconds"])})
+                     "seconds_full_grid_extrapolated": cells / (big["cells"] / big["seconds"])})
         print(f"  done {name} ({time.perf_counter() - t_start:.0f} s)", file=sys.stderr, flush=True)
     results["runs"] = rows
     flat = []
@@ -309,7 +320,7 @@ def _report(res):
         else:
             ratio = f"{'':>9}"
             s = streamed[r["method"]]
-            note = (f"full grid ~{r['peak_mib_full_grid_extrapolated'] / 1024:.1f} GiB, ~{r['seconds_full_grid_extrapolated']:.0f} s "
+            note = (f"runs {', '.join(f'{t:.2f}' for t in r['all_seconds'])}; full grid ~{r['peak_mib_full_grid_extrapolated'] / 1024:.1f} GiB, ~{r['seconds_full_grid_extrapolated']:.0f} s "
                     f"({r['memory_formula']}); streamed is {s['cells_per_s'] / r['cells_per_s']:.1f}x the throughput "
                     f"at {s['peak_mib'] / r['peak_mib_full_grid_extrapolated']:.3f} of the memory")
         print(f"{r['method']:<20}{r['kind']:<26}{r['cells'] / 1e6:>9.2f}M{r['seconds']:>8.2f}"

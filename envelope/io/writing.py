@@ -17,7 +17,13 @@ from envelope.errors import InputError
 from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.rasters import GEOTIFF_SUFFIXES, _encode
 
-__all__ = ["DEFLATE_LEVEL", "RasterOutput", "write_raster", "write_rasters"]
+__all__ = ["DEFLATE_LEVEL", "WRITE_CACHE_MB", "RasterOutput", "write_raster", "write_rasters"]
+
+#: GDAL block cache (MB) while rasters are staged and converted. Dirty blocks of the
+#: staging file sit in this cache until it is full, so with GDAL's default (5 % of RAM)
+#: peak memory would grow with the output up to that size; 64 MB keeps it flat and was
+#: no slower (bench/README.md).
+WRITE_CACHE_MB = 64
 
 #: zlib level of GeoTIFF tiles. Level 1 is about twice as fast as GDAL's default 6 for
 #: files only a few per cent larger on suitability-like grids (bench/README.md).
@@ -176,8 +182,11 @@ def write_rasters(outputs, *, overwrite=False, also=(), progress=None) -> tuple:
     paths = [p.path for p in prepared]
     if len({os.path.abspath(p) for p in paths}) != len(paths):
         raise InputError(f"outputs: the same file is given twice ({', '.join(map(str, paths))})")
+    import rasterio
+
     on_cluster = _on_cluster()
-    with atomic_outputs(paths, overwrite=overwrite) as tmps, contextlib.ExitStack() as stages:
+    with (rasterio.Env(GDAL_CACHEMAX=WRITE_CACHE_MB), atomic_outputs(paths, overwrite=overwrite) as tmps,
+          contextlib.ExitStack() as stages):
         also_values = ()
         if on_cluster:
             # file handles and locks cannot travel to dask.distributed workers: compute the
