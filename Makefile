@@ -20,8 +20,12 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(PY) -m pytest -q
 
+# Every benchmark in turn (about 30 minutes on 2 cores); see bench/README.md.
 bench: $(STAMP)
-	$(PY) -m bench
+	$(PY) bench/bench_spread.py
+	$(PY) bench/bench_fit.py
+	$(PY) bench/bench_project.py
+	$(PY) bench/bench_target.py
 
 # Regenerate the lock after changing dependencies in pyproject.toml.
 lock: $(STAMP)
