@@ -7,6 +7,19 @@ import click
 from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
 
 
+def _class_codes(ctx, param, value):
+    if value is None:
+        return None
+    try:
+        codes = [int(v) for v in value.split(",") if v.strip()]
+    except ValueError:
+        raise click.BadParameter(f"{value!r}: expected comma-separated integer class codes, e.g. 4,5",
+                                 ctx=ctx, param=param) from None
+    if not codes:
+        raise click.BadParameter(f"{value!r} holds no class code; give e.g. 4,5", ctx=ctx, param=param)
+    return codes
+
+
 # the reach-model options a study run supplies; giving one together with --study is an error
 _STUDY_SUPPLIED = ("now", "futures", "years", "scenario_table", "habitat", "classes", "align_habitat", "start",
                    "kernel", "mean_distance_km", "shape", "now_year", "step_years", "rate", "threshold",
@@ -27,7 +40,14 @@ _STUDY_SUPPLIED = ("now", "futures", "years", "scenario_table", "habitat", "clas
 @click.option("--objective", type=click.Choice(["mean", "worst"]), default="mean", show_default=True,
               help="With several climate paths: the mean added reachable area over paths, or its minimum.")
 @click.option("--candidates", required=True, type=click.Path(exists=True, dir_okay=False),
-              help="Raster of cells that could become habitat (nonzero = candidate).")
+              help="Raster of cells that could become habitat (nonzero = candidate), or a land-cover raster "
+                   "with --candidate-classes.")
+@click.option("--candidate-classes", callback=_class_codes, metavar="C1,C2", default=None,
+              help="Land-cover codes that could be restored: --candidates is then a land-cover raster and its "
+                   "cells of these classes are the candidates.")
+@click.option("--max-patch-km2", type=float, default=None, metavar="KM2",
+              help="Cut connected candidate areas larger than this into pieces of at most this area "
+                   "(default: each connected area is one patch).")
 @click.option("--budget-km2", required=True, type=float, help="Total area of patches that may be restored (km²).")
 @click.option("--cost", type=click.Path(exists=True, dir_okay=False), default=None,
               help="Cost per cell; patches are ranked by gain per unit cost (default: per km²).")
@@ -47,7 +67,8 @@ _STUDY_SUPPLIED = ("now", "futures", "years", "scenario_table", "habitat", "clas
 @click.pass_context
 def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years,
            now_year, step_years, rate, threshold, persistence_years, scenario_table, study, run_dir, objective,
-           candidates, budget_km2, cost, budget_cost, quality, random_draws, max_evaluations, seed, out, table,
+           candidates, candidate_classes, max_patch_km2, budget_km2, cost, budget_cost, quality, random_draws,
+           max_evaluations, seed, out, table,
            summary, overwrite):
     """Rank candidate restoration patches by the reachable range they add by the horizon.
 
@@ -77,6 +98,7 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
     """
     import time
 
+    import numpy as np
     from rich.console import Console
 
     from envelope.errors import InputError
@@ -103,7 +125,14 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
         model = _from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
                               mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years)
     grid, grid_name = model["now"], model["now_name"]
-    cand = open_layer(candidates)
+    if candidate_classes is None:
+        cand = open_layer(candidates)
+    else:
+        from envelope.reachable_gain import candidates_from_classes
+
+        codes = open_layer(candidates, categorical=True)
+        cand = codes.copy(data=candidates_from_classes(codes, candidate_classes,
+                                                       name=f"--candidates {candidates}").astype(np.float32))
     check_same_grid(grid, cand, ref_name=grid_name, other_name=f"--candidates {candidates}")
     cost_layer = None
     if cost:
@@ -118,10 +147,12 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
                                     cost=cost_layer, budget_cost=budget_cost, quality=quality_value,
                                     objective=objective, now_year=model["now_year"], step_years=model["step_years"],
                                     rate=model["rate"], persistence_years=model["persistence_years"],
-                                    random_draws=random_draws, seed=seed, max_evaluations=max_evaluations)
+                                    random_draws=random_draws, seed=seed, max_evaluations=max_evaluations,
+                                    max_patch_km2=max_patch_km2)
     result.summary["seconds"] = round(time.perf_counter() - t0, 3)
     result.summary["start"] = model["start_info"]
-    result.summary["inputs"] = {**model["inputs"], "candidates": candidates, "cost": cost,
+    result.summary["inputs"] = {**model["inputs"], "candidates": candidates, "candidate_classes": candidate_classes,
+                                "cost": cost,
                                 "quality": None if isinstance(quality_value, float) else quality}
     written = write_target_outputs(result, out, table, summary, overwrite=overwrite, tags={"software": "envelope"})
     _print(result, written)

@@ -10,12 +10,12 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.kernels.change import normal_vector_sums, position_from_vector
-from envelope.kernels.fragmentation import label_patches
+from envelope.kernels.fragmentation import label_patches, split_patches
 from envelope.kernels.transient import ClimatePath, run_transient
 from envelope.reach import DispersalSettings, build_operator, habitat_array, occupied_start
 
-__all__ = ["CandidatePatches", "ReachGain", "candidate_patches", "restoration_quality", "OBJECTIVES",
-           "SINGLE_PATH_NAME"]
+__all__ = ["CandidatePatches", "ReachGain", "candidate_patches", "candidates_from_classes", "restoration_quality",
+           "OBJECTIVES", "SINGLE_PATH_NAME"]
 
 #: How the gains under several climate paths are combined into one objective.
 OBJECTIVES = ("mean", "worst")
@@ -36,9 +36,37 @@ class CandidatePatches:
     cells: list              # per patch: flat indices of its cells
 
 
+def candidates_from_classes(codes, classes, *, name="--candidates") -> np.ndarray:
+    """Candidate mask (bool) from a land-cover raster: the cells whose code is in ``classes``.
+
+    ``codes`` is the raster's values (integer codes; NaN or nodata never match). An error
+    names the codes the raster holds when none of ``classes`` is found.
+    """
+    values = np.asarray(getattr(codes, "values", codes))
+    wanted = [int(c) for c in classes]
+    if not wanted:
+        raise InputError(f"{name}: no land-cover class given; expected restorable class codes, e.g. 4,5")
+    if values.dtype.kind == "f":
+        finite = values[np.isfinite(values)]
+        if finite.size and not np.array_equal(finite, np.round(finite)):
+            raise InputError(f"{name}: holds non-integer values (e.g. {finite[finite != np.round(finite)][0]:g}); "
+                             "with class codes expected a land-cover raster of integer codes")
+    mask = np.isin(values, wanted)
+    if not mask.any():
+        present = np.unique(values[np.isfinite(values)] if values.dtype.kind == "f" else values)
+        shown = ", ".join(f"{v:g}" for v in present[:20]) + (" ..." if present.size > 20 else "")
+        raise InputError(f"{name}: no cell of class {', '.join(map(str, wanted))} (the raster holds codes {shown})")
+    return mask
+
+
 def candidate_patches(candidates, cell_area, lon, lat, *, cost=None, name="--candidates",
-                      cost_name="--cost") -> CandidatePatches:
+                      cost_name="--cost", max_patch_km2=None) -> CandidatePatches:
     """Group nonzero candidate cells into 4-connected patches with area, cost and centroid.
+
+    With ``max_patch_km2`` a large connected area is cut into pieces along a square block
+    grid whose blocks hold at most that area (sized on the largest cell, so on geographic
+    grids the pieces of smaller, poleward cells are smaller still), so each patch is a site
+    of a size one project can restore (:func:`envelope.kernels.fragmentation.split_patches`).
 
     The centroid is the area-weighted mean of the cells' surface normals (n-vectors),
     turned back into longitude and latitude, so patches across the antimeridian or near a
@@ -54,7 +82,17 @@ def candidate_patches(candidates, cell_area, lon, lat, *, cost=None, name="--can
     mask = np.isfinite(cand) & (cand != 0)
     if not mask.any():
         raise InputError(f"{name}: no candidate cell (no nonzero value); expected cells that could become habitat")
-    labels, n = label_patches(mask, connectivity=4)
+    if max_patch_km2 is None:
+        labels, n = label_patches(mask, connectivity=4)
+    else:
+        largest = float(np.nanmax(np.asarray(cell_area, dtype=np.float64)[mask]))
+        if not (max_patch_km2 > 0 and math.isfinite(max_patch_km2)):
+            raise InputError(f"--max-patch-km2 must be a number > 0, got {max_patch_km2!r}")
+        if max_patch_km2 < largest:
+            raise InputError(f"--max-patch-km2 {max_patch_km2:g} is smaller than one candidate cell "
+                             f"({largest:.4g} km²); expected at least one cell's area")
+        side = int(math.floor(math.sqrt(max_patch_km2 / largest)))
+        labels, n = split_patches(mask, side, side, connectivity=4)
     areas = np.asarray(cell_area, dtype=np.float64).ravel()
     flat = labels.ravel()
     area_km2 = np.bincount(flat, weights=areas, minlength=n + 1)[1:]

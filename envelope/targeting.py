@@ -156,7 +156,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
                        settings: DispersalSettings, cost=None, budget_cost=None, quality=1.0,
                        objective: str = "mean", now_year: float = 2020, step_years: float = 1.0,
                        rate: float = 1.0, persistence_years: float = 0.0, random_draws: int = 10, seed: int = 0,
-                       max_evaluations: int = 2000, cache: bool = True) -> TargetResult:
+                       max_evaluations: int = 2000, cache: bool = True, max_patch_km2=None) -> TargetResult:
     """Rank candidate restoration patches by the reachable range (km²) they add by the horizon.
 
     Parameters
@@ -167,7 +167,11 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
         One climate path (suitability at each horizon), or several named paths (e.g.
         pathway × climate model); the objective then combines their gains.
     candidates : DataArray (y, x)
-        Nonzero where a cell could become habitat.
+        Nonzero where a cell could become habitat (see
+        :func:`envelope.reachable_gain.candidates_from_classes` for land-cover codes).
+    max_patch_km2 : float, optional
+        Cut connected candidate areas larger than this into pieces of at most this area
+        (:func:`envelope.reachable_gain.candidate_patches`); default: whole components.
     budget_km2 : float
         Total true area of restored patches allowed (always binding).
     cost : DataArray (y, x), optional
@@ -203,7 +207,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
     areas = np.asarray(cell_area_km2(now).values, dtype=np.float64)
     lat, lon = cell_lonlat(now)
     patches = candidate_patches(np.asarray(candidates.values), areas, lon, lat,
-                                cost=None if cost is None else np.asarray(cost.values))
+                                cost=None if cost is None else np.asarray(cost.values), max_patch_km2=max_patch_km2)
     model = ReachGain(now, futures, habitat, start, patches, threshold=threshold, settings=settings,
                       quality=quality, objective=objective, now_year=now_year, step_years=step_years, rate=rate,
                       persistence_years=persistence_years, cell_area_km2=areas, cache=cache)
@@ -236,6 +240,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
         "nearest_baseline_gain_km2": nearest_gain,
         "objective": objective,
         "budget_km2": float(budget_km2),
+        "max_patch_km2": None if max_patch_km2 is None else float(max_patch_km2),
         "budget_cost": budget_cost,
         "n_candidate_patches": patches.n,
         "n_chosen": len(rows),

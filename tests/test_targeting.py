@@ -286,3 +286,33 @@ def test_bad_objective_and_climate_paths():
         ReachGain(now, {}, hab, start, patches, **KW)
     with pytest.raises(InputError, match="'early': horizon year 2010 is not after the start year 2020"):
         ReachGain(now, {"early": [(2010, futures[0][1])]}, hab, start, patches, **KW)
+
+
+def test_max_patch_area_splits_large_candidates():
+    # Analytic: pieces never exceed the cap; together they are exactly the candidate cells
+    now, futures, hab, start, cand = landscape()
+    from envelope.grids import cell_area_km2
+    from envelope.reach import cell_lonlat
+
+    areas = np.asarray(cell_area_km2(now).values)
+    lat, lon = cell_lonlat(now)
+    whole = candidate_patches(cand.values, areas, lon, lat)
+    cap = 20 * areas.max()
+    split = candidate_patches(cand.values, areas, lon, lat, max_patch_km2=cap)
+    assert split.n > whole.n and split.area_km2.max() <= cap * (1 + 1e-12)
+    assert split.area_km2.sum() == pytest.approx(whole.area_km2.sum(), rel=1e-12)
+    np.testing.assert_array_equal(split.labels > 0, whole.labels > 0)
+    with pytest.raises(InputError, match="smaller than one candidate cell"):
+        candidate_patches(cand.values, areas, lon, lat, max_patch_km2=areas.max() / 2)
+
+
+def test_candidates_from_land_cover_classes():
+    # Common practice, no source: restorable land-cover classes mark the candidate cells
+    from envelope.reachable_gain import candidates_from_classes
+
+    codes = np.array([[1, 4, 4], [5, 0, 4]], dtype=np.uint8)
+    np.testing.assert_array_equal(candidates_from_classes(codes, [4, 5]), [[False, True, True], [True, False, True]])
+    with pytest.raises(InputError, match=r"no cell of class 7 \(the raster holds codes 0, 1, 4, 5\)"):
+        candidates_from_classes(codes, [7])
+    with pytest.raises(InputError, match="non-integer values"):
+        candidates_from_classes(np.array([[0.5, 1.0]]), [1])

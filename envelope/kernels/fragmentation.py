@@ -10,6 +10,7 @@ from envelope.errors import InputError
 __all__ = [
     "CONNECTIVITIES",
     "label_patches",
+    "split_patches",
     "patch_areas",
     "patch_statistics",
     "effective_mesh_size",
@@ -60,6 +61,34 @@ def _cell_area_grid(cell_area, shape):
 
 
 # --------------------------------------------------------------------------- patches
+
+
+def split_patches(mask, block_rows: int, block_cols: int, *, connectivity=4):
+    """Label connected patches of ``mask`` that never cross the lines of a block grid.
+
+    The grid is cut into blocks of ``block_rows`` x ``block_cols`` cells from the top-left
+    corner; a patch is a connected group of True cells inside one block, so no patch holds
+    more than one block of cells. Used to break large candidate areas into pieces of a
+    size a restoration project can take on.
+
+    Returns
+    -------
+    labels : ndarray of int, shape of ``mask``; 0 outside, 1..n inside
+    n_patches : int
+    """
+    mask = _check_mask(mask, name="mask")
+    if block_rows < 1 or block_cols < 1:
+        raise InputError(f"block size must be at least 1 x 1 cells, got {block_rows} x {block_cols}")
+    # an empty row (column) after every block keeps blocks from touching; label, then drop it
+    rows = np.arange(block_rows, mask.shape[0], block_rows)
+    cols = np.arange(block_cols, mask.shape[1], block_cols)
+    spread = np.insert(np.insert(mask, rows, False, axis=0), cols, False, axis=1)
+    labels, n = label_patches(spread, connectivity=connectivity)
+    keep_rows = np.ones(spread.shape[0], dtype=bool)
+    keep_rows[rows + np.arange(rows.size)] = False
+    keep_cols = np.ones(spread.shape[1], dtype=bool)
+    keep_cols[cols + np.arange(cols.size)] = False
+    return labels[keep_rows][:, keep_cols], n
 
 
 def label_patches(habitat_mask, *, connectivity=4):

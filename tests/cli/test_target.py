@@ -237,3 +237,56 @@ def test_study_option_errors(inputs, tmp_path, extra, phrase):
             "--out", str(out / "p.tif"), "--table", str(out / "p.csv"), "--summary", str(out / "t.json")]
     result = CliRunner().invoke(cli, argv)
     failed_cleanly(result, out, phrase)
+
+
+def _land_cover(tmp_path, cand_path):
+    """Land cover on the test grid: code 4 where the candidates are, 1 elsewhere."""
+    cand = open_layer(cand_path).values
+    codes = np.where(cand > 0, 4, 1).astype("uint8")
+    p = tmp_path / "cover.tif"
+    write_raster(layer(codes.astype("float32")).rename("cover"), p, dtype="uint8", nodata=0)
+    return p
+
+
+def test_candidates_from_land_cover_classes_and_patch_cap(inputs, tmp_path):
+    # Common practice, no source: restorable classes of a land-cover raster give the same
+    # candidates as the 0/1 raster; a patch cap cuts them into more, smaller patches
+    cover = _land_cover(tmp_path, inputs["cand"])
+    a, b = tmp_path / "a", tmp_path / "b"
+    a.mkdir()
+    b.mkdir()
+    plain = CliRunner().invoke(cli, args(inputs, a, budget="2000"))
+    by_class = CliRunner().invoke(cli, args(inputs, b, "--candidate-classes", "4", budget="2000", cand=cover))
+    assert plain.exit_code == 0 and by_class.exit_code == 0, by_class.output
+    sa, sb = (json.loads((d / "target.json").read_text()) for d in (a, b))
+    assert sb["n_candidate_patches"] == sa["n_candidate_patches"]
+    assert sb["reachable_gain_km2"] == pytest.approx(sa["reachable_gain_km2"], rel=1e-12)
+    assert sb["inputs"]["candidate_classes"] == [4]
+    c = tmp_path / "c"
+    c.mkdir()
+    capped = CliRunner().invoke(cli, args(inputs, c, "--candidate-classes", "4", "--max-patch-km2", "300",
+                                          budget="2000", cand=cover))
+    assert capped.exit_code == 0, capped.output
+    sc = json.loads((c / "target.json").read_text())
+    assert sc["n_candidate_patches"] > sa["n_candidate_patches"] and sc["max_patch_km2"] == 300
+    assert (pd.read_csv(c / "priority.csv")["area_km2"] <= 300 + 1e-9).all()
+
+
+@pytest.mark.parametrize("extra, phrase", [
+    (["--candidate-classes", "9"], "no cell of class 9"),
+    (["--max-patch-km2", "0.001"], "smaller than one candidate cell"),
+])
+def test_candidate_class_and_patch_cap_errors(inputs, tmp_path, extra, phrase):
+    cover = _land_cover(tmp_path, inputs["cand"])
+    out = tmp_path / "out"
+    out.mkdir()
+    extra = extra if "--candidate-classes" in extra else ["--candidate-classes", "4", *extra]
+    failed_cleanly(CliRunner().invoke(cli, args(inputs, out, *extra, cand=cover)), out, phrase)
+
+
+def test_candidate_classes_must_be_codes(inputs, tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    result = CliRunner().invoke(cli, args(inputs, out, "--candidate-classes", "farmland"))
+    assert result.exit_code == 2 and "expected comma-separated integer class codes" in result.output
+    assert list(out.iterdir()) == []

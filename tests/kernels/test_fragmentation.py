@@ -114,3 +114,32 @@ def test_bad_inputs():
         fr.patch_areas(np.full((3, 3), 0.5), 1.0)
     with pytest.raises(InputError, match="> 0"):
         fr.patch_areas(np.ones((2, 2), bool), np.array([1.0, 0.0]))
+
+
+def test_split_patches_blocks():
+    # Analytic: a full 10 x 10 grid cut into 4 x 4 blocks gives 3 x 3 pieces of 16, 8 and 4 cells
+    from envelope.kernels.fragmentation import split_patches
+
+    labels, n = split_patches(np.ones((10, 10), dtype=bool), 4, 4)
+    sizes = sorted(np.bincount(labels.ravel())[1:].tolist())
+    assert n == 9 and sizes == [4, 8, 8, 8, 8, 16, 16, 16, 16]
+    # every piece lies in one block
+    for piece in range(1, n + 1):
+        rows, cols = np.nonzero(labels == piece)
+        assert len(set(rows // 4)) == 1 and len(set(cols // 4)) == 1
+
+
+def test_split_patches_keeps_connectivity_inside_blocks():
+    # Analytic: a U inside one block stays one piece; a bar across a block line becomes two
+    from envelope.kernels.fragmentation import split_patches
+
+    mask = np.zeros((6, 12), dtype=bool)
+    mask[0:3, 0] = mask[2, 0:3] = mask[0:3, 2] = True      # U shape in block (0, 0)
+    mask[4, 3:9] = True                                     # bar crossing the column line at 6
+    labels, n = split_patches(mask, 6, 6)
+    assert n == 3
+    assert len(np.unique(labels[0:3, 0:3][mask[0:3, 0:3]])) == 1
+    assert labels[4, 5] != labels[4, 6] and labels[4, 5] > 0 and labels[4, 6] > 0
+    np.testing.assert_array_equal(labels > 0, mask)
+    with pytest.raises(InputError, match="at least 1 x 1"):
+        split_patches(mask, 0, 3)
