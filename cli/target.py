@@ -72,7 +72,9 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
            summary, overwrite):
     """Rank candidate restoration patches by the reachable range they add by the horizon.
 
-    Candidate cells are grouped into 4-connected patches. Patches are chosen by lazy
+    Candidate cells (nonzero cells of --candidates, or its cells of the restorable
+    --candidate-classes of a land-cover raster) are grouped into 4-connected patches, cut
+    to at most --max-patch-km2 when given. Patches are chosen by lazy
     greedy (CELF): each step restores the patch with the largest gain in newly suitable
     area reached by the horizon (deterministic `envelope reach` runs) per unit cost,
     until the area budget (and --budget-cost) is spent. Random and nearest-first patch
@@ -95,6 +97,9 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
             --out priority.tif --table priority.csv --summary target.json
       $ envelope target --study sample_grids/study.toml --run-dir demo-run --candidates restorable.tif \\
             --budget-km2 300 --out priority.tif --table priority.csv --summary target.json
+      $ envelope target --study sample_grids/study.toml --run-dir demo-run \\
+            --candidates sample_grids/demo/landcover.tif --candidate-classes 4 --max-patch-km2 400 \\
+            --budget-km2 1500 --out priority.tif --table priority.csv --summary target.json
     """
     import time
 
