@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from envelope.errors import InputError
 
-__all__ = ["PERCENTILE_LEVELS", "MessReference", "reference_from_training", "mess", "mess_cells"]
+__all__ = ["PERCENTILE_LEVELS", "CountingTable", "MessReference", "count_below", "position_among",
+           "reference_from_training", "mess", "mess_cells"]
 
 #: Percentile levels kept per variable for the model file's description of the training climate.
 PERCENTILE_LEVELS = (0.0, 1.0, 5.0, 10.0, 25.0, 50.0, 75.0, 90.0, 95.0, 99.0, 100.0)
@@ -80,6 +82,38 @@ class MessReference:
                    percentile_levels=tuple(data.get("percentile_levels", PERCENTILE_LEVELS)),
                    percentiles=None if pct is None else np.asarray(pct, dtype=np.float64).T,
                    n_source=int(data.get("n_source", values.shape[0])))
+
+    @functools.cached_property
+    def counting_tables(self) -> list:
+        """Per variable a :class:`CountingTable` for :func:`count_below`, built once."""
+        n = self.values.shape[0]
+        tables = []
+        for i in range(self.n_variables):
+            unique, first = np.unique(self.values[:, i], return_index=True)
+            below = np.r_[first, n]
+            # interior similarity for each possible count, written exactly as the formula
+            # (f = 100 c / n; S = 2 f or 2 (100 - f) = 200 - 2 f, doubling being exact),
+            # so ties between variables break as in the formula
+            two_f = 2.0 * (100.0 * below / n)
+            tables.append(CountingTable(unique, np.r_[unique, np.inf], below, np.minimum(two_f, 200.0 - two_f),
+                                        np.arange(unique.size, dtype=np.float64)))
+        return tables
+
+
+@dataclass(frozen=True)
+class CountingTable:
+    """One variable's sorted distinct reference values and what each position means.
+
+    Position ``g`` (0..m) = number of distinct values below a point; ``below[g]`` = number
+    of reference values below it; ``similarity[g]`` = the MESS similarity S there (valid
+    between the extremes, 0 < g < m).
+    """
+
+    unique: np.ndarray
+    padded: np.ndarray       # unique values, then +inf
+    below: np.ndarray
+    similarity: np.ndarray
+    positions: np.ndarray    # 0.0 .. m-1
 
 
 def reference_from_training(X_ref, *, max_values: int = MAX_REFERENCE_VALUES) -> MessReference:
@@ -200,8 +234,7 @@ def mess_cells(X, reference: MessReference, *, block_cells: int = BLOCK_CELLS):
     if X.ndim != 2 or X.shape[0] != reference.n_variables:
         raise InputError(f"X: shape {X.shape}; expected ({reference.n_variables}, cells) with the "
                          "reference's variables as rows")
-    n_ref = reference.values.shape[0]
-    columns = [np.ascontiguousarray(reference.values[:, i]) for i in range(X.shape[0])]
+    tables = reference.counting_tables
     n = X.shape[1]
     best_all = np.empty(n)
     index_all = np.zeros(n, dtype=np.int64)
@@ -210,24 +243,43 @@ def mess_cells(X, reference: MessReference, *, block_cells: int = BLOCK_CELLS):
         best = best_all[start:stop]
         best.fill(np.inf)
         index = index_all[start:stop]
-        for i, ref in enumerate(columns):
+        for i, table in enumerate(tables):
             p = X[i, start:stop]
-            count = np.searchsorted(ref, p, side="left")  # reference values strictly below p; NaN -> n
-            # 2 f and 2 (100 - f) = 200 - 2 f, rounded exactly as the formula is written
-            # (doubling is exact), so ties between variables break as in the formula
-            s = np.multiply(count, 100.0)
-            s /= n_ref
-            s *= 2.0
-            np.minimum(s, 200.0 - s, out=s)
-            edge = np.flatnonzero((count == 0) | (count == n_ref))
+            g = position_among(table, p)  # distinct reference values below p; NaN -> all
+            s = table.similarity[g]
+            # at or below the minimum (g = 0) or above the maximum (g = m, NaN included)
+            g -= 1
+            edge = np.flatnonzero(g.view(np.uintp) >= table.unique.size - 1)
             if edge.size:
-                s[edge] = _extreme_similarity(p[edge].astype(np.float64), count[edge] == 0,
+                s[edge] = _extreme_similarity(p[edge].astype(np.float64), g[edge] < 0,
                                               float(reference.minimum[i]), float(reference.maximum[i]))
             lower = s < best  # strict: the first variable wins ties; NaN never lower
             np.copyto(index, i, where=lower)
             np.minimum(best, s, out=best)  # NaN propagates: a missing variable makes the cell NaN
         index[np.isnan(best)] = -1
     return best_all, index_all
+
+
+def position_among(table: CountingTable, p) -> np.ndarray:
+    """Number of distinct reference values strictly below each ``p`` (NaN: all of them).
+
+    Climate grids are smooth, so neighbouring cells fall near each other in the reference,
+    and ``numpy.interp`` (whose search starts from the previous cell's answer) finds the
+    fractional position ``t`` among the distinct values about twice as fast as a fresh
+    binary search. ``ceil(t)`` is the count or one less (when rounding puts ``t`` on an
+    integer just above a value); one comparison fixes that, so the result is exact.
+    """
+    t = np.interp(p, table.unique, table.positions)
+    np.fmin(t, table.unique.size, out=t)  # NaN -> m (fmin ignores NaN)
+    np.ceil(t, out=t)
+    g = t.astype(np.intp)
+    g += table.padded[g] < p
+    return g
+
+
+def count_below(table: CountingTable, p) -> np.ndarray:
+    """Reference values strictly below each ``p``: ``searchsorted(reference, p, "left")``."""
+    return table.below[position_among(table, p)]
 
 
 def _extreme_similarity(p, below, lo: float, hi: float) -> np.ndarray:

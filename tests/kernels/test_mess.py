@@ -121,3 +121,37 @@ def test_bad_input():
         reference_from_training(np.full((3, 2), np.nan))
     with pytest.raises(InputError, match="'minimum' is missing"):
         MessReference.from_dict({"values": [[1.0, 2.0]], "maximum": [2.0]})
+
+
+def test_count_below_equals_searchsorted():
+    # Source: numpy.searchsorted(side="left") on the sorted reference (reference library)
+    from envelope.kernels.mess import count_below
+
+    rng = np.random.default_rng(8)
+    R = np.sort(np.r_[rng.normal(size=400).round(2), np.full(30, 0.5), [1e-300, -1e-300]])
+    ref = reference_from_training(R[:, None])
+    table = ref.counting_tables[0]
+    uniq = np.unique(R)
+    p = np.r_[rng.normal(scale=2, size=3000), uniq, np.nextafter(uniq, np.inf), np.nextafter(uniq, -np.inf),
+              [np.inf, -np.inf, np.nan, 0.0, uniq[0] - 1e-12]]
+    smooth = np.sort(rng.normal(size=2000))  # neighbouring cells close together, as on a grid
+    for values in (p, smooth, smooth[::-1], p.astype(np.float32)):
+        expected = np.searchsorted(R, values, side="left")
+        expected[np.isnan(values)] = R.size  # NaN sorts last in numpy
+        np.testing.assert_array_equal(count_below(table, values), expected)
+
+
+def test_mess_cells_variable_major_float32():
+    # Source: mess() on the same cells as a (cells, variables) float64 table
+    from envelope.kernels.mess import mess_cells
+
+    rng = np.random.default_rng(4)
+    R = rng.normal(size=(300, 3)).round(1)
+    X = rng.normal(scale=1.8, size=(3, 5000)).round(1).astype(np.float32)
+    X[1, 7] = np.nan
+    ref = reference_from_training(R)
+    v32, i32 = mess_cells(X, ref, block_cells=777)
+    v64, i64 = mess(X.T.astype(np.float64), ref)
+    np.testing.assert_array_equal(v32, v64)
+    np.testing.assert_array_equal(i32, i64)
+    assert np.isnan(v32[7]) and i32[7] == -1
