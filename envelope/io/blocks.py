@@ -53,15 +53,10 @@ class WindowReader:
         return src
 
     def __getitem__(self, key):
-        from rasterio.windows import Window
-
-        key = key if isinstance(key, tuple) else (key,)
-        key = key + (slice(None),) * (3 - len(key))
-        (b0, b1, _), (y0, y1, _), (x0, x1, _) = (k.indices(n) for k, n in zip(key, self.shape))
+        (b0, b1), window = _band_range_and_window(key, self.shape)
         bands = self.bands[b0:b1]
-        if not bands or y1 <= y0 or x1 <= x0:
-            return np.empty((len(bands), max(y1 - y0, 0), max(x1 - x0, 0)), dtype=self.dtype)
-        window = Window(x0, y0, x1 - x0, y1 - y0)
+        if not bands or window.height <= 0 or window.width <= 0:
+            return np.empty((len(bands), max(window.height, 0), max(window.width, 0)), dtype=self.dtype)
         block = self._dataset().read(bands, window=window, out_dtype=self.dtype)
         if self.categorical:
             return block
@@ -101,10 +96,17 @@ class WindowWriter:
         self.dataset = dataset
 
     def __setitem__(self, key, value):
-        from rasterio.windows import Window
+        (b0, b1), window = _band_range_and_window(key, (self.dataset.count, self.dataset.height,
+                                                        self.dataset.width))
+        self.dataset.write(np.asarray(value), indexes=list(range(b0 + 1, b1 + 1)), window=window)
 
-        b, y, x = key
-        shape = (self.dataset.count, self.dataset.height, self.dataset.width)
-        (b0, b1, _), (y0, y1, _), (x0, x1, _) = (k.indices(n) for k, n in zip((b, y, x), shape))
-        self.dataset.write(np.asarray(value), indexes=list(range(b0 + 1, b1 + 1)),
-                           window=Window(x0, y0, x1 - x0, y1 - y0))
+
+def _band_range_and_window(key, shape):
+    """``(band start, band stop)`` and the rasterio Window of a (band, y, x) slice key
+    (missing trailing slices mean the whole axis)."""
+    from rasterio.windows import Window
+
+    key = key if isinstance(key, tuple) else (key,)
+    key = key + (slice(None),) * (3 - len(key))
+    (b0, b1, _), (y0, y1, _), (x0, x1, _) = (k.indices(n) for k, n in zip(key, shape))
+    return (b0, b1), Window(x0, y0, x1 - x0, y1 - y0)

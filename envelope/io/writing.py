@@ -15,6 +15,7 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_outputs, check_writable
+from envelope.io.blocks import WindowWriter
 from envelope.io.rasters import GEOTIFF_SUFFIXES, _encode
 
 __all__ = ["DEFLATE_LEVEL", "WRITE_CACHE_MB", "RasterOutput", "write_raster", "write_rasters"]
@@ -177,13 +178,12 @@ def write_rasters(outputs, *, overwrite=False, also=(), progress=None) -> tuple:
         The computed values of ``also``.
     """
     import dask
+    import rasterio
 
     prepared = [_prepare(o, overwrite) for o in outputs]
     paths = [p.path for p in prepared]
     if len({os.path.abspath(p) for p in paths}) != len(paths):
         raise InputError(f"outputs: the same file is given twice ({', '.join(map(str, paths))})")
-    import rasterio
-
     on_cluster = _on_cluster()
     with (rasterio.Env(GDAL_CACHEMAX=WRITE_CACHE_MB), atomic_outputs(paths, overwrite=overwrite) as tmps,
           contextlib.ExitStack() as stages):
@@ -198,13 +198,13 @@ def write_rasters(outputs, *, overwrite=False, also=(), progress=None) -> tuple:
         # pass 1: every GeoTIFF and the extra values from one graph (dask arrays only:
         # mixing arrays and Delayed objects in one compute reorders results in dask 2026.8
         # and optimises them apart, which would read shared inputs more than once)
+        # (on a cluster the layers are in memory by now and written as the stages open)
         stores = [_stage_task(prep, tmp, stages) for prep, tmp in zip(prepared, tmps) if not prep.netcdf]
         stores = [t for t in stores if t is not None]
-        if stores or (also and not on_cluster):
+        if not on_cluster:
             with _progress_callback(progress):
-                computed = dask.compute(*stores, *([] if on_cluster else also))
-            if not on_cluster:
-                also_values = tuple(computed[len(stores):])
+                computed = dask.compute(*stores, *also)
+            also_values = tuple(computed[len(stores):])
         # pass 2: NetCDF files through xarray's writer (a second read of shared inputs)
         netcdf = [_netcdf_task(prep, tmp) for prep, tmp in zip(prepared, tmps) if prep.netcdf]
         if netcdf:
@@ -215,7 +215,7 @@ def write_rasters(outputs, *, overwrite=False, also=(), progress=None) -> tuple:
             if prep.netcdf:
                 _netcdf_attributes(tmp, tags)
             else:
-                _finish_geotiff(prep, tmp, tags, stages)
+                _finish_geotiff(prep, tmp, tags)
     return also_values
 
 
@@ -271,13 +271,7 @@ def _stage_task(prep: _Prepared, tmp: Path, stages: contextlib.ExitStack):
     if not isinstance(data, dsa.Array):
         dst.write(np.asarray(data))
         return None
-    return dsa.store(data, _window_writer(dst), lock=threading.Lock(), compute=False)
-
-
-def _window_writer(dst):
-    from envelope.io.blocks import WindowWriter
-
-    return WindowWriter(dst)
+    return dsa.store(data, WindowWriter(dst), lock=threading.Lock(), compute=False)
 
 
 def _remove_stage(stage: Path) -> None:
@@ -293,7 +287,7 @@ def _compress_threads() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict, stages) -> None:
+def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict) -> None:
     """Band names, units and tags on the staged file, then GDAL's COG copy into ``tmp``."""
     import rasterio.shutil
 
