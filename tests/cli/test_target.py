@@ -277,6 +277,7 @@ def test_candidates_from_land_cover_classes_and_patch_cap(inputs, tmp_path):
     (["--max-patch-km2", "0.001"], "smaller than one candidate cell"),
 ])
 def test_candidate_class_and_patch_cap_errors(inputs, tmp_path, extra, phrase):
+    # Common practice, no source: bad input exits 2 with one line naming the option, nothing written
     cover = _land_cover(tmp_path, inputs["cand"])
     out = tmp_path / "out"
     out.mkdir()
@@ -285,6 +286,7 @@ def test_candidate_class_and_patch_cap_errors(inputs, tmp_path, extra, phrase):
 
 
 def test_candidate_classes_must_be_codes(inputs, tmp_path):
+    # Common practice, no source: click's usage error (exit 2) quoting the bad value
     out = tmp_path / "out"
     out.mkdir()
     result = CliRunner().invoke(cli, args(inputs, out, "--candidate-classes", "farmland"))

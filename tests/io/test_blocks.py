@@ -96,4 +96,5 @@ def test_writer_target_with_dask_store(tmp_path):
 def test_reader_accepts_short_keys(tmp_path, key):
     data = RNG.normal(size=(2, 6, 7)).astype("float32")
     reader = WindowReader(_tif(tmp_path / "k.tif", data), [1, 2], shape=(6, 7), dtype=np.float32)
+    # Source: NumPy's own slicing of the same array
     np.testing.assert_array_equal(reader[key], data[key])

@@ -65,6 +65,7 @@ def test_outputs_of_one_graph_read_each_window_once(tmp_path, read_log):
 def test_progress_reports_every_task(tmp_path):
     stack = make_stack(nx=64, ny=64).chunk({"y": 16, "x": 16})
     seen = []
+    # Common practice, no source: a progress report ends with every task done
     write_rasters([RasterOutput(stack, tmp_path / "p.tif")], progress=lambda done, total: seen.append((done, total)))
     assert seen and seen[-1][0] == seen[-1][1] and all(d <= t for d, t in seen)
 
@@ -87,6 +88,7 @@ def test_same_file_twice_refused(tmp_path):
     from envelope.errors import InputError
 
     stack = make_stack()
+    # Common practice, no source: one file cannot hold two outputs; nothing is written
     with pytest.raises(InputError, match="the same file is given twice"):
         write_rasters([RasterOutput(stack, tmp_path / "x.tif"), RasterOutput(stack, tmp_path / "x.tif")])
     assert list(tmp_path.iterdir()) == []
