@@ -8,7 +8,7 @@ The data are a fictional 400 x 400 geographic grid (EPSG:4326, 0.05 degree cells
 1,000 presences are drawn from a known niche (a Gaussian response to 3 of the variables)
 and 10,000 background cells uniformly, all from ``numpy.random.default_rng(0)``.
 
-Each fit follows ``envelope.fitting.fit_model`` step for step from the sampled table on:
+Each fit follows ``envelope.pipelines.fit.fit_model`` step for step from the sampled table on:
 block size from the predictors' autocorrelation (``default_block_km``, as when
 ``--blocks-km`` is not given), ``spatial_blocks`` + ``assign_block_folds`` (5 folds),
 ``cross_validate`` with ``build_estimator`` / ``_group_params``, then the final fit on all
@@ -72,7 +72,7 @@ def make_table():
     import xarray as xr
     from scipy.ndimage import gaussian_filter
 
-    from envelope.occurrences import values_at
+    from envelope.records import values_at
 
     rng = np.random.default_rng(SEED)
     z = np.empty((N_VARS, NY, NX))
@@ -109,7 +109,7 @@ def make_table():
 # ----------------------------------------------------------------------------- one fit
 def make_folds(d):
     """Block size, blocks and folds as ``fit_model`` makes them; seconds of each step."""
-    from envelope import evaluation
+    import envelope.evaluation as evaluation
 
     y, px, py = d["y"], d["px"], d["py"]
     t0 = time.perf_counter()
@@ -125,7 +125,7 @@ def make_folds(d):
 
 def final_fit(method, d, folds):
     """The last step of ``fit_model``: a fresh estimator fitted on every record."""
-    from envelope.fitting import _group_params, build_estimator
+    from envelope.pipelines.fit import _group_params, build_estimator
 
     estimator = build_estimator(method, SEED)
     estimator.fit(d["X"], d["y"], **_group_params(method, folds))
@@ -137,8 +137,8 @@ def fit_once(method, d, *, with_cv=True):
 
     ``with_cv=False`` skips the cross-validation (used for the slow ensemble by default).
     """
-    from envelope import evaluation
-    from envelope.fitting import _group_params, build_estimator
+    import envelope.evaluation as evaluation
+    from envelope.pipelines.fit import _group_params, build_estimator
 
     X, y = d["X"], d["y"]
     folds, out = make_folds(d)

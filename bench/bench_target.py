@@ -5,12 +5,12 @@ Run:  .venv/bin/python bench/bench_target.py [--run-dir DIR] [--repeats 3] [--pa
 
 Data: the fictional demo study (sample_grids/study.toml, 250 x 250 cells of 0.04°). Its
 run folder (today's suitability, per-pathway ensemble means, fitted threshold) is made
-with ``envelope.runner.run_study`` into ``--run-dir`` unless already there (the runner's
+with ``envelope.study.runner.run_study`` into ``--run-dir`` unless already there (the runner's
 cache skips finished steps; not timed). The reach model is the study's: exponential
 kernel, 5 km mean per 5-year step, rate 4, 10 years' persistence, 2020 -> 2050 -> 2080,
 two climate paths (pathways low and high, ensemble means of three climate models), run
 deterministically exactly as ``envelope target --study`` does
-(``envelope.study_run.reach_inputs_from_run``).
+(``envelope.study.layout.reach_inputs_from_run``).
 
 Candidates: a seeded (``numpy.random.default_rng(0)``) layout of ``--patches`` square
 3 x 3-cell patches (about 130 km² each) on land with habitat fraction < 0.5, no two
@@ -44,8 +44,8 @@ SIDE = 3  # patch side in cells
 
 def ensure_run(run_dir: Path):
     """The demo study's run folder (made once; finished steps are skipped)."""
-    from envelope.runner import run_study
-    from envelope.study import load_study
+    from envelope.study.runner import run_study
+    from envelope.study.schema import load_study
 
     study = load_study(STUDY)
     t0 = time.perf_counter()
@@ -86,7 +86,7 @@ def main():
     parser.add_argument("--no-uncached", action="store_true", help="skip the run without the patch-set cache")
     args = parser.parse_args()
 
-    from envelope.study_run import reach_inputs_from_run
+    from envelope.study.layout import reach_inputs_from_run
     from envelope.targeting import target_restoration
 
     print(f"{os.cpu_count()} cores, Python {platform.python_version()}, "

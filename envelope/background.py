@@ -9,7 +9,7 @@ import pandas as pd
 import xarray as xr
 
 from envelope.errors import InputError
-from envelope.occurrences import (
+from envelope.records import (
     EARTH_RADIUS_M,
     NeighbourSearch,
     Records,
@@ -61,7 +61,7 @@ def sample_background(
         Cells where the mask is nonzero (and not NaN) may be drawn.
     buffer_km : float, optional
         Only cells whose centre lies within ``buffer_km`` of a record's cell centre
-        (haversine on a sphere of radius :data:`envelope.occurrences.EARTH_RADIUS_M` on
+        (haversine on a sphere of radius :data:`envelope.records.EARTH_RADIUS_M` on
         geographic grids, Euclidean in projected CRSs). Needs ``records``.
     records : Records or pandas.DataFrame, optional
         Records on this grid (``x``/``y`` in the grid CRS), for ``buffer_km``.

@@ -13,6 +13,7 @@ import numpy as np
 import xarray as xr
 
 from envelope.errors import InputError
+from envelope.provenance import json_ready
 from envelope.kernels.change import (
     CHANGE_CLASSES,
     CHANGE_NODATA,
@@ -267,20 +268,8 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
         mean = {k: (s[0] / s[1] if s[1] > 0 else float("nan")) for k, s in elev_sums.items()}
         summary["mean_elevation_m"] = mean
         summary["elevation_shift_m"] = mean["future"] - mean["now"]
-    return _nan_to_none(summary)
+    return json_ready(summary)
 
-
-def _nan_to_none(value):
-    """Make a summary JSON-safe: NaN/inf become None (JSON null), numpy scalars plain numbers."""
-    if isinstance(value, dict):
-        return {k: _nan_to_none(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_nan_to_none(v) for v in value]
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    return value
 
 
 # --------------------------------------------------------------------------- threshold

@@ -301,7 +301,7 @@ def scheduler_context(address=None):
 
 def load_projection_model(model_file):
     """``(estimator, metadata, method, sha256)`` of a model file (errors name the file)."""
-    from envelope.fitting import file_sha256
+    from envelope.provenance import file_sha256
     from envelope.io.modelfile import load_model, read_manifest
 
     estimator, metadata = load_model(model_file)

@@ -381,8 +381,8 @@ def load_start(path, grid: xr.DataArray, **clean_options):
 
     p = Path(path)
     if p.suffix.lower() in (".csv", ".tsv", ".txt", ".tab"):
-        from envelope.io.occurrences import read_occurrences
-        from envelope.occurrences import clean_occurrences
+        from envelope.io.records import read_occurrences
+        from envelope.records import clean_occurrences
 
         table = read_occurrences(p, x_column=clean_options.pop("x_column", None),
                                  y_column=clean_options.pop("y_column", None), crs=clean_options.get("crs"))
@@ -411,7 +411,7 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
     """
     import json
 
-    from envelope.fitting import json_ready
+    from envelope.provenance import json_text
     from envelope.io.atomic import atomic_output, check_writable
     from envelope.io.writing import write_raster
 
@@ -434,6 +434,6 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
                  categories=REACH_CLASSES, nodata=REACH_NODATA)
     written["classes"] = str(out)
     with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json.dumps(json_ready(result.summary), indent=2, allow_nan=False))
+        tmp.write_text(json_text(result.summary))
     written["summary"] = str(summary_path)
     return written

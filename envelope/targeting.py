@@ -272,7 +272,7 @@ def write_target_outputs(result: TargetResult, out, table_path, summary_path, *,
     """Write the rank raster, the patch table (CSV) and the summary JSON; all checked first, each atomic."""
     import json
 
-    from envelope.fitting import json_ready
+    from envelope.provenance import json_text
     from envelope.io.atomic import atomic_output, check_writable
     from envelope.io.writing import write_raster
 
@@ -283,5 +283,5 @@ def write_target_outputs(result: TargetResult, out, table_path, summary_path, *,
     with atomic_output(table_path, overwrite=overwrite) as tmp:
         result.table.to_csv(tmp, index=False)
     with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json.dumps(json_ready(result.summary), indent=2, allow_nan=False))
+        tmp.write_text(json_text(result.summary))
     return {"priority": str(out), "table": str(table_path), "summary": str(summary_path)}

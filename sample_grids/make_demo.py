@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 from scipy import ndimage
 
-from envelope.demo_data import (
+from envelope.study.demo import (
     CLIMATE_UNITS,
     CLIMATE_VARIABLES,
     DARWIN_CORE_COLUMNS,
@@ -592,7 +592,7 @@ def generate(out: Path):
         "description": "An invented warm-loving ground beetle of open, sunny ground; no real taxon.",
         "niche": NICHE,
         "niche_combination": "product of the responses",
-        "true_suitability": "true_suitability.tif (baseline); envelope.demo_data.true_suitability for any climate",
+        "true_suitability": "true_suitability.tif (baseline); envelope.study.demo.true_suitability for any climate",
         "records": {
             "file": "presences.csv",
             "sampling": "cells drawn with probability proportional to true_suitability x effort (habitat not used)",

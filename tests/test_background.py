@@ -13,7 +13,7 @@ from sklearn.metrics.pairwise import haversine_distances
 from tests.conftest import make_stack
 from envelope.background import sample_background
 from envelope.errors import GridMismatchError, InputError
-from envelope.occurrences import EARTH_RADIUS_M, values_at
+from envelope.records import EARTH_RADIUS_M, values_at
 
 
 def stack_with_holes():

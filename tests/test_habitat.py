@@ -50,7 +50,7 @@ def graticule_area_km2(lon0, lon1, lat0, lat1, n=200):
 
 def test_read_class_table_demo_file():
     # Source: sample_grids/README.md, the land-cover class table (codes 1..7 and their quality).
-    from envelope.demo_data import demo_dir
+    from envelope.study.demo import demo_dir
 
     table = read_class_table(demo_dir() / "landcover_classes.csv")
     assert table == {1: 1.0, 2: 0.6, 3: 0.05, 4: 0.15, 5: 0.3, 6: 0.0, 7: 0.0}
@@ -409,7 +409,7 @@ def test_fragmentation_summary_odd_and_single_band():
 def test_demo_habitat_on_baseline_grid():
     # Source: sample_grids/README.md: habitat.tif and landcover.tif share the baseline grid;
     # the class table covers every code, so mapped land cover holds table qualities only.
-    from envelope.demo_data import demo_dir
+    from envelope.study.demo import demo_dir
     from envelope.io.rasters import open_climate
 
     demo = demo_dir()
@@ -424,7 +424,7 @@ def test_demo_habitat_on_baseline_grid():
 def test_demo_fragments_poleward():
     # Source: sample_grids/README.md: open-ground patches grow 4x fewer and smaller (6 -> 2.5 km
     # median radius) poleward. This checks the diagnostic sees what the demo was built with.
-    from envelope.demo_data import demo_dir
+    from envelope.study.demo import demo_dir
     from envelope.io.rasters import open_layer
 
     demo = demo_dir()

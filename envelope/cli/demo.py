@@ -23,8 +23,8 @@ def demo(out):
       $ envelope demo --out /tmp/demo-run
     """
     from envelope.cli.run import execute, print_results
-    from envelope.demo_data import demo_dir
-    from envelope.study import load_study
+    from envelope.study.demo import demo_dir
+    from envelope.study.schema import load_study
 
     study = load_study(demo_dir().parent / "study.toml")
     results = execute(study, out)

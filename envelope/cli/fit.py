@@ -82,7 +82,7 @@ def fit(presences, climate, out, summary, method, n_background, bias, variables,
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-    from envelope.fitting import FitOptions, fit_model, write_fit_outputs
+    from envelope.pipelines.fit import FitOptions, fit_model, write_fit_outputs
     from envelope.io.atomic import check_writable
     from envelope.io.rasters import open_climate, open_layer
 

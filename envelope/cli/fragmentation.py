@@ -50,7 +50,7 @@ def fragmentation(habitat, classes, grid, align_habitat, band_deg, habitat_thres
     from rich.table import Table
 
     from envelope.errors import InputError
-    from envelope.fitting import json_ready
+    from envelope.provenance import json_text
     from envelope.habitat import fragmentation_by_latitude, fragmentation_summary, load_habitat
     from envelope.io.atomic import atomic_output, check_writable
     from envelope.io.rasters import open_layer
@@ -82,7 +82,7 @@ def fragmentation(habitat, classes, grid, align_habitat, band_deg, habitat_thres
         table.to_csv(tmp, index=False)
     if summary:
         with atomic_output(summary, overwrite=overwrite) as tmp:
-            tmp.write_text(json.dumps(json_ready(result), indent=2, allow_nan=False))
+            tmp.write_text(json_text(result))
 
     console = Console()
     t = Table(title=f"Habitat by {band_deg:g}° latitude band (equator to pole)")

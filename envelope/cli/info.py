@@ -25,7 +25,7 @@ def info(path, as_json):
       $ envelope info sample_grids/demo/baseline.tif
       $ envelope info climate.nc --json > climate.json
     """
-    from envelope.describe import describe_grid
+    from envelope.pipelines.info import describe_grid
 
     summary = describe_grid(path)
     if as_json:

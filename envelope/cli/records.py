@@ -60,9 +60,9 @@ def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, y
           --x-column easting --y-column northing --crs EPSG:3035 --json
     """
     from envelope.io.atomic import atomic_output, check_writable
-    from envelope.io.occurrences import read_occurrences
+    from envelope.io.records import read_occurrences
     from envelope.io.rasters import open_climate
-    from envelope.occurrences import clean_occurrences
+    from envelope.records import clean_occurrences
 
     if out is not None:
         check_writable(out, overwrite)  # refuse before any work is done

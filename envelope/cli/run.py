@@ -19,7 +19,7 @@ def run(study_file, out):
       $ envelope run sample_grids/study.toml --out demo-run
       $ envelope -v run my-study.toml --out results/2026-12
     """
-    from envelope.study import load_study
+    from envelope.study.schema import load_study
 
     study = load_study(study_file)
     results = execute(study, out)
@@ -31,7 +31,7 @@ def execute(study, out):
     from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
     from envelope.projection import scheduler_context
-    from envelope.runner import run_study
+    from envelope.study.runner import run_study
 
     with scheduler_context(study.compute.scheduler), Progress(SpinnerColumn(), TextColumn("{task.description}"),
                                                               TimeElapsedColumn(), console=Console(stderr=True),

@@ -237,8 +237,8 @@ def _from_options(now, futures, years, scenario_table, habitat, classes, align_h
 
 def _from_study(study_file, run_dir) -> dict:
     """The reach model of a finished study run: each pathway's ensemble-mean futures."""
-    from envelope.study import load_study
-    from envelope.study_run import reach_inputs_from_run
+    from envelope.study.schema import load_study
+    from envelope.study.layout import reach_inputs_from_run
 
     study = load_study(study_file)
     model = reach_inputs_from_run(study, run_dir)

@@ -5,7 +5,6 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
-import platform
 import zipfile
 from pathlib import Path
 
@@ -14,6 +13,7 @@ import numpy as np
 from envelope import __version__
 from envelope.errors import InputError, ModelError
 from envelope.io.atomic import atomic_output
+from envelope.provenance import json_plain, software_versions
 
 FORMAT_NAME = "envelope-model"
 FORMAT_VERSION = 1
@@ -25,7 +25,7 @@ PAYLOAD_NAME = "estimator.skops"
 # Python, NumPy arrays and scalars, and scikit-learn estimators/trees it knows are safe).
 # skops refuses anything else, so loading never imports or runs arbitrary code.
 ALLOWED_TYPES = [
-    "envelope.features.FeatureExpander",
+    "envelope.models.features.FeatureExpander",
     "envelope.models.pointprocess.PointProcessModel",
     "envelope.models.percentile.PercentileEnvelope",
     "envelope.models.trees.BoostedTrees",
@@ -37,23 +37,6 @@ ALLOWED_TYPES = [
 ]
 
 
-def _software() -> dict:
-    import scipy
-    import skops
-    import sklearn
-
-    return {"envelope": __version__, "python": platform.python_version(), "numpy": np.__version__,
-            "scipy": scipy.__version__, "scikit-learn": sklearn.__version__, "skops": skops.__version__}
-
-
-def _json_default(obj):
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    if isinstance(obj, np.generic):
-        return obj.item()
-    if isinstance(obj, (Path, _dt.datetime, _dt.date)):
-        return str(obj)
-    raise TypeError(f"{type(obj).__name__} is not JSON-serialisable")
 
 
 def _method_name(estimator) -> str:
@@ -86,7 +69,7 @@ def _check_metadata(estimator, metadata) -> dict:
                          f"{[str(n) for n in fitted_names]}")
     try:
         # round trip through JSON now, so a bad value fails before anything is written
-        return json.loads(json.dumps(metadata, default=_json_default, allow_nan=True))
+        return json.loads(json.dumps(json_plain(metadata), allow_nan=True))
     except TypeError as exc:
         raise InputError(f"metadata: {exc}; expected JSON-like values (str, numbers, lists, dicts)") from None
 
@@ -129,7 +112,7 @@ def save_model(path, estimator, metadata: dict, *, overwrite: bool = False) -> P
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "software": _software(),
+        "software": software_versions(),
         "method": method,
         "estimator": f"{type(estimator).__module__}.{type(estimator).__qualname__}",
         "estimator_params": json.loads(json.dumps(

@@ -10,7 +10,7 @@ from sklearn.metrics import roc_auc_score
 from sklearn.model_selection import GroupKFold, StratifiedKFold
 
 from envelope.errors import InputError, ModelError
-from envelope.features import FeatureExpander
+from envelope.models.features import FeatureExpander
 from envelope.models.base import PresenceBackgroundClassifier
 
 # Multiplier of the default background weight: total background weight = 100 x presences.
@@ -31,7 +31,7 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     slopes are then the IPP slopes and ``intercept_ + log(W)`` (W = total background
     weight) is the IPP intercept per unit of background region.
 
-    The penalised objective, with features ``f`` from :class:`~envelope.features.FeatureExpander`,
+    The penalised objective, with features ``f`` from :class:`~envelope.models.features.FeatureExpander`,
     weights ``w_i`` and ``n_p`` the (weighted) number of presences, is::
 
         (1/n_p) * sum_i w_i * logloss(y_i, intercept + f_i . beta)
@@ -57,7 +57,7 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     Parameters
     ----------
     classes : "auto" or sequence of str, default="auto"
-        Feature classes, see :class:`~envelope.features.FeatureExpander`.
+        Feature classes, see :class:`~envelope.models.features.FeatureExpander`.
     n_knots : int, default=10
         Hinge knots per variable.
     standardize : bool, default=True

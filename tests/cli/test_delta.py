@@ -10,7 +10,7 @@ import xarray as xr
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
-from envelope.demo_data import demo_dir
+from envelope.study.demo import demo_dir
 from envelope.scenarios import read_scenarios
 
 # Source: REFERENCES item 5 inputs (hand-made 12-month series), used as the fine baseline.

@@ -6,7 +6,7 @@ import pytest
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
-from envelope.demo_data import demo_dir
+from envelope.study.demo import demo_dir
 
 DEMO = demo_dir()
 BASE = ["fit", "--presences", str(DEMO / "presences.csv"), "--climate", str(DEMO / "baseline.tif"),

@@ -66,7 +66,7 @@ def test_grid_sets_land_and_connectivity_8(habitat, tmp_path):
 
 def test_demo_land_cover(tmp_path):
     # Source: sample_grids/README.md: the demo's habitat fragments poleward.
-    from envelope.demo_data import demo_dir
+    from envelope.study.demo import demo_dir
 
     demo = demo_dir()
     result = CliRunner().invoke(cli, ["fragmentation", "--habitat", str(demo / "landcover.tif"), "--classes",

@@ -226,7 +226,7 @@ def test_bad_quality_exit_2(inputs, tmp_path, case, phrase):
     ([], "--now is required (or give --study and --run-dir)"),
 ])
 def test_study_option_errors(inputs, tmp_path, extra, phrase):
-    from tests.test_runner import small_study
+    from tests.study.test_runner import small_study
 
     out = tmp_path / "out"
     out.mkdir()

@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 
 from envelope.errors import InputError
-from envelope.features import FeatureExpander, auto_feature_classes
+from envelope.models.features import FeatureExpander, auto_feature_classes
 
 
 def test_hinge_values_against_hand_computation():

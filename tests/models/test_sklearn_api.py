@@ -2,7 +2,7 @@
 
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from envelope.features import FeatureExpander
+from envelope.models.features import FeatureExpander
 from envelope.models import (BoostedTrees, DownsampledForest, PercentileEnvelope,
                              PointProcessModel, SkillWeightedEnsemble)
 

@@ -16,7 +16,7 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
     from envelope.io.rasters import open_layer
     from envelope.palettes import CHANGE_CLASS_COLOURS, REACH_CLASS_COLOURS
     from envelope.reach import REACH_CLASSES
-    from envelope.report import Report, records_table
+    from envelope.study.html import Report, records_table
 
     run_dir = Path(run_dir)
     rep = Report(study.study.name, f"Species: {study.study.species}" if study.study.species else "")

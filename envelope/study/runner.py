@@ -10,7 +10,7 @@ from pathlib import Path
 
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_output
-from envelope.study_run import run_paths
+from envelope.study.layout import run_paths
 
 log = logging.getLogger(__name__)
 
@@ -44,7 +44,7 @@ class StepCache:
         self._hashes = {}
 
     def _file_hash(self, path) -> str:
-        from envelope.fitting import file_sha256
+        from envelope.provenance import file_sha256
 
         p = str(path)
         if p not in self._hashes:
@@ -80,7 +80,7 @@ class StepCache:
         return True
 
     def save(self):
-        from envelope.fitting import software_versions
+        from envelope.provenance import software_versions
 
         self.manifest["software"] = software_versions()
         with atomic_output(self.path, overwrite=True) as tmp:
@@ -111,7 +111,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     """
     import pandas as pd
 
-    from envelope.fitting import FitOptions, fit_model, write_fit_outputs
+    from envelope.pipelines.fit import FitOptions, fit_model, write_fit_outputs
     from envelope.io.rasters import open_climate, open_layer
 
     run_dir = Path(run_dir)
@@ -202,7 +202,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
 
     # 5. figures and report ---------------------------------------------------------------
     if study.outputs.report:
-        from envelope.study_report import build_report
+        from envelope.study.report import build_report
 
         report_path = run_dir / "report.html"
 
@@ -229,7 +229,7 @@ def _run_reach(study, run_dir, cache, now_path, proj_dir, suit_rows, threshold, 
     """Reach per pathway (ensemble-mean maps by horizon) and the held-climate counterfactual."""
     from envelope.io.rasters import open_layer
     from envelope.reach import simulate_reach, write_reach_outputs
-    from envelope.study_run import pathway_futures, study_dispersal, study_habitat, study_start
+    from envelope.study.layout import pathway_futures, study_dispersal, study_habitat, study_start
 
     d = study.dispersal
     start_path = d.start or study.records.path

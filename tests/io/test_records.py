@@ -5,8 +5,8 @@ import pytest
 
 from tests.conftest import make_stack
 from envelope.errors import InputError
-from envelope.io.occurrences import read_occurrences
-from envelope.occurrences import clean_occurrences
+from envelope.io.records import read_occurrences
+from envelope.records import clean_occurrences
 
 # Source: Darwin Core term names (Wieczorek et al. 2012, PLoS ONE 7: e29715; dwc quick reference guide).
 HEADER = "occurrenceID,decimalLongitude,decimalLatitude,coordinateUncertaintyInMeters,eventDate,occurrenceStatus"

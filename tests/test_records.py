@@ -10,7 +10,7 @@ from sklearn.metrics.pairwise import haversine_distances
 
 from tests.conftest import make_stack
 from envelope.errors import InputError
-from envelope.occurrences import (
+from envelope.records import (
     DROP_REASONS,
     EARTH_RADIUS_M,
     clean_occurrences,

@@ -6,10 +6,10 @@ import shutil
 
 import pytest
 
-from envelope.demo_data import demo_dir
+from envelope.study.demo import demo_dir
 from envelope.errors import InputError
 from envelope.scenarios import Scenario
-from envelope.study import load_study, read_scenario_table
+from envelope.study.schema import load_study, read_scenario_table
 
 DEMO = demo_dir()
 STUDY = DEMO.parent / "study.toml"  # the demo study file sits beside the demo folder
@@ -250,7 +250,7 @@ def test_to_dict_is_json_ready_and_stable(tmp_path):
 
 def test_method_names_match_the_model_registry():
     from envelope.models import METHODS
-    from envelope.study import METHOD_NAMES
+    from envelope.study.schema import METHOD_NAMES
 
     # Common practice, no source: the study file's list (kept free of scikit-learn imports)
     # must not drift from the registry that builds the estimators.

@@ -78,7 +78,7 @@ def demo_dir() -> Path:
         If the folder or its ``scenarios.csv`` is missing; the message says how to make it.
     """
     override = os.environ.get(DEMO_DIR_ENV)
-    where = Path(override) if override else Path(__file__).resolve().parent.parent / "sample_grids" / "demo"
+    where = Path(override) if override else Path(__file__).resolve().parents[2] / "sample_grids" / "demo"
     if not (where / "scenarios.csv").is_file():
         source = f"${DEMO_DIR_ENV}" if override else "the source checkout"
         raise InputError(

@@ -6,11 +6,11 @@ import pytest
 from scipy.stats import spearmanr
 from sklearn.metrics import roc_auc_score
 
-from envelope.demo_data import demo_dir
+from envelope.study.demo import demo_dir
 from envelope.errors import InputError
-from envelope.fitting import FitOptions, collinear_pairs, fit_model
+from envelope.pipelines.fit import FitOptions, collinear_pairs, fit_model
 from envelope.io.rasters import open_climate
-from envelope.occurrences import cells_of, values_at
+from envelope.records import cells_of, values_at
 
 DEMO = demo_dir()
 
@@ -37,7 +37,7 @@ def fitted(stack):
 
 
 def test_virtual_species_recovered_by_default_method(fitted, stack):
-    # Analytic: the demo species' true suitability is known (envelope.demo_data.NICHE); the
+    # Analytic: the demo species' true suitability is known (envelope.study.demo.NICHE); the
     # issue's targets are AUC >= 0.85 against true presence/absence and Spearman >= 0.8.
     truth, score = _truth_scores(fitted["pointprocess"], stack)
     assert roc_auc_score(truth["present"], score) >= 0.85

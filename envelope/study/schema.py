@@ -360,7 +360,7 @@ def _records(c: _Checker, doc) -> RecordsSection:
     if x_col is not None and crs is None:
         c.fail("records.crs", "missing; named coordinate columns need their CRS, e.g. 'EPSG:3035'")
     if crs is not None:
-        from envelope.occurrences import parse_crs  # pyproj is heavy; only when a CRS is given
+        from envelope.records import parse_crs  # pyproj is heavy; only when a CRS is given
 
         parse_crs(crs, where=f"{c.source}: records.crs")
     max_unc = c.raw(t, "max_uncertainty_m", None)

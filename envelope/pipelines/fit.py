@@ -2,17 +2,15 @@
 
 from __future__ import annotations
 
-import hashlib
 import logging
-import platform
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from envelope import __version__
 from envelope.errors import InputError
+from envelope.provenance import file_sha256, json_ready, json_text
 
 log = logging.getLogger(__name__)
 
@@ -32,26 +30,6 @@ class FitResult:
     warnings: list = field(default_factory=list)
 
 
-def file_sha256(path) -> str:
-    """SHA-256 of a file (or of every file of a folder), for provenance."""
-    h = hashlib.sha256()
-    p = Path(path)
-    files = sorted(p.rglob("*")) if p.is_dir() else [p]
-    for f in files:
-        if f.is_file():
-            with open(f, "rb") as fh:
-                for chunk in iter(lambda: fh.read(1 << 20), b""):
-                    h.update(chunk)
-    return h.hexdigest()
-
-
-def software_versions() -> dict:
-    import sklearn
-    import scipy
-    import xarray
-
-    return {"envelope": __version__, "python": platform.python_version(), "numpy": np.__version__,
-            "scipy": scipy.__version__, "scikit-learn": sklearn.__version__, "xarray": xarray.__version__}
 
 
 def check_variables(values: np.ndarray, names) -> None:
@@ -128,13 +106,13 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     ----------
     Fithian & Hastie (2013); Roberts et al. (2017); Liu et al. (2005, 2013); see docs/methods.md.
     """
-    from envelope import evaluation
+    import envelope.evaluation as evaluation
     from envelope.background import sample_background
-    from envelope.io.occurrences import read_occurrences
+    from envelope.io.records import read_occurrences
     from envelope.kernels.mess import reference_from_training
     from envelope.kernels.thresholds import choose_threshold
     from envelope.models import response_curves
-    from envelope.occurrences import clean_occurrences, values_at
+    from envelope.records import clean_occurrences, values_at
 
     opt = options or FitOptions()
     notes: list[str] = []
@@ -228,7 +206,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     if bias_path is not None:
         inputs[str(bias_path)] = file_sha256(bias_path)
     cv_block = {"scheme": opt.cv_scheme, "n_folds": opt.n_folds, "block_km": block_km,
-                "block_size_rule": block_info, **{k: _num(v) for k, v in cv.items()}}
+                "block_size_rule": block_info, **json_ready(cv)}
     transform = climate.rio.transform()
     metadata = {
         "variables": variables_meta,
@@ -238,7 +216,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         "grid": {"crs": crs.to_string() if crs is not None else None,
                  "resolution": [abs(transform.a), abs(transform.e)],
                  "shape": [climate.sizes["y"], climate.sizes["x"]]},
-        "provenance": {"inputs": inputs, "seed": opt.seed, "software": software_versions(),
+        "provenance": {"inputs": inputs, "seed": opt.seed,
                        "records_dropped": dict(records.dropped)},
     }
     summary = {
@@ -258,26 +236,6 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     }
     return FitResult(estimator=estimator, metadata=metadata, summary=summary, per_fold=per_fold, warnings=notes)
 
-
-def json_ready(obj):
-    """Nested built-ins with NaN/inf as None (strict JSON has no NaN) and NumPy scalars unwrapped."""
-    if isinstance(obj, dict):
-        return {str(k): json_ready(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [json_ready(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return json_ready(obj.tolist())
-    return _num(obj)
-
-
-def _num(v):
-    if isinstance(v, (np.floating, float)):
-        return None if not np.isfinite(v) else float(v)
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, np.bool_):
-        return bool(v)
-    return v
 
 
 def build_estimator(method: str, seed: int = 0):
@@ -337,7 +295,7 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
     for p in (model_path, summary_path, folds_path):
         check_writable(p, overwrite)
     with atomic_outputs([summary_path, folds_path], overwrite=overwrite) as (tmp_summary, tmp_folds):
-        tmp_summary.write_text(json.dumps(json_ready(result.summary), indent=2, allow_nan=False))
+        tmp_summary.write_text(json_text(result.summary))
         result.per_fold.to_csv(tmp_folds, index=False)
         # the model is written last inside the block: if it fails, summary and folds vanish too
         save_model(model_path, result.estimator, result.metadata, overwrite=overwrite)

@@ -1,4 +1,4 @@
-"""Tests of envelope.report: a self-contained, escaped HTML report, atomic writes, Chromium render."""
+"""Tests of envelope.study.html: a self-contained, escaped HTML report, atomic writes, Chromium render."""
 
 import base64
 import io
@@ -14,7 +14,7 @@ from PIL import Image
 
 from envelope import figures
 from envelope.errors import InputError, OutputExistsError
-from envelope.report import DEFAULT_CAUTIONS, FIXED_SECTIONS, Report, records_table
+from envelope.study.html import DEFAULT_CAUTIONS, FIXED_SECTIONS, Report, records_table
 
 EVIL = '<script>alert("x")</script> & <img src="https://example.org/x.png">'
 

@@ -14,7 +14,7 @@ import pytest
 import rasterio
 from scipy import ndimage, stats
 
-from envelope.demo_data import (
+from envelope.study.demo import (
     CLIMATE_UNITS,
     CLIMATE_VARIABLES,
     DARWIN_CORE_COLUMNS,
@@ -28,7 +28,7 @@ from envelope.demo_data import (
 )
 from envelope.errors import InputError
 
-REPO = Path(__file__).resolve().parent.parent
+REPO = Path(__file__).resolve().parents[2]
 SCRIPT = REPO / "sample_grids" / "make_demo.py"
 DEMO = REPO / "sample_grids" / "demo"
 STUDY_GRID_FILES = ("baseline.tif", "elevation.tif", "landmask.tif", "habitat.tif", "landcover.tif",

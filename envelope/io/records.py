@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from envelope.errors import InputError
-from envelope.occurrences import (
+from envelope.records import (
     DWC_LATITUDE,
     DWC_LONGITUDE,
     DWC_TERMS,
@@ -42,7 +42,7 @@ def read_occurrences(
 
     Broken rows (wrong number of fields, coordinates missing or not numbers) are kept and
     flagged in the boolean column ``malformed`` so that
-    :func:`envelope.occurrences.clean_occurrences` counts them; only a file without a single
+    :func:`envelope.records.clean_occurrences` counts them; only a file without a single
     usable row is an error.
 
     Parameters

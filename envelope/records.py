@@ -455,7 +455,7 @@ def clean_occurrences(
     Parameters
     ----------
     table : pandas.DataFrame
-        Records, e.g. from :func:`envelope.io.occurrences.read_occurrences`.
+        Records, e.g. from :func:`envelope.io.records.read_occurrences`.
     grid : xarray.DataArray
         Climate stack (variable, y, x) or single layer (y, x) with a CRS.
     crs : str or pyproj.CRS, optional

@@ -10,9 +10,9 @@ import pytest
 from click.testing import CliRunner
 
 from envelope.cli.main import cli
-from envelope.demo_data import demo_dir
+from envelope.study.demo import demo_dir
 from envelope.errors import InputError
-from envelope.study import load_study
+from envelope.study.schema import load_study
 
 DEMO = demo_dir()
 
