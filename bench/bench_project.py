@@ -148,7 +148,7 @@ def run_project(model, stack, out, mess=None):
     import skops.io  # noqa: F401
 
     import envelope.models  # noqa: F401
-    from envelope.projection import project_file
+    from envelope.pipelines.project import project_file
 
     t1 = time.perf_counter()
     res = project_file(model, stack, out, mess_out=mess, overwrite=True)

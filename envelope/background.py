@@ -9,17 +9,8 @@ import pandas as pd
 import xarray as xr
 
 from envelope.errors import InputError
-from envelope.records import (
-    EARTH_RADIUS_M,
-    NeighbourSearch,
-    Records,
-    check_grid_dims,
-    cell_centres,
-    check_same_shape,
-    grid_crs,
-    valid_cells,
-    values_at,
-)
+from envelope.records import EARTH_RADIUS_M, NeighbourSearch, Records, cell_centres, values_at
+from envelope.grids import check_grid_dims, check_same_shape, grid_crs, valid_cells
 
 log = logging.getLogger(__name__)
 

@@ -1,4 +1,4 @@
-"""Grid wrappers: grid identity checks, alignment, true cell areas and validity masks."""
+"""Grid identity: the CRS helpers, grid comparison and alignment, true cell areas, validity masks and variable matching."""
 
 from __future__ import annotations
 
@@ -31,17 +31,31 @@ _ORIGIN_CELL_TOL = 1e-4
 _warned_crs: set[str] = set()
 
 
-def _crs(da):
-    crs = da.rio.crs
+def grid_crs(grid: xr.DataArray, name: str | None = None):
+    """The grid's CRS as a :class:`pyproj.CRS`; InputError if none is attached."""
+    import pyproj
+
+    crs = grid.rio.crs
     if crs is None:
-        raise InputError(f"{da.name or 'grid'}: no CRS attached (expected a georeferenced grid)")
-    return crs
+        raise InputError(f"{name or grid.name or 'grid'}: no CRS attached; expected a georeferenced grid "
+                         "(e.g. da.rio.write_crs('EPSG:4326'))")
+    return pyproj.CRS.from_user_input(crs.to_wkt())
 
 
-def _pyproj_crs(da):
-    from pyproj import CRS
+def parse_crs(value, where: str = "records"):
+    """A :class:`pyproj.CRS` from anything pyproj understands; InputError naming ``where`` otherwise."""
+    import pyproj
 
-    return CRS.from_user_input(_crs(da).to_wkt())
+    if isinstance(value, pyproj.CRS):
+        return value
+    try:
+        return pyproj.CRS.from_user_input(value)
+    except pyproj.exceptions.CRSError as exc:
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(
+            f"{where}: CRS {value!r} is not understood by pyproj ({reason}); "
+            "expected e.g. 'EPSG:4326' or 'EPSG:3035'"
+        ) from None
 
 
 def crs_label(crs) -> str:
@@ -162,7 +176,7 @@ def align_to(da: xr.DataArray, ref: xr.DataArray, *, resampling: str = "bilinear
 
     if resampling not in RESAMPLING:
         raise InputError(f"resampling: {resampling!r} is not known (expected one of {', '.join(RESAMPLING)})")
-    _crs(da), _crs(ref)
+    grid_crs(da), grid_crs(ref)
     src = da
     if np.issubdtype(src.dtype, np.floating):
         src = src.rio.write_nodata(np.nan, encoded=False)
@@ -330,7 +344,7 @@ def cell_area_km2(da: xr.DataArray) -> xr.DataArray:
     Snyder, J.P. (1987) Map Projections — A Working Manual. USGS PP 1395 (authalic latitude
     and areal scale factors). NIMA TR8350.2 (2000), WGS84 constants.
     """
-    pcrs = _pyproj_crs(da)
+    pcrs = grid_crs(da)
     if pcrs.is_geographic:
         return _geographic_areas(da, pcrs)
     return _projected_areas(da, pcrs)
@@ -343,3 +357,65 @@ def valid_mask(stack: xr.DataArray) -> xr.DataArray:
         finite = finite.all("variable")
     finite.name = "valid"
     return finite
+
+
+def match_variables(stack: xr.DataArray, variables, *, source="climate grid") -> xr.DataArray:
+    """Select the model's variables from ``stack`` by name, in the model's order.
+
+    A missing variable is an error that names it and lists what the grid has.
+    """
+    have = [str(v) for v in stack["variable"].values]
+    missing = [v for v in variables if v not in have]
+    if missing:
+        raise InputError(
+            f"{source}: variable {missing[0]!r} needed by the model is missing "
+            f"(grid has {', '.join(have)})"
+        )
+    if have == list(variables):
+        return stack  # already in the model's order: selecting would copy every block
+    return stack.sel(variable=list(variables))
+
+
+def check_grid_dims(grid: xr.DataArray, name: str = "grid") -> xr.DataArray:
+    """The grid with dims in the conventional order; InputError for any other dims."""
+    if grid.ndim == 3 and set(grid.dims) == {"variable", "y", "x"}:
+        return grid.transpose("variable", "y", "x")
+    if grid.ndim == 2 and set(grid.dims) == {"y", "x"}:
+        return grid.transpose("y", "x")
+    raise InputError(f"{name}: dims {tuple(grid.dims)}; expected ('variable', 'y', 'x') or ('y', 'x')")
+
+
+def valid_cells(grid: xr.DataArray) -> np.ndarray:
+    """2-D boolean array (y, x): True where every variable is finite.
+
+    Computed chunk by chunk on dask-backed stacks; only the 2-D result is held in memory.
+    """
+    grid = check_grid_dims(grid)
+    finite = np.isfinite(grid)
+    if "variable" in finite.dims:
+        finite = finite.all("variable")
+    return np.asarray(finite.values, dtype=bool)
+
+
+def check_same_shape(layer, grid: xr.DataArray, name: str) -> np.ndarray:
+    """A 2-D layer on the grid as a float64 array (y, x); GridMismatchError if shape or transform differ."""
+    grid = check_grid_dims(grid)
+    shape = (grid.sizes["y"], grid.sizes["x"])
+    if isinstance(layer, xr.DataArray):
+        if layer.ndim == 3 and "band" in layer.dims and layer.sizes["band"] == 1:
+            layer = layer.squeeze("band", drop=True)
+        if set(layer.dims) != {"y", "x"}:
+            raise InputError(f"{name}: dims {tuple(layer.dims)}; expected ('y', 'x')")
+        layer = layer.transpose("y", "x")
+        if tuple(layer.shape) != shape:
+            raise GridMismatchError(f"{name}: shape {tuple(layer.shape)} differs from the grid's {shape}")
+        if {"x", "y"} <= set(layer.coords):
+            if not np.allclose(tuple(layer.rio.transform())[:6], tuple(grid.rio.transform())[:6],
+                               rtol=0, atol=1e-9 * max(1.0, abs(grid.rio.resolution()[0]))):
+                raise GridMismatchError(f"{name}: transform {tuple(layer.rio.transform())[:6]} differs from "
+                                        f"the grid's {tuple(grid.rio.transform())[:6]}")
+        return np.asarray(layer.values, dtype=np.float64)
+    array = np.asarray(layer, dtype=np.float64)
+    if array.shape != shape:
+        raise GridMismatchError(f"{name}: shape {array.shape} differs from the grid's {shape}")
+    return array

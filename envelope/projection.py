@@ -10,6 +10,7 @@ import numpy as np
 import xarray as xr
 
 from envelope.errors import InputError
+from envelope.grids import match_variables
 from envelope.kernels.predict import (AdditiveTable, compile_pointprocess, predict_cells,
                                       suitability_table)
 
@@ -20,23 +21,6 @@ from envelope.kernels.predict import (AdditiveTable, compile_pointprocess, predi
 # boosted trees predicted 1 M cells in 2.4 s in such batches, 2.8 s in batches of 16 384.
 CELL_BATCH = 65_536
 MESS_BANDS = ("mess", "most_dissimilar")
-
-
-def match_variables(stack: xr.DataArray, variables, *, source="climate grid") -> xr.DataArray:
-    """Select the model's variables from ``stack`` by name, in the model's order.
-
-    A missing variable is an error that names it and lists what the grid has.
-    """
-    have = [str(v) for v in stack["variable"].values]
-    missing = [v for v in variables if v not in have]
-    if missing:
-        raise InputError(
-            f"{source}: variable {missing[0]!r} needed by the model is missing "
-            f"(grid has {', '.join(have)})"
-        )
-    if have == list(variables):
-        return stack  # already in the model's order: selecting would copy every block
-    return stack.sel(variable=list(variables))
 
 
 def training_range(metadata: dict) -> dict:
@@ -273,163 +257,9 @@ def binary_map(suitability: xr.DataArray, threshold: float, *, nodata: int = 255
 # float32 variables a 512 x 1024 window is 38 MiB, so a few windows in flight per thread
 # bound the working set whatever the grid size. Measured faster than 1024 x 1024 or
 # 512 x 512 windows on 512-pixel tiles (bench/README.md).
-PROJECT_CHUNKS = {"y": 512, "x": 1024}
 BINARY_CATEGORIES = {0: "unsuitable", 1: "suitable"}
 BINARY_NODATA = 255
 
 
-@contextlib.contextmanager
-def scheduler_context(address=None):
-    """Run dask work on the dask.distributed scheduler at ``address``; local threads when None."""
-    if not address:
-        yield None
-        return
-    try:
-        from distributed import Client
-    except ImportError:
-        raise InputError("--scheduler needs dask.distributed; install the 'distributed' package") from None
-    try:
-        client = Client(address, timeout="10s", set_as_default=True)
-    except (OSError, TimeoutError, ValueError) as exc:
-        raise InputError(f"--scheduler {address}: cannot connect ({exc}); expected the address of a "
-                         "running dask.distributed scheduler, e.g. tcp://127.0.0.1:8786") from None
-    try:
-        yield client
-    finally:
-        client.close()
-
-
-def load_projection_model(model_file):
-    """``(estimator, metadata, method, sha256)`` of a model file (errors name the file)."""
-    from envelope.provenance import file_sha256
-    from envelope.io.modelfile import load_model, read_manifest
-
-    estimator, metadata = load_model(model_file)
-    method = read_manifest(model_file)["method"]
-    variables = [str(v["name"]) for v in metadata["variables"]]
-    threshold = metadata.get("threshold") or {}
-    if not isinstance(threshold, dict) or threshold.get("value") is None:
-        raise InputError(f"{model_file}: model metadata has no threshold value; expected "
-                         "metadata['threshold'] = {'value', 'rule'} (refit with envelope fit)")
-    return estimator, metadata, variables, method, file_sha256(model_file)
-
-
-def projection_tags(model_file, method, sha256, metadata, climate, clamp) -> dict:
-    """Provenance tags of a suitability raster (threshold, method, model file, climate, clamping)."""
-    from envelope import __version__
-
-    threshold = metadata["threshold"]
-    return {"threshold": float(threshold["value"]), "threshold_rule": str(threshold.get("rule", "")),
-            "method": method, "model_file": str(model_file), "model_sha256": sha256,
-            "climate": [str(c) for c in climate], "clamped": bool(clamp),
-            "envelope_version": __version__}
-
-
-def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, clamp=True,
-                 overwrite=False, scheduler=None, chunks=None, progress=None) -> dict:
-    """Project a model file onto climate grid file(s) and write suitability (and MESS, binary).
-
-    Everything is streamed chunk by chunk in one pass: each window of the model's
-    variables is read once and feeds the suitability, the MESS and the binary map, and
-    the share of the area in novel climate (MESS < 0, weighted by true cell areas) is
-    summed on the way and stored in the suitability raster's tags. The outputs appear
-    together at the end or not at all (nothing half-written).
-
-    Parameters
-    ----------
-    model_file : path of an ``.envm`` model file
-    climate : path or list of paths opened with :func:`envelope.io.rasters.open_climate`
-    out : path (.tif or .nc) of the suitability raster (float32, 0–1)
-    mess_out : path, optional
-        2-layer raster: ``mess`` and ``most_dissimilar`` (index; names in the
-        ``categories`` tag).
-    binary_out : path, optional
-        uint8 map, 1 = suitable (suitability >= threshold), 0 = unsuitable, 255 = nodata.
-    clamp : bool, default=True
-    overwrite : bool, default=False
-    scheduler : str, optional
-        dask.distributed scheduler address.
-    chunks : dict, optional
-        Spatial chunks of the streamed stack (default :data:`PROJECT_CHUNKS`).
-    progress : callable(done, total), optional
-        Called as blocks finish (local threads only).
-
-    Returns
-    -------
-    dict with ``out``, ``mess``, ``binary``, ``novel_share`` (None without MESS),
-    ``threshold``, ``method``, ``n_cells``.
-    """
-    from envelope.io.atomic import atomic_outputs, check_writable
-
-    climate = [climate] if isinstance(climate, (str, os.PathLike)) else list(climate)
-    targets = [p for p in (out, mess_out, binary_out) if p is not None]
-    if len({os.path.abspath(p) for p in targets}) != len(targets):
-        raise InputError(f"outputs: the same file is given twice ({', '.join(map(str, targets))})")
-    for p in targets:
-        check_writable(p, overwrite)
-    estimator, metadata, variables, method, sha = load_projection_model(model_file)
-    if mess_out is not None and not metadata.get("mess_reference"):
-        raise InputError(f"{model_file}: model metadata has no mess_reference; cannot write MESS")
-    bounds = training_range(metadata) if clamp else None
-    stack = open_model_climate(climate, variables, chunks=chunks)
-    tags = projection_tags(model_file, method, sha, metadata, climate, clamp)
-    with scheduler_context(scheduler), atomic_outputs(targets, overwrite=overwrite) as tmps:
-        names = ["out"] + (["mess"] if mess_out else []) + (["binary"] if binary_out else [])
-        summary = _write_projection(estimator, stack, variables, bounds, metadata, tags, dict(zip(names, tmps)),
-                                    progress=progress)
-    summary.update(out=str(out), mess=None if mess_out is None else str(mess_out),
-                   binary=None if binary_out is None else str(binary_out))
-    return summary
-
-
-def open_model_climate(climate, variables, *, chunks=None, source=None) -> xr.DataArray:
-    """The model's variables from climate grid file(s), in the model's order, lazily.
-
-    Only those variables are ever read (the other bands of a multi-band GeoTIFF are
-    skipped), every variable of a window in one read. A missing variable is an error that
-    names it (:func:`match_variables`).
-    """
-    from envelope.io.rasters import open_climate
-
-    climate = [climate] if isinstance(climate, (str, os.PathLike)) else list(climate)
-    source = source or ", ".join(map(str, climate))
-    spec = {"band": -1, **(PROJECT_CHUNKS if chunks is None else chunks)}
-    match_variables(open_climate(climate, chunks=spec), variables, source=source)  # names only, no reading
-    return open_climate(climate, variables=list(variables), chunks=spec)
-
-
-def _write_projection(estimator, stack, variables, bounds, metadata, tags, paths, progress=None) -> dict:
-    """Write suitability (+ MESS, binary) of ``stack`` to the (temporary) ``paths`` in one pass.
-
-    All outputs come from one dask graph, so each climate block is read once; the share
-    of the area in novel climate is summed in the same pass and lands in the suitability
-    raster's tags.
-    """
-    from envelope.grids import cell_area_km2
-    from envelope.io.writing import RasterOutput, write_rasters
-
-    tags = dict(tags)
-    threshold = float(tags["threshold"])
-    suitability = project_suitability(estimator, stack, variables, bounds, clamp=bounds is not None)
-    outputs, also = [], ()
-    if "mess" in paths:
-        mess_da = project_mess(stack, variables, metadata["mess_reference"])
-        outputs.append(RasterOutput(mess_da, paths["mess"], tags={**tags, "most_dissimilar_variables": list(variables)},
-                                    categories=dict(enumerate(variables))))
-        mess_values = mess_da.sel(variable="mess")
-        also = novel_area_sums(mess_values, cell_area_km2(mess_values))
-    outputs.insert(0, RasterOutput(suitability, paths["out"],
-                                   tags=(lambda sums: {**tags, "novel_share": share_of(*sums)}) if also else tags))
-    if "binary" in paths:
-        outputs.append(RasterOutput(binary_map(suitability, threshold, nodata=BINARY_NODATA), paths["binary"],
-                                    tags={**tags, "nodata": BINARY_NODATA}, categories=BINARY_CATEGORIES,
-                                    nodata=BINARY_NODATA))
-    sums = write_rasters(outputs, overwrite=True, also=also, progress=progress)
-    return {"novel_share": share_of(*sums) if sums else None, "threshold": threshold, "method": tags["method"],
-            "n_cells": int(stack.sizes["y"] * stack.sizes["x"])}
-
-
-__all__ = ["BINARY_CATEGORIES", "CELL_BATCH", "MESS_BANDS", "binary_map", "map_cells", "match_variables", "novel_area_sums",
-           "novel_share", "pointprocess_table", "share_of",
-           "load_projection_model", "project_file", "project_mess", "project_suitability", "projection_tags",
-           "scheduler_context", "training_range"]
+__all__ = ["BINARY_CATEGORIES", "BINARY_NODATA", "CELL_BATCH", "MESS_BANDS", "binary_map", "map_cells", "novel_area_sums",
+           "novel_share", "pointprocess_table", "project_mess", "project_suitability", "share_of", "training_range"]

@@ -13,6 +13,8 @@ import pyproj
 import xarray as xr
 
 from envelope.errors import GridMismatchError, InputError
+from envelope.grids import check_grid_dims, check_same_shape, crs_label, grid_crs, parse_crs, valid_cells
+from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TERMS, MALFORMED_FLAG, to_float
 
 log = logging.getLogger(__name__)
 
@@ -33,22 +35,6 @@ DROP_REASONS = (
 #: distances. Source: NIMA TR8350.2 (2000), as quoted in REFERENCES.md section 6.
 EARTH_RADIUS_M = 6_371_008.7714
 
-#: Darwin Core terms the cleaning understands (Wieczorek et al. 2012, doi:10.1371/journal.pone.0029715).
-DWC_LONGITUDE = "decimalLongitude"
-DWC_LATITUDE = "decimalLatitude"
-DWC_TERMS = (
-    DWC_LONGITUDE,
-    DWC_LATITUDE,
-    "coordinateUncertaintyInMeters",
-    "eventDate",
-    "year",
-    "occurrenceStatus",
-    "basisOfRecord",
-    "occurrenceID",
-)
-
-#: Column the reader sets on rows with a wrong field count or unparseable coordinates.
-MALFORMED_FLAG = "malformed"
 #: Columns the cleaned table owns; source columns of the same name are kept as ``source_<name>``.
 OWN_COLUMNS = ("x", "y", "row", "col", "x_record", "y_record")
 
@@ -99,55 +85,6 @@ class Records:
 
 
 # ---------------------------------------------------------------- grid helpers
-
-
-def grid_crs(grid: xr.DataArray, name: str = "grid") -> pyproj.CRS:
-    """The grid's CRS as a :class:`pyproj.CRS`; InputError if none is attached."""
-    crs = grid.rio.crs
-    if crs is None:
-        raise InputError(f"{name}: no CRS attached; expected one (e.g. da.rio.write_crs('EPSG:4326'))")
-    return pyproj.CRS.from_user_input(crs.to_wkt())
-
-
-def crs_name(crs: pyproj.CRS) -> str:
-    """Short name of a CRS: ``EPSG:code`` when it has one, else its WKT."""
-    code = crs.to_epsg()
-    return f"EPSG:{code}" if code is not None else crs.to_wkt()
-
-
-def parse_crs(value, where: str = "records") -> pyproj.CRS:
-    """A CRS from anything pyproj understands; InputError naming ``where`` otherwise."""
-    if isinstance(value, pyproj.CRS):
-        return value
-    try:
-        return pyproj.CRS.from_user_input(value)
-    except pyproj.exceptions.CRSError as exc:
-        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise InputError(
-            f"{where}: CRS {value!r} is not understood by pyproj ({reason}); "
-            "expected e.g. 'EPSG:4326' or 'EPSG:3035'"
-        ) from None
-
-
-def check_grid_dims(grid: xr.DataArray, name: str = "grid") -> xr.DataArray:
-    """The grid with dims in the conventional order; InputError for any other dims."""
-    if grid.ndim == 3 and set(grid.dims) == {"variable", "y", "x"}:
-        return grid.transpose("variable", "y", "x")
-    if grid.ndim == 2 and set(grid.dims) == {"y", "x"}:
-        return grid.transpose("y", "x")
-    raise InputError(f"{name}: dims {tuple(grid.dims)}; expected ('variable', 'y', 'x') or ('y', 'x')")
-
-
-def valid_cells(grid: xr.DataArray) -> np.ndarray:
-    """2-D boolean array (y, x): True where every variable is finite.
-
-    Computed chunk by chunk on dask-backed stacks; only the 2-D result is held in memory.
-    """
-    grid = check_grid_dims(grid)
-    finite = np.isfinite(grid)
-    if "variable" in finite.dims:
-        finite = finite.all("variable")
-    return np.asarray(finite.values, dtype=bool)
 
 
 def values_at(stack: xr.DataArray, rows, cols) -> np.ndarray:
@@ -334,15 +271,6 @@ def find_column(table: pd.DataFrame, name: str):
         return name
     lowered = {str(c).lower(): c for c in table.columns}
     return lowered.get(name.lower())
-
-
-def to_float(series: pd.Series) -> np.ndarray:
-    """A column as float64, NaN where empty, not a number, or infinite."""
-    if series.dtype == object or pd.api.types.is_string_dtype(series):
-        series = series.astype("string").str.strip()
-    values = pd.to_numeric(series, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
-    values[~np.isfinite(values)] = np.nan
-    return values
 
 
 def record_coordinates(table: pd.DataFrame, source: str = "records"):
@@ -580,15 +508,15 @@ def clean_occurrences(
     extra = table.loc[kept].drop(columns=[c for c in (MALFORMED_FLAG, "x_record", "y_record") if c in table.columns])
     extra = extra.rename(columns={c: f"source_{c}" for c in extra.columns if c in OWN_COLUMNS})
     out = pd.concat([out, extra.reset_index(drop=True)], axis=1)
-    out.attrs = {"source": source, "crs": crs_name(target)}
-    return Records(table=out, n_read=n, dropped=dropped, crs=crs_name(target), record_crs=crs_name(record_crs))
+    out.attrs = {"source": source, "crs": crs_label(target)}
+    return Records(table=out, n_read=n, dropped=dropped, crs=crs_label(target), record_crs=crs_label(record_crs))
 
 
 def _crs_hint(grid, target, record_crs, x, y, n_placed) -> str:
     """Explain why no record is on the grid: the CRS the records were read in, swapped axes."""
-    hint = f"; 0 of {n_placed} records fall inside the grid; are the coordinates in {crs_name(record_crs)}?"
+    hint = f"; 0 of {n_placed} records fall inside the grid; are the coordinates in {crs_label(record_crs)}?"
     left, bottom, right, top = grid.rio.bounds()
-    hint += f" (grid bounds {left:g}, {bottom:g}, {right:g}, {top:g} in {crs_name(target)})"
+    hint += f" (grid bounds {left:g}, {bottom:g}, {right:g}, {top:g} in {crs_label(target)})"
     # A frequent slip: longitude and latitude columns swapped.
     try:
         if record_crs == target:
@@ -601,27 +529,3 @@ def _crs_hint(grid, target, record_crs, x, y, n_placed) -> str:
     except pyproj.exceptions.ProjError:  # pragma: no cover - the hint is best effort
         pass
     return hint
-
-
-def check_same_shape(layer, grid: xr.DataArray, name: str) -> np.ndarray:
-    """A 2-D layer on the grid as a float64 array (y, x); GridMismatchError if shape or transform differ."""
-    grid = check_grid_dims(grid)
-    shape = (grid.sizes["y"], grid.sizes["x"])
-    if isinstance(layer, xr.DataArray):
-        if layer.ndim == 3 and "band" in layer.dims and layer.sizes["band"] == 1:
-            layer = layer.squeeze("band", drop=True)
-        if set(layer.dims) != {"y", "x"}:
-            raise InputError(f"{name}: dims {tuple(layer.dims)}; expected ('y', 'x')")
-        layer = layer.transpose("y", "x")
-        if tuple(layer.shape) != shape:
-            raise GridMismatchError(f"{name}: shape {tuple(layer.shape)} differs from the grid's {shape}")
-        if {"x", "y"} <= set(layer.coords):
-            if not np.allclose(tuple(layer.rio.transform())[:6], tuple(grid.rio.transform())[:6],
-                               rtol=0, atol=1e-9 * max(1.0, abs(grid.rio.resolution()[0]))):
-                raise GridMismatchError(f"{name}: transform {tuple(layer.rio.transform())[:6]} differs from "
-                                        f"the grid's {tuple(grid.rio.transform())[:6]}")
-        return np.asarray(layer.values, dtype=np.float64)
-    array = np.asarray(layer, dtype=np.float64)
-    if array.shape != shape:
-        raise GridMismatchError(f"{name}: shape {array.shape} differs from the grid's {shape}")
-    return array

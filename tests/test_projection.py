@@ -12,8 +12,9 @@ from envelope.io.rasters import open_layer, read_tags
 from envelope.io.writing import write_raster
 from envelope.kernels.mess import mess, reference_from_training
 from envelope.models import BoostedTrees, PointProcessModel
-from envelope.projection import (match_variables, novel_share, project_file, project_mess,
-                                 project_suitability, training_range)
+from envelope.grids import match_variables
+from envelope.projection import novel_share, project_mess, project_suitability, training_range
+from envelope.pipelines.project import project_file
 
 NAMES = ["t", "p", "q"]
 

@@ -10,13 +10,7 @@ from sklearn.metrics.pairwise import haversine_distances
 
 from tests.conftest import make_stack
 from envelope.errors import InputError
-from envelope.records import (
-    DROP_REASONS,
-    EARTH_RADIUS_M,
-    clean_occurrences,
-    thin_greedy,
-    values_at,
-)
+from envelope.records import DROP_REASONS, EARTH_RADIUS_M, clean_occurrences, thin_greedy, values_at
 
 # make_stack(): 20 x 15 cells of 0.1 deg, west edge -150, north edge 45 (open ocean).
 LON0, LAT0, RES = -150.0, 45.0, 0.1

@@ -268,7 +268,7 @@ def _batch(table, baseline_paths, out_dir, ratio_floor, max_ratio, with_bioclim,
         (out_dir / name).mkdir(exist_ok=True)
 
     from envelope.io.writing import write_raster
-    from envelope.scenarios import SCENARIO_COLUMNS
+    from envelope.io.tables import SCENARIO_COLUMNS
 
     targets = [out_dir / rel for _, _, rel, _ in jobs] + [out_dir / "monthly.csv"]
     if with_bioclim:

@@ -66,7 +66,7 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
             raise click.UsageError("with --scenarios give --mess without a file name (one MESS per scenario)")
         if not out_dir:
             raise click.UsageError("--scenarios needs --out-dir")
-        from envelope.scenarios import project_scenarios
+        from envelope.pipelines.project import project_scenarios
 
         with _progress_bar() as progress:
             result = project_scenarios(model_file, scenarios, out_dir, mess=mess is not None, agreement=agreement,
@@ -86,7 +86,7 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
         raise click.UsageError("--mess needs a file name for a single projection, e.g. --mess mess.tif")
     if out_dir:
         raise click.UsageError("--out-dir goes with --scenarios")
-    from envelope.projection import project_file
+    from envelope.pipelines.project import project_file
 
     with _progress_bar() as progress:
         result = project_file(model_file, list(climate), out, mess_out=mess, binary_out=binary, clamp=not no_clamp,

@@ -30,7 +30,7 @@ def execute(study, out):
     from rich.console import Console
     from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
-    from envelope.projection import scheduler_context
+    from envelope.pipelines.project import scheduler_context
     from envelope.study.runner import run_study
 
     with scheduler_context(study.compute.scheduler), Progress(SpinnerColumn(), TextColumn("{task.description}"),

@@ -193,7 +193,7 @@ def _from_options(now, futures, years, scenario_table, habitat, classes, align_h
     from envelope.habitat import load_habitat
     from envelope.io.rasters import open_layer, read_tags
     from envelope.reach import DispersalSettings, load_start, threshold_from_tags
-    from envelope.scenarios import suitability_paths
+    from envelope.io.tables import suitability_paths
 
     for flag, value in (("--now", now), ("--habitat", habitat), ("--start", start),
                         ("--mean-distance-km", mean_distance_km)):

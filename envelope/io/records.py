@@ -10,15 +10,8 @@ import numpy as np
 import pandas as pd
 
 from envelope.errors import InputError
-from envelope.records import (
-    DWC_LATITUDE,
-    DWC_LONGITUDE,
-    DWC_TERMS,
-    MALFORMED_FLAG,
-    to_float,
-    crs_name,
-    parse_crs,
-)
+from envelope.grids import crs_label, parse_crs
+from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TERMS, MALFORMED_FLAG, to_float
 
 _CANDIDATE_DELIMITERS = (",", "\t", ";", "|")
 _SUFFIX_DELIMITERS = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": "\t"}
@@ -144,7 +137,7 @@ def read_occurrences(
     table["y_record"] = y
     table["line"] = np.asarray(lines, dtype=np.int64)
     table[MALFORMED_FLAG] = malformed
-    table.attrs = {"source": str(path), "crs": crs_name(record_crs), "x_column": x_column, "y_column": y_column}
+    table.attrs = {"source": str(path), "crs": crs_label(record_crs), "x_column": x_column, "y_column": y_column}
     return table
 
 

@@ -118,7 +118,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     notes: list[str] = []
     report = progress or (lambda stage, done, total: None)
     if opt.variables:
-        from envelope.projection import match_variables
+        from envelope.grids import match_variables
 
         climate = match_variables(climate, opt.variables, source="--climate")
     names = [str(v) for v in climate["variable"].values]

@@ -158,8 +158,8 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     model = models[method]
 
     # 2. projection: today and every scenario -------------------------------------------
-    from envelope.projection import project_file
-    from envelope.scenarios import project_scenarios
+    from envelope.pipelines.project import project_file
+    from envelope.pipelines.project import project_scenarios
 
     now_path = paths["now"]
 

@@ -13,7 +13,8 @@ from pathlib import Path
 from envelope.errors import InputError
 from envelope.kernels.dispersal import KERNEL_KINDS
 from envelope.kernels.thresholds import THRESHOLD_RULES
-from envelope.scenarios import DEFAULT_AGREEMENT, SCENARIO_COLUMNS, Scenario, read_scenarios
+from envelope.ensemble import DEFAULT_AGREEMENT
+from envelope.io.tables import SCENARIO_COLUMNS, Scenario, read_scenarios
 
 __all__ = [
     "ClimateSection", "ComputeSection", "DispersalSection", "HabitatSection", "ModelSection",
@@ -360,7 +361,7 @@ def _records(c: _Checker, doc) -> RecordsSection:
     if x_col is not None and crs is None:
         c.fail("records.crs", "missing; named coordinate columns need their CRS, e.g. 'EPSG:3035'")
     if crs is not None:
-        from envelope.records import parse_crs  # pyproj is heavy; only when a CRS is given
+        from envelope.grids import parse_crs
 
         parse_crs(crs, where=f"{c.source}: records.crs")
     max_unc = c.raw(t, "max_uncertainty_m", None)

@@ -11,7 +11,7 @@ from click.testing import CliRunner
 
 from envelope.cli.main import cli
 from envelope.study.demo import demo_dir
-from envelope.scenarios import read_scenarios
+from envelope.io.tables import read_scenarios
 
 # Source: REFERENCES item 5 inputs (hand-made 12-month series), used as the fine baseline.
 TMIN = np.array([-10, -8, -4, 0, 5, 10, 12, 11, 6, 1, -4, -8], dtype=float)

@@ -8,7 +8,7 @@ import pytest
 
 from envelope.study.demo import demo_dir
 from envelope.errors import InputError
-from envelope.scenarios import Scenario
+from envelope.io.tables import Scenario
 from envelope.study.schema import load_study, read_scenario_table
 
 DEMO = demo_dir()

@@ -6,8 +6,8 @@ import xarray as xr
 import rioxarray  # noqa: F401
 
 from envelope.errors import InputError
-from envelope.scenarios import (consensus_count, ensemble_statistics, group_scenarios, read_scenarios,
-                                write_suitability_table)
+from envelope.ensemble import consensus_count, ensemble_statistics
+from envelope.io.tables import group_scenarios, read_scenarios, write_suitability_table
 
 
 def _stack(values):

@@ -1,0 +1,155 @@
+"""Reading and writing the project's tables: scenario and suitability tables, land-cover class tables, delta model tables."""
+
+from __future__ import annotations
+
+import csv
+from dataclasses import dataclass
+from pathlib import Path
+
+from envelope.errors import InputError
+from envelope.io.atomic import atomic_output
+
+__all__ = ["SCENARIO_COLUMNS", "SUITABILITY_TABLE_COLUMNS", "SUITABILITY_TABLE_NAME", "Scenario", "group_scenarios",
+           "read_scenarios", "read_suitability_table", "suitability_paths", "write_suitability_table"]
+
+SCENARIO_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path")
+SUITABILITY_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path", "mess_path",
+                             "novel_share")
+SUITABILITY_TABLE_NAME = "suitability_table.csv"
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """One row of a scenario table: a climate grid for one pathway, climate model and horizon."""
+
+    name: str
+    pathway: str
+    climate_model: str
+    horizon: int
+    path: Path
+
+
+def _rows_from_csv(path: Path) -> list[dict]:
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            reader = csv.DictReader(fh)
+            header = [h.strip() for h in (reader.fieldnames or [])]
+            missing = [c for c in SCENARIO_COLUMNS if c not in header]
+            if missing:
+                raise InputError(f"{path}: column {missing[0]!r} missing (found {', '.join(header) or 'none'}; "
+                                 f"expected {', '.join(SCENARIO_COLUMNS)})")
+            return [{(k or "").strip(): (v or "").strip() for k, v in row.items()} for row in reader]
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"{path}: cannot read the scenario table ({exc})") from None
+
+
+def _rows_from_toml(path: Path) -> list[dict]:
+    import tomllib
+
+    try:
+        doc = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise InputError(f"{path}: cannot read the scenario table ({exc})") from None
+    rows = doc.get("scenario")
+    if not isinstance(rows, list) or not all(isinstance(r, dict) for r in rows):
+        raise InputError(f"{path}: expected [[scenario]] tables with keys {', '.join(SCENARIO_COLUMNS)}")
+    for i, row in enumerate(rows, start=1):
+        missing = [c for c in SCENARIO_COLUMNS if c not in row]
+        if missing:
+            raise InputError(f"{path}: scenario {i} has no key {missing[0]!r} "
+                             f"(expected {', '.join(SCENARIO_COLUMNS)})")
+    return [{k: str(v) for k, v in row.items()} for row in rows]
+
+
+def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
+    """Read a scenario table (CSV with a header, or TOML with ``[[scenario]]`` tables).
+
+    Columns / keys: ``name, pathway, climate_model, horizon, path``. ``horizon`` is a
+    year; ``path`` is a climate grid (or, ``what`` says, another raster such as a
+    suitability map), relative to the table's folder unless absolute. Names must be
+    unique (they name the output files) and every grid must exist.
+
+    Examples
+    --------
+    >>> read_scenarios("scenarios.csv")  # doctest: +SKIP
+    [Scenario(name='p1-mA-2050', pathway='p1', climate_model='mA', horizon=2050, path=...)]
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: scenario table not found")
+    suffix = path.suffix.lower()
+    if suffix == ".csv":
+        rows = _rows_from_csv(path)
+    elif suffix == ".toml":
+        rows = _rows_from_toml(path)
+    else:
+        raise InputError(f"{path}: scenario table suffix {path.suffix!r}; expected .csv or .toml")
+    if not rows:
+        raise InputError(f"{path}: the scenario table has no rows; expected at least one scenario")
+    scenarios, seen = [], set()
+    for i, row in enumerate(rows, start=1):
+        name = row["name"]
+        if not name or any(c in name for c in "/\\"):
+            raise InputError(f"{path}: row {i} name {name!r}; expected a non-empty name without slashes")
+        if name in seen:
+            raise InputError(f"{path}: scenario name {name!r} appears twice; names must be unique")
+        seen.add(name)
+        for key in ("pathway", "climate_model"):
+            if not row[key]:
+                raise InputError(f"{path}: row {i} ({name}) has an empty {key!r}")
+        try:
+            horizon = int(float(row["horizon"]))
+        except ValueError:
+            raise InputError(f"{path}: row {i} ({name}) horizon {row['horizon']!r}; expected a year") from None
+        grid = Path(row["path"])
+        if not grid.is_absolute():
+            grid = path.parent / grid
+        if not grid.exists():
+            raise InputError(f"{path}: row {i} ({name}) {what} {grid} not found")
+        scenarios.append(Scenario(name, row["pathway"], row["climate_model"], horizon, grid))
+    return scenarios
+
+
+def suitability_paths(path) -> dict[str, list[tuple[int, Path]]]:
+    """Climate paths from a suitability table: {"<pathway>/<climate_model>": [(horizon, map), ...]}.
+
+    The table is the one ``envelope project --scenarios`` writes (``suitability_table.csv``;
+    columns ``name, pathway, climate_model, horizon, path``, ``path`` a suitability raster).
+    One path per pathway × climate model, its horizons in time order; a climate model
+    listed twice for one pathway and horizon is an error.
+    """
+    scenarios = read_scenarios(path, what="suitability raster")
+    group_scenarios(scenarios)
+    paths: dict[str, list[tuple[int, Path]]] = {}
+    for sc in scenarios:
+        paths.setdefault(f"{sc.pathway}/{sc.climate_model}", []).append((sc.horizon, sc.path))
+    return {name: sorted(horizons) for name, horizons in paths.items()}
+
+
+def group_scenarios(scenarios) -> dict[tuple[str, int], list[Scenario]]:
+    """Scenarios grouped by (pathway, horizon), in table order; the members differ by climate model."""
+    groups: dict[tuple[str, int], list[Scenario]] = {}
+    for sc in scenarios:
+        groups.setdefault((sc.pathway, sc.horizon), []).append(sc)
+    for (pathway, horizon), members in groups.items():
+        models = [m.climate_model for m in members]
+        dup = sorted({m for m in models if models.count(m) > 1})
+        if dup:
+            raise InputError(f"scenario table: climate model {dup[0]!r} appears twice for pathway "
+                             f"{pathway!r}, horizon {horizon}")
+    return groups
+
+
+def write_suitability_table(rows, path, *, overwrite: bool = False) -> Path:
+    """Write the per-scenario suitability table (CSV) that ``envelope change --scenarios`` reads.
+
+    ``rows`` are mappings with keys :data:`SUITABILITY_TABLE_COLUMNS`; paths are written
+    as given.
+    """
+    with atomic_output(path, overwrite=overwrite) as tmp:
+        with open(tmp, "w", newline="", encoding="utf-8") as fh:
+            writer = csv.DictWriter(fh, fieldnames=SUITABILITY_TABLE_COLUMNS, extrasaction="ignore")
+            writer.writeheader()
+            for row in rows:
+                writer.writerow({k: ("" if row.get(k) is None else row.get(k)) for k in SUITABILITY_TABLE_COLUMNS})
+    return Path(path)
