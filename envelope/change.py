@@ -2,10 +2,7 @@
 
 from __future__ import annotations
 
-import json
 import math
-import os
-from pathlib import Path
 
 import dask
 import dask.array
@@ -31,17 +28,12 @@ __all__ = [
     "CHANGE_NODATA",
     "classify_range_change",
     "summarise_change",
-    "resolve_threshold",
-    "range_change",
-    "range_change_batch",
     "change_table",
-    "write_change_table",
-    "SCENARIO_COLUMNS",
+    "LABEL_COLUMNS",
 ]
 
 NOW_CODES = (1, 2)          # lost, stable: the current range
 FUTURE_CODES = (2, 3, 4)    # stable, gained, gained_novel: the future range
-SCENARIO_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path")
 LABEL_COLUMNS = ("name", "pathway", "climate_model", "horizon")
 _N = len(CHANGE_CLASSES)
 
@@ -272,211 +264,6 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
 
 
 
-# --------------------------------------------------------------------------- threshold
-
-def _tag_threshold(tags: dict, name: str):
-    raw = tags.get("threshold")
-    if raw is None:
-        return None, None
-    if isinstance(raw, str):
-        try:
-            raw = json.loads(raw)
-        except json.JSONDecodeError:
-            raise InputError(f"{name}: tag 'threshold' holds {raw!r}; expected a number between 0 and 1") from None
-    value = check_threshold(raw, source=f"{name}: tag 'threshold'")
-    return value, tags.get("threshold_rule")
-
-
-def resolve_threshold(now_tags: dict, future_tags: dict, threshold=None, *, now_name="NOW", future_name="FUTURE"):
-    """The suitability threshold and its rule: ``threshold`` if given, else the rasters' tags.
-
-    Returns ``(threshold, rule)``. A given threshold wins (rule "given"). Otherwise the
-    ``threshold`` tag (a JSON number) of NOW, or of FUTURE if only it has one; NOW and FUTURE
-    holding different thresholds is an error, as is neither holding one.
-    """
-    if threshold is not None:
-        return check_threshold(threshold, source="--threshold"), "given"
-    now_value, now_rule = _tag_threshold(now_tags, now_name)
-    future_value, future_rule = _tag_threshold(future_tags, future_name)
-    if now_value is None and future_value is None:
-        raise InputError(f"{now_name} has no 'threshold' tag; pass --threshold")
-    if now_value is not None and future_value is not None and not math.isclose(now_value, future_value,
-                                                                                rel_tol=0, abs_tol=1e-12):
-        raise InputError(f"{now_name} has threshold {now_value!r} but {future_name} has {future_value!r}; "
-                         "pass --threshold to choose one")
-    if now_value is not None:
-        return now_value, now_rule
-    return future_value, future_rule
-
-
-# --------------------------------------------------------------------------- files
-
-def _open(path, *, what, band=None):
-    from envelope.io.rasters import open_layer
-
-    if not Path(path).exists():
-        raise InputError(f"{path}: {what} file not found")
-    return open_layer(path, band=band)
-
-
-def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, elevation):
-    """Open and check one future map (and its MESS) against NOW; return classes and threshold."""
-    from envelope.grids import check_same_grid
-    from envelope.io.rasters import read_tags
-
-    future = _open(future_path, what="future suitability")
-    check_same_grid(now, future, ref_name=str(now_path), other_name=str(future_path))
-    value, rule = resolve_threshold(read_tags(now_path), read_tags(future_path), threshold,
-                                    now_name=str(now_path), future_name=str(future_path))
-    mess = None
-    if mess_path is not None:
-        # `envelope project --mess` writes two bands: the MESS value and the most dissimilar variable
-        mess = _open(mess_path, what="MESS", band=1)
-        check_same_grid(now, mess, ref_name=str(now_path), other_name=str(mess_path))
-    classes = classify_range_change(now, future, value, mess=mess)
-    classes.attrs["mess"] = mess is not None
-    return classes, value, rule
-
-
-def _open_elevation(now, now_path, elevation_path):
-    if elevation_path is None:
-        return None
-    from envelope.grids import check_same_grid
-
-    elevation = _open(elevation_path, what="elevation")
-    check_same_grid(now, elevation, ref_name=str(now_path), other_name=str(elevation_path))
-    return elevation
-
-
-def _write_pair(classes, summary, raster_tmp, summary_tmp):
-    from envelope.io.writing import write_raster
-
-    tags = {"threshold": summary["threshold"], "threshold_state": ">=", "content": "range change classes"}
-    if summary.get("threshold_rule") is not None:
-        tags["threshold_rule"] = summary["threshold_rule"]
-    write_raster(classes, raster_tmp, overwrite=True, tags=tags, categories=dict(CHANGE_CLASSES),
-                 nodata=CHANGE_NODATA)
-    Path(summary_tmp).write_text(json.dumps(summary, indent=2, allow_nan=False) + "\n")
-
-
-def range_change(now, future, out, summary, *, threshold=None, mess=None, elevation=None,
-                 edge_percentile: float = 95.0, overwrite: bool = False) -> dict:
-    """Classify range change between suitability rasters ``now`` and ``future``; write map and summary.
-
-    Writes the class raster ``out`` (uint8, categories in its tags) and the JSON ``summary``
-    together, atomically: after an error neither is written. Returns the summary dict.
-    See :func:`summarise_change` for the measures and docs/change.md for their definitions.
-    """
-    from envelope.io.atomic import atomic_outputs, check_writable
-
-    for path in (out, summary):
-        check_writable(path, overwrite)
-    if Path(out).resolve() == Path(summary).resolve():
-        raise InputError(f"{out}: the change map and the summary must be different files")
-    now_da = _open(now, what="current suitability")
-    elevation_da = _open_elevation(now_da, now, elevation)
-    classes, value, rule = _prepare(now, now_da, future, threshold, mess, elevation, elevation_da)
-    result = summarise_change(classes, elevation=elevation_da, edge_percentile=edge_percentile)
-    result["threshold_rule"] = rule
-    result["inputs"] = {"now": str(now), "future": str(future), "mess": None if mess is None else str(mess),
-                        "elevation": None if elevation is None else str(elevation)}
-    with atomic_outputs([out, summary], overwrite) as (raster_tmp, summary_tmp):
-        _write_pair(classes, result, raster_tmp, summary_tmp)
-    return result
-
-
-def _read_scenarios(path):
-    import pandas as pd
-
-    path = Path(path)
-    if not path.is_file():
-        raise InputError(f"{path}: scenario table not found")
-    try:
-        table = pd.read_csv(path, dtype=str, keep_default_na=False)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path}: not a readable CSV table ({' '.join(str(exc).split())})") from None
-    missing = [c for c in SCENARIO_COLUMNS if c not in table.columns]
-    if missing:
-        raise InputError(f"{path}: column {missing[0]!r} is missing (found {', '.join(table.columns) or 'none'}; "
-                         f"expected {', '.join(SCENARIO_COLUMNS)} and optionally mess_path)")
-    if table.empty:
-        raise InputError(f"{path}: the scenario table has no rows")
-    for i, name in enumerate(table["name"], start=2):
-        if not name or any(ch in name for ch in "/\\") or name in (".", ".."):
-            raise InputError(f"{path}: row {i} column 'name' is {name!r}; expected a non-empty name usable as a file name")
-    duplicated = table["name"][table["name"].duplicated()]
-    if not duplicated.empty:
-        raise InputError(f"{path}: column 'name' repeats {duplicated.iloc[0]!r}; names must be unique")
-    base = path.parent
-
-    def resolve(value):
-        p = Path(value)
-        return p if p.is_absolute() else base / p
-
-    rows = []
-    for i, row in enumerate(table.to_dict("records"), start=2):
-        future = resolve(row["path"])
-        if not row["path"] or not future.is_file():
-            raise InputError(f"{path}: row {i} column 'path' names {row['path']!r}, which is not a file")
-        mess = row.get("mess_path") or None
-        if mess is not None:
-            mess = resolve(mess)
-            if not mess.is_file():
-                raise InputError(f"{path}: row {i} column 'mess_path' names {row['mess_path']!r}, which is not a file")
-        rows.append({**{c: row[c] for c in LABEL_COLUMNS}, "path": future, "mess_path": mess})
-    return rows
-
-
-def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevation=None,
-                       edge_percentile: float = 95.0, overwrite: bool = False):
-    """Range change of ``now`` against every future map listed in the CSV ``scenarios``.
-
-    ``scenarios`` has columns name, pathway, climate_model, horizon, path (future suitability
-    raster) and optionally mess_path; relative paths are read from the table's folder. For
-    each row ``out_dir/<name>.tif`` and ``out_dir/<name>.json`` are written, and the combined
-    table (one row per scenario, see :func:`change_table`) goes to ``table``. Every input is
-    checked before anything is written, and all outputs appear together or not at all.
-    Returns the combined table (pandas.DataFrame).
-    """
-    from envelope.io.atomic import atomic_outputs, check_writable
-
-    rows = _read_scenarios(scenarios)
-    out_dir = Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"{out_dir}: exists and is not a folder")
-    if not out_dir.exists() and not out_dir.absolute().parent.is_dir():
-        raise InputError(f"{out_dir}: its parent folder does not exist")
-    outputs = []
-    for row in rows:
-        outputs += [out_dir / f"{row['name']}.tif", out_dir / f"{row['name']}.json"]
-    if out_dir.is_dir():
-        for p in outputs:
-            check_writable(p, overwrite)
-    check_writable(table, overwrite)
-
-    now_da = _open(now, what="current suitability")
-    elevation_da = _open_elevation(now_da, now, elevation)
-    prepared = []
-    for row in rows:  # check every scenario before the first byte is written
-        classes, value, rule = _prepare(now, now_da, row["path"], threshold, row["mess_path"], elevation, elevation_da)
-        prepared.append((classes, value, rule))
-    summaries = []
-    for row, (classes, value, rule) in zip(rows, prepared):
-        result = summarise_change(classes, elevation=elevation_da, edge_percentile=edge_percentile)
-        result["threshold_rule"] = rule
-        result["inputs"] = {"now": str(now), "future": str(row["path"]),
-                            "mess": None if row["mess_path"] is None else str(row["mess_path"]),
-                            "elevation": None if elevation is None else str(elevation)}
-        summaries.append(result)
-    frame = change_table(summaries, [{c: row[c] for c in LABEL_COLUMNS} for row in rows])
-    out_dir.mkdir(exist_ok=True)
-    with atomic_outputs(outputs + [table], overwrite) as tmps:
-        for k, (classes, _, _) in enumerate(prepared):
-            _write_pair(classes, summaries[k], tmps[2 * k], tmps[2 * k + 1])
-        frame.to_csv(tmps[-1], index=False)
-    return frame
-
-
 # --------------------------------------------------------------------------- table
 
 def _flatten(mapping, prefix=""):
@@ -509,12 +296,3 @@ def change_table(summaries: list[dict], labels: list[dict]):
             raise InputError(f"change table: label row {i} has no {missing[0]!r}; expected {', '.join(LABEL_COLUMNS)}")
         records.append({**{c: label[c] for c in LABEL_COLUMNS}, **_flatten(summary)})
     return pd.DataFrame.from_records(records)
-
-
-def write_change_table(df, path: str | os.PathLike, overwrite: bool = False) -> Path:
-    """Write the change table ``df`` as CSV to ``path`` atomically (refuses to replace without ``overwrite``)."""
-    from envelope.io.atomic import atomic_output
-
-    with atomic_output(path, overwrite) as tmp:
-        df.to_csv(tmp, index=False)
-    return Path(path)

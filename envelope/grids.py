@@ -116,8 +116,13 @@ def _fmt_res(res) -> str:
 
 
 def check_same_grid(ref: xr.DataArray, other: xr.DataArray, *, ref_name: str = "baseline",
-                    other_name: str = "grid") -> None:
-    """Raise :class:`GridMismatchError` naming the first difference between two grids.
+                    other_name: str = "grid") -> xr.DataArray:
+    """Raise :class:`GridMismatchError` naming the first difference between two grids; return ``other`` on ``ref``'s labels.
+
+    Grids are compared by CRS, transform and shape within a tolerance, never by exact
+    coordinate labels: a NetCDF and a GeoTIFF of one grid differ by float noise (~1e-14) in
+    their coordinates. The returned copy of ``other`` carries ``ref``'s x/y labels, so
+    xarray arithmetic between the two aligns exactly.
 
     Differences are looked for in the order CRS, resolution, shape, origin/transform, so
     the message names the most fundamental one, e.g.
@@ -146,6 +151,10 @@ def check_same_grid(ref: xr.DataArray, other: xr.DataArray, *, ref_name: str = "
         raise GridMismatchError(
             f"{other_name}: origin/transform (x0 {tb[2]:.10g}, y0 {tb[5]:.10g}, dy {tb[4]:.4g}) differs from "
             f"{ref_name} (x0 {ta[2]:.10g}, y0 {ta[5]:.10g}, dy {ta[4]:.4g})")
+    if other.dims[-2:] == ("y", "x") and {"x", "y"} <= set(ref.coords) and {"x", "y"} <= set(other.coords):
+        if not (other.indexes["x"].equals(ref.indexes["x"]) and other.indexes["y"].equals(ref.indexes["y"])):
+            other = other.assign_coords(x=ref["x"].values, y=ref["y"].values)
+    return other
 
 
 def align_to(da: xr.DataArray, ref: xr.DataArray, *, resampling: str = "bilinear") -> xr.DataArray:

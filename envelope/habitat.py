@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import csv
 import math
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -13,7 +11,7 @@ import xarray as xr
 from envelope.errors import GridMismatchError, InputError
 from envelope.kernels import fragmentation
 
-__all__ = ["read_class_table", "load_habitat", "fragmentation_by_latitude", "fragmentation_summary"]
+__all__ = ["habitat_on_grid", "fragmentation_by_latitude", "fragmentation_summary"]
 
 # Values this close outside 0..1 are float round-off (e.g. a float32 mean of ones) and are clipped.
 _RANGE_SLACK = 1e-6
@@ -21,86 +19,18 @@ _RANGE_SLACK = 1e-6
 _GRID_TOL = 1e-6
 
 
-# --------------------------------------------------------------------------- class table
-
-
-def read_class_table(path) -> dict:
-    """Read a land-cover class table: CSV with columns ``code`` and ``habitat_quality`` (0–1).
-
-    Other columns (e.g. ``name``) are ignored. Codes must be unique integers.
-
-    Parameters
-    ----------
-    path : str or Path
-
-    Returns
-    -------
-    dict of int -> float
-        Class code to habitat quality.
-
-    Raises
-    ------
-    InputError
-        Missing file or column, non-integer or duplicate code, quality not a number in 0–1,
-        empty table. The message names the file, the column and the row.
-    """
-    path = Path(path)
-    if not path.is_file():
-        raise InputError(f"{path}: class table not found")
-    try:
-        with open(path, newline="", encoding="utf-8-sig") as fh:
-            reader = csv.DictReader(fh)
-            columns = [c.strip() for c in (reader.fieldnames or [])]
-            rows = list(reader)
-    except (UnicodeDecodeError, csv.Error) as exc:
-        raise InputError(f"{path}: not a readable CSV class table ({exc})") from None
-    for column in ("code", "habitat_quality"):
-        if column not in columns:
-            raise InputError(f"{path}: column {column!r} missing (found {', '.join(columns) or 'no columns'}; "
-                             f"expected code,habitat_quality)")
-    table = {}
-    for line, row in enumerate(rows, start=2):  # line 1 is the header
-        row = {(k or "").strip(): (v or "").strip() for k, v in row.items() if k is not None}
-        raw_code, raw_quality = row.get("code", ""), row.get("habitat_quality", "")
-        try:
-            code_f = float(raw_code)
-            if not code_f.is_integer():
-                raise ValueError
-            code = int(code_f)
-        except ValueError:
-            raise InputError(f"{path}: line {line}, column 'code': expected an integer class code, "
-                             f"got {raw_code!r}") from None
-        try:
-            quality = float(raw_quality)
-        except ValueError:
-            raise InputError(f"{path}: line {line}, column 'habitat_quality': expected a number in 0–1, "
-                             f"got {raw_quality!r}") from None
-        if not (0.0 <= quality <= 1.0):
-            raise InputError(f"{path}: line {line}, column 'habitat_quality': {quality:g} for code {code} "
-                             f"is outside 0–1")
-        if code in table:
-            raise InputError(f"{path}: column 'code': code {code} appears twice (line {line})")
-        table[code] = quality
-    if not table:
-        raise InputError(f"{path}: class table has no rows")
-    return table
-
-
 # --------------------------------------------------------------------------- helpers
 
 
 def _name(source) -> str:
-    if isinstance(source, xr.DataArray):
-        return str(source.name or "habitat layer")
-    return str(source)
+    return str(getattr(source, "name", None) or "habitat layer")
 
 
 def _reference_layer(grid) -> xr.DataArray:
-    """A 2-D (y, x) layer defining the target grid, from a climate stack, a layer or a path."""
+    """A 2-D (y, x) layer defining the target grid, from a climate stack or a layer."""
     if not isinstance(grid, xr.DataArray):
-        from envelope.io.rasters import open_layer
-
-        grid = open_layer(grid)
+        raise InputError(f"climate grid: expected a DataArray, got {type(grid).__name__} (open files with "
+                         "envelope.pipelines.inputs.load_habitat)")
     if "variable" in grid.dims:
         grid = grid.isel(variable=0, drop=True)
     if set(grid.dims) != {"y", "x"}:
@@ -108,19 +38,15 @@ def _reference_layer(grid) -> xr.DataArray:
     return grid
 
 
-def _open(source, *, categorical: bool) -> xr.DataArray:
-    if isinstance(source, xr.DataArray):
-        da = source
-    else:
-        from envelope.io.rasters import open_layer
-
-        if not Path(source).exists():
-            raise InputError(f"{source}: habitat raster not found")
-        da = open_layer(source)
+def _checked_layer(source, source_name: str) -> xr.DataArray:
+    if not isinstance(source, xr.DataArray):
+        raise InputError(f"habitat: expected a DataArray, got {type(source).__name__} (open files with "
+                         "envelope.pipelines.inputs.load_habitat)")
+    da = source
     if set(da.dims) != {"y", "x"}:
-        raise InputError(f"{_name(source)}: expected a single-band (y, x) layer, got dims {da.dims}")
+        raise InputError(f"{source_name}: expected a single-band (y, x) layer, got dims {da.dims}")
     if da.rio.crs is None:
-        raise InputError(f"{_name(source)}: raster has no CRS; expected the climate grid's CRS")
+        raise InputError(f"{source_name}: raster has no CRS; expected the climate grid's CRS")
     return da.transpose("y", "x")
 
 
@@ -150,9 +76,8 @@ def _codes_to_quality(block, codes, quality):
     return np.where(found, quality[idx], np.nan).astype(np.float32)
 
 
-def _land_cover_quality(da: xr.DataArray, classes, source_name: str) -> xr.DataArray:
+def _land_cover_quality(da: xr.DataArray, table: dict, source_name: str, table_name: str) -> xr.DataArray:
     """Map land-cover codes to habitat quality; unknown codes are an error naming them and the table."""
-    table = read_class_table(classes)
     nodata = _nodata_mask(da)
     codes_da = da.where(~nodata)
     values = codes_da.data
@@ -171,7 +96,7 @@ def _land_cover_quality(da: xr.DataArray, classes, source_name: str) -> xr.DataA
     if unknown:
         shown = ", ".join(str(c) for c in unknown[:10]) + (" ..." if len(unknown) > 10 else "")
         raise InputError(f"{source_name}: class code(s) {shown} found in the land cover are not in the "
-                         f"class table {classes} (it lists {', '.join(str(c) for c in sorted(table))})")
+                         f"class table {table_name} (it lists {', '.join(str(c) for c in sorted(table))})")
     codes = np.array(sorted(table), dtype=np.int64)
     quality = np.array([table[c] for c in codes], dtype=np.float64)
     out = xr.apply_ufunc(_codes_to_quality, codes_da, kwargs={"codes": codes, "quality": quality},
@@ -259,11 +184,13 @@ def _on_grid(da: xr.DataArray, ref: xr.DataArray) -> xr.DataArray:
 # --------------------------------------------------------------------------- load_habitat
 
 
-def load_habitat(path, grid, *, classes=None, align=False, nodata_as=0.0) -> xr.DataArray:
+def habitat_on_grid(layer, grid, *, classes=None, align=False, nodata_as=0.0, name=None,
+                    class_table_name=None) -> xr.DataArray:
     """Habitat availability (fraction of each cell usable, 0–1) on the climate grid.
 
-    ``path`` is either a habitat-availability raster (fraction 0–1) or, with ``classes``, a
-    categorical land-cover raster whose codes the class table maps to habitat quality 0–1.
+    ``layer`` is either a habitat-availability layer (fraction 0–1) or, with ``classes``, a
+    categorical land-cover layer whose codes the class table maps to habitat quality 0–1.
+    (:func:`envelope.pipelines.inputs.load_habitat` opens the files and calls this.)
     The result is on ``grid``:
 
     - same grid (CRS, transform, shape): passed through;
@@ -282,12 +209,14 @@ def load_habitat(path, grid, *, classes=None, align=False, nodata_as=0.0) -> xr.
 
     Parameters
     ----------
-    path : str or Path or DataArray (y, x)
-        Habitat raster, or an in-memory layer with a CRS.
-    grid : DataArray (variable, y, x) or (y, x), or path
+    layer : DataArray (y, x)
+        Habitat layer with a CRS.
+    grid : DataArray (variable, y, x) or (y, x)
         The climate stack, or any layer defining the target grid.
-    classes : str or Path, optional
-        Class table CSV (``code,habitat_quality``; see `read_class_table`); makes ``path`` land cover.
+    classes : dict of int -> float, optional
+        Class code to habitat quality (``envelope.io.tables.read_class_table``); makes ``layer`` land cover.
+    name, class_table_name : str, optional
+        How error messages and ``attrs`` name the layer (default its ``name``) and the class table.
     align : bool, default=False
         Resample a grid that does not match and is not an aligned finer grid.
     nodata_as : float, default=0.0
@@ -315,11 +244,11 @@ def load_habitat(path, grid, *, classes=None, align=False, nodata_as=0.0) -> xr.
         raise InputError(f"nodata_as: expected a value in 0–1 or NaN, got {nodata_as:g}")
     from envelope.grids import align_to, check_same_grid
 
-    source_name = _name(path)
+    source_name = name or _name(layer)
     ref = _reference_layer(grid)
-    src = _open(path, categorical=classes is not None)
+    src = _checked_layer(layer, source_name)
     if classes is not None:
-        values = _land_cover_quality(src, classes, source_name)
+        values = _land_cover_quality(src, classes, source_name, class_table_name or "given")
     else:
         values = _checked_fraction(src, source_name)
     if not math.isnan(nodata_as):
@@ -346,7 +275,7 @@ def load_habitat(path, grid, *, classes=None, align=False, nodata_as=0.0) -> xr.
                     "nodata_as": "nan" if math.isnan(nodata_as) else f"{nodata_as:g}",
                     "meaning": "habitat availability: usable fraction of each cell, 0-1"}
     if classes is not None:
-        result.attrs["class_table"] = str(classes)
+        result.attrs["class_table"] = str(class_table_name or "given")
     result.name = "habitat"
     return result
 

@@ -290,7 +290,7 @@ def record_coordinates(table: pd.DataFrame, source: str = "records"):
     )
 
 
-def record_years(table: pd.DataFrame) -> np.ndarray:
+def years_of_records(table: pd.DataFrame) -> np.ndarray:
     """Year of each record (float64, NaN if unknown): ``year`` where given, else the leading year of ``eventDate``.
 
     For an ISO 8601 interval in ``eventDate`` ("2001-05-03/2002-01-10") the start year counts.
@@ -348,7 +348,7 @@ def clean_occurrences(
     *,
     crs=None,
     max_uncertainty_m: float | None = None,
-    years=None,
+    record_years=None,
     thin_km: float | None = None,
     one_per_cell: bool = True,
     keep_status=("present",),
@@ -368,7 +368,7 @@ def clean_occurrences(
         ``coordinateUncertaintyInMeters`` above ``max_uncertainty_m``; records without a
         stated uncertainty are kept.
     ``outside_years``
-        Year (``year``, else the start of ``eventDate``) outside the inclusive ``years``
+        Year (``year``, else the start of ``eventDate``) outside the inclusive ``record_years``
         range. A record without a readable year is dropped here too when a range is given:
         it cannot be shown to fall in the period.
     ``outside_grid``
@@ -389,7 +389,7 @@ def clean_occurrences(
     crs : str or pyproj.CRS, optional
         CRS of the record coordinates; default ``table.attrs["crs"]`` or EPSG:4326.
     max_uncertainty_m : float, optional
-    years : (int or None, int or None), optional
+    record_years : (int or None, int or None), optional
         Inclusive first and last year.
     thin_km : float, optional
         Minimum distance between kept records, km.
@@ -439,11 +439,11 @@ def clean_occurrences(
             with np.errstate(invalid="ignore"):
                 drop(uncertainty > float(max_uncertainty_m), "imprecise")
 
-    if years is not None:
-        start, end = _check_years(years)
+    if record_years is not None:
+        start, end = _check_years(record_years)
         if find_column(table, "year") is None and find_column(table, "eventDate") is None:
             raise InputError(f"{source}: a year range was asked for but there is no 'year' or 'eventDate' column")
-        year = record_years(table)
+        year = years_of_records(table)
         with np.errstate(invalid="ignore"):
             drop(~((year >= start) & (year <= end)), "outside_years")
 

@@ -16,7 +16,7 @@ from envelope.reach import DispersalSettings, cell_lonlat
 from envelope.reachable_gain import OBJECTIVES, CandidatePatches, ReachGain, candidate_patches
 
 __all__ = ["CandidatePatches", "ReachGain", "TargetResult", "candidate_patches", "greedy_selection",
-           "random_baseline", "nearest_baseline", "target_restoration", "write_target_outputs",
+           "random_baseline", "nearest_baseline", "target_restoration",
            "TABLE_COLUMNS", "OBJECTIVES"]
 
 TABLE_COLUMNS = ["rank", "patch_id", "area_km2", "cost", "added_reachable_km2", "added_per_km2",
@@ -266,22 +266,3 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
         "method": "lazy greedy (CELF, Leskovec et al. 2007) on deterministic reach runs",
     }
     return TargetResult(rank=rank_da, table=table, summary=summary)
-
-
-def write_target_outputs(result: TargetResult, out, table_path, summary_path, *, overwrite=False, tags=None) -> dict:
-    """Write the rank raster, the patch table (CSV) and the summary JSON; all checked first, each atomic."""
-    import json
-
-    from envelope.provenance import json_text
-    from envelope.io.atomic import atomic_output, check_writable
-    from envelope.io.writing import write_raster
-
-    for p in (out, table_path, summary_path):
-        check_writable(p, overwrite)
-    write_raster(result.rank, out, overwrite=overwrite, nodata=RANK_NODATA,
-                 tags={**(tags or {}), "meaning": "restoration priority rank (1 = first); 0 = not chosen"})
-    with atomic_output(table_path, overwrite=overwrite) as tmp:
-        result.table.to_csv(tmp, index=False)
-    with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json_text(result.summary))
-    return {"priority": str(out), "table": str(table_path), "summary": str(summary_path)}

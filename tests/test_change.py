@@ -9,16 +9,8 @@ import pytest
 import rioxarray  # noqa: F401  (registers .rio)
 import xarray as xr
 
-from envelope.change import (
-    CHANGE_CLASSES,
-    change_table,
-    classify_range_change,
-    range_change,
-    range_change_batch,
-    resolve_threshold,
-    summarise_change,
-    write_change_table,
-)
+from envelope.change import CHANGE_CLASSES, change_table, classify_range_change, summarise_change
+from envelope.pipelines.change import range_change, range_change_batch, write_change_table
 from envelope.errors import GridMismatchError, InputError, OutputExistsError
 from envelope.kernels.change import meridian_arc_km
 
@@ -177,22 +169,6 @@ def test_projected_grid_centroid_is_cell_centre():
     assert s["area_km2"]["lost"] == pytest.approx(res * res / 1e6, rel=1e-9)
 
 
-def test_resolve_threshold_rules():
-    # Common practice, no source: contract of the issue.
-    assert resolve_threshold({"threshold": 0.3, "threshold_rule": "max_tss"}, {"threshold": 0.3}) == (0.3, "max_tss")
-    assert resolve_threshold({"threshold": "0.3"}, {}) == (0.3, None)
-    assert resolve_threshold({}, {}, 0.2) == (0.2, "given")
-    assert resolve_threshold({"threshold": 0.3}, {"threshold": 0.4}, 0.2) == (0.2, "given")
-    with pytest.raises(InputError, match="now.tif has no 'threshold' tag; pass --threshold"):
-        resolve_threshold({}, {}, now_name="now.tif")
-    with pytest.raises(InputError, match="a.tif has threshold 0.3 but b.tif has 0.4"):
-        resolve_threshold({"threshold": 0.3}, {"threshold": 0.4}, now_name="a.tif", future_name="b.tif")
-    with pytest.raises(InputError, match="a.tif: tag 'threshold'.*between 0 and 1"):
-        resolve_threshold({"threshold": 7}, {}, now_name="a.tif")
-    with pytest.raises(InputError, match="--threshold: found 1.5"):
-        resolve_threshold({}, {}, 1.5)
-
-
 def test_change_table_flattens():
     summaries = [{"area_km2": {"gained": 1.0, "lost": 2.0}, "classes": {"0": "absent"}, "threshold": 0.3},
                  {"area_km2": {"gained": 3.0, "lost": None}, "classes": {"0": "absent"}, "threshold": 0.3}]
@@ -275,8 +251,8 @@ def test_batch_writes_all_and_table(maps, tmp_path):
     with pytest.raises(OutputExistsError):
         write_change_table(df, tmp_path / "copy.csv")
     # a missing future file is named with its row; nothing new is written
-    pd.DataFrame({"name": ["x"], "pathway": ["p"], "climate_model": ["m"], "horizon": ["h"],
+    pd.DataFrame({"name": ["x"], "pathway": ["p"], "climate_model": ["m"], "horizon": ["2050"],
                   "path": ["nope.tif"]}).to_csv(scen, index=False)
-    with pytest.raises(InputError, match="row 2 column 'path' names 'nope.tif'"):
+    with pytest.raises(InputError, match=r"row 1 \(x\) future suitability raster .*nope.tif not found"):
         range_change_batch(maps["now"], scen, tmp_path / "out2", tmp_path / "c2.csv")
     assert not (tmp_path / "out2").exists() and not (tmp_path / "c2.csv").exists()

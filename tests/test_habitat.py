@@ -10,7 +10,9 @@ from affine import Affine
 from pyproj import Geod
 
 from envelope.errors import GridMismatchError, InputError
-from envelope.habitat import fragmentation_by_latitude, fragmentation_summary, load_habitat, read_class_table
+from envelope.habitat import fragmentation_by_latitude, fragmentation_summary
+from envelope.pipelines.inputs import load_habitat
+from envelope.io.tables import read_class_table
 
 
 def layer(values, *, x0=-150.0, y_top=45.0, res=0.04, crs="EPSG:4326", nodata=None, dtype=None):

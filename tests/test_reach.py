@@ -6,7 +6,7 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.grids import cell_area_km2
-from envelope.reach import DispersalSettings, REACH_CLASSES, edge_shift_summary, simulate_reach, threshold_from_tags
+from envelope.reach import DispersalSettings, REACH_CLASSES, edge_shift_summary, simulate_reach
 
 
 def layer(values, lat0=10.0, lon0=0.0, res=0.05):
@@ -135,15 +135,6 @@ def test_habitat_outside_unit_interval():
     now, fut, hab, start = corridor()
     with pytest.raises(InputError, match="habitat must lie in 0..1"):
         run(now, fut, layer(hab.values * 2), start)
-
-
-def test_threshold_from_tags():
-    assert threshold_from_tags({"a.tif": {"threshold": 0.4}, "b.tif": {"threshold": 0.4}}) == 0.4
-    with pytest.raises(InputError, match="no 'threshold' tag"):
-        threshold_from_tags({"a.tif": {}})
-    with pytest.raises(InputError, match="disagree"):
-        threshold_from_tags({"a.tif": {"threshold": 0.4}, "b.tif": {"threshold": 0.5}})
-    assert threshold_from_tags({"a.tif": {}}, given=0.3) == 0.3
 
 
 def test_summary_has_fragmentation_by_latitude():

@@ -46,7 +46,7 @@ def test_every_reason_counted_exactly():
         [*centre(2, 3), 10, 2000, "present"],       # thinned: 0.1 deg (~7.9 km) from the first
         [*centre(12, 15), None, 2005, None],        # kept: unknown uncertainty and status are kept
     ]
-    records = clean_occurrences(dwc(rows), grid, max_uncertainty_m=1000, years=(1990, 2020), thin_km=10)
+    records = clean_occurrences(dwc(rows), grid, max_uncertainty_m=1000, record_years=(1990, 2020), thin_km=10)
     expected = {"absent": 2, "malformed": 3, "imprecise": 1, "outside_years": 2, "outside_grid": 1,
                 "no_climate": 1, "duplicate_cell": 1, "thinned": 1}
     assert dict(records.dropped) == expected
@@ -76,7 +76,7 @@ def test_eventdate_gives_the_year():
     table = pd.DataFrame({"decimalLongitude": [lon, centre(4, 4)[0], centre(5, 5)[0], centre(6, 6)[0]],
                           "decimalLatitude": [lat, centre(4, 4)[1], centre(5, 5)[1], centre(6, 6)[1]],
                           "eventDate": ["1995-06-01", "1989-12-31/1990-01-02", "2020", "garbage"]})
-    records = clean_occurrences(table, grid, years=(1990, 2020))
+    records = clean_occurrences(table, grid, record_years=(1990, 2020))
     assert records.dropped["outside_years"] == 2
     assert records.table["eventDate"].tolist() == ["1995-06-01", "2020"]
 
@@ -229,9 +229,9 @@ def test_bad_arguments():
     grid = make_stack()
     table = pd.DataFrame({"decimalLongitude": [centre(1, 1)[0]], "decimalLatitude": [centre(1, 1)[1]]})
     with pytest.raises(InputError, match="no 'year' or 'eventDate' column"):
-        clean_occurrences(table, grid, years=(1990, 2000))
+        clean_occurrences(table, grid, record_years=(1990, 2000))
     with pytest.raises(InputError, match="first year 2000 is after last year 1990"):
-        clean_occurrences(table.assign(year=1995), grid, years=(2000, 1990))
+        clean_occurrences(table.assign(year=1995), grid, record_years=(2000, 1990))
     with pytest.raises(InputError, match="thin_km"):
         clean_occurrences(table, grid, thin_km=-1)
     with pytest.raises(InputError, match="not understood by pyproj"):

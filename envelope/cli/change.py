@@ -46,7 +46,7 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
       $ envelope change --now now.tif --future f.tif --mess mess.tif --threshold 0.42 --out c.tif --summary c.json
       $ envelope change --now now.tif --scenarios suitability.csv --out-dir changes --table changes.csv
     """
-    from envelope.change import range_change, range_change_batch
+    from envelope.pipelines.change import range_change, range_change_batch
 
     if scenarios is not None:
         clash = [flag for flag, value in (("--future", future), ("--out", out), ("--summary", summary),

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import click
 
-from envelope.cli.options import climate_opt, overwrite_opt, seed_opt, variables_opt, positive_float
+from envelope.cli.options import (climate_opt, overwrite_opt, positive_float, record_years_opt, record_years_value,
+                                  seed_opt, variables_opt)
 
 
 def _rule(ctx, param, value):
@@ -22,18 +23,6 @@ def _rule(ctx, param, value):
     return number
 
 
-def _years(ctx, param, value):
-    if value is None:
-        return None
-    try:
-        lo, hi = (int(v) for v in value.split("-"))
-    except ValueError:
-        raise click.BadParameter(f"{value!r}: expected FIRST-LAST, e.g. 1990-2020", ctx=ctx, param=param) from None
-    if lo > hi:
-        raise click.BadParameter(f"{value!r}: first year after last", ctx=ctx, param=param)
-    return lo, hi
-
-
 @click.command()
 @click.option("--presences", required=True, type=click.Path(exists=True, dir_okay=False),
               help="Occurrence records: Darwin Core CSV/TSV (decimalLongitude, decimalLatitude, ...).")
@@ -43,7 +32,7 @@ def _years(ctx, param, value):
               help="Fit summary JSON (default: <model>.fit.json beside the model; per-fold CSV beside it).")
 @click.option("--method", type=click.Choice(["pointprocess", "envelope", "brt", "forest", "ensemble"]),
               default="pointprocess", show_default=True, help="Model family.")
-@click.option("--background", "n_background", type=click.IntRange(min=100), default=10_000, show_default=True,
+@click.option("--background", "background", type=click.IntRange(min=100), default=10_000, show_default=True,
               help="Number of random background cells.")
 @click.option("--bias", type=click.Path(exists=True, dir_okay=False), default=None,
               help="Sampling-effort raster: background drawn in proportion to it (same grid as the climate).")
@@ -51,18 +40,18 @@ def _years(ctx, param, value):
 @click.option("--blocks-km", type=float, callback=positive_float, default=None,
               help="Side of the square CV blocks in km (default: derived from the predictors' spatial autocorrelation).")
 @click.option("--folds", type=click.IntRange(min=2, max=20), default=5, show_default=True, help="Number of CV folds.")
-@click.option("--cv", "cv_scheme", type=click.Choice(["block", "random"]), default="block", show_default=True,
+@click.option("--cv", "cv", type=click.Choice(["block", "random"]), default="block", show_default=True,
               help="Spatial block CV, or random K-fold for comparison.")
 @click.option("--threshold-rule", callback=_rule, default="max-sss", show_default=True,
               help="max-sss, p10, min-presence, or a fixed number in 0..1.")
 @click.option("--max-uncertainty-m", type=float, default=None, help="Drop records less precise than this.")
-@click.option("--years", callback=_years, default=None, metavar="FIRST-LAST", help="Keep records from these years.")
+@record_years_opt
 @click.option("--thin-km", type=float, callback=positive_float, default=None,
               help="Spatially thin records to this minimum distance.")
 @seed_opt
 @overwrite_opt
-def fit(presences, climate, out, summary, method, n_background, bias, variables, blocks_km, folds, cv_scheme,
-        threshold_rule, max_uncertainty_m, years, thin_km, seed, overwrite):
+def fit(presences, climate, out, summary, method, background, bias, variables, blocks_km, folds, cv,
+        threshold_rule, max_uncertainty_m, record_years, thin_km, seed, overwrite):
     """Fit and cross-validate a presence/background model, and save it.
 
     Cleans the records against the baseline climate (every dropped record is counted by
@@ -94,9 +83,10 @@ def fit(presences, climate, out, summary, method, n_background, bias, variables,
         from envelope.grids import check_same_grid
 
         check_same_grid(stack, bias_layer, ref_name="climate", other_name=f"--bias {bias}")
-    options = FitOptions(method=method, n_background=n_background, variables=variables, block_km=blocks_km,
-                         n_folds=folds, cv_scheme=cv_scheme, threshold_rule=threshold_rule, seed=seed,
-                         max_uncertainty_m=max_uncertainty_m, years=years, thin_km=thin_km)
+    options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
+                         folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed,
+                         max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
+                         thin_km=thin_km)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True) as bar:
         tasks = {}

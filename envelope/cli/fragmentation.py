@@ -51,7 +51,8 @@ def fragmentation(habitat, classes, grid, align_habitat, band_deg, habitat_thres
 
     from envelope.errors import InputError
     from envelope.provenance import json_text
-    from envelope.habitat import fragmentation_by_latitude, fragmentation_summary, load_habitat
+    from envelope.habitat import fragmentation_by_latitude, fragmentation_summary
+    from envelope.pipelines.inputs import load_habitat
     from envelope.io.atomic import atomic_output, check_writable
     from envelope.io.rasters import open_layer
 

@@ -8,9 +8,12 @@ Used by:
   seed_opt       -- fit, reach
   json_opt       -- info, inspect
   reach_inputs_opt -- reach, target (optional there: --study can supply them)
+  record_years_opt -- records, fit (--record-years; the old --years still works, with a warning)
 """
 
 from __future__ import annotations
+
+import re
 
 import click
 
@@ -30,6 +33,45 @@ def _csv_list(ctx, param, value):
     if not items:
         raise click.BadParameter(f"{value!r} holds no names; give a comma-separated list", ctx=ctx, param=param)
     return items
+
+
+def _record_years(ctx, param, value):
+    """'1990-2020' -> (1990, 2020); '2001' -> (2001, 2001)."""
+    if value is None:
+        return None
+    match = re.fullmatch(r"\s*(\d{1,4})\s*(?:[-:/]\s*(\d{1,4})\s*)?", value)
+    if not match:
+        raise click.BadParameter(f"{value!r}; expected FIRST-LAST, e.g. 1990-2020", ctx=ctx, param=param)
+    first = int(match.group(1))
+    last = int(match.group(2)) if match.group(2) else first
+    if first > last:
+        raise click.BadParameter(f"{value!r}: first year is after last year", ctx=ctx, param=param)
+    return first, last
+
+
+def _old_record_years(ctx, param, value):
+    parsed = _record_years(ctx, param, value)
+    if parsed is not None:
+        click.echo("Warning: --years is deprecated for the record-year filter; use --record-years "
+                   "(--years names horizon years in reach and target)", err=True)
+        ctx.meta["old_record_years"] = parsed
+    return parsed
+
+
+def record_years_opt(f):
+    """--record-years FIRST-LAST (and the deprecated spelling --years), passed as ``record_years``."""
+    f = click.option("--years", "old_record_years", default=None, callback=_old_record_years, hidden=True,
+                     expose_value=False, metavar="FIRST-LAST", help="Deprecated spelling of --record-years.")(f)
+    return click.option("--record-years", "record_years", default=None, callback=_record_years, metavar="FIRST-LAST",
+                        help="Keep records from these years (inclusive), e.g. 1990-2020; records without a year "
+                             "are dropped.")(f)
+
+
+def record_years_value(record_years):
+    """The record-year filter given as --record-years or, deprecated, as --years."""
+    if record_years is not None:
+        return record_years
+    return click.get_current_context().meta.get("old_record_years")
 
 
 overwrite_opt = click.option("--overwrite", is_flag=True, help="Replace output files that already exist.")

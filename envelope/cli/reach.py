@@ -42,13 +42,13 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     from rich.progress import Progress
 
     from envelope.errors import InputError
-    from envelope.grids import check_same_grid
-    from envelope.habitat import load_habitat
-    from envelope.io.atomic import check_writable
-    from envelope.io.rasters import open_layer, read_tags
-    from envelope.reach import (DispersalSettings, load_start, simulate_reach, threshold_from_tags,
-                                write_reach_outputs)
+    from envelope.io.atomic import check_distinct, check_writable
+    from envelope.pipelines.inputs import build_reach_inputs
+    from envelope.pipelines.reach import run_reach, write_reach_outputs
+    from envelope.reach import DispersalSettings
 
+    check_distinct({"--out": out, "--summary": summary, "--front": front, "--arrival": arrival},
+                   {"--now": now, "--future": futures, "--habitat": habitat, "--start": start, "--classes": classes})
     for p in (out, summary, front, arrival):
         if p:
             check_writable(p, overwrite)
@@ -57,25 +57,15 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     mean_km, mean_range = mean_distance_km
     settings = DispersalSettings(kernel=kernel, mean_distance_km=mean_km, shape=shape,
                                  mean_distance_range_km=mean_range if replicates else None)
-    now_layer = open_layer(now)
-    future_layers = []
-    for year, path in zip(years, futures):
-        layer = open_layer(path)
-        check_same_grid(now_layer, layer, ref_name=f"--now {now}", other_name=f"--future {path}")
-        future_layers.append((year, layer))
-    thr = threshold_from_tags({now: read_tags(now), **{p: read_tags(p) for p in futures}}, threshold)
-    hab = load_habitat(habitat, now_layer, classes=classes, align=align_habitat)
-    start_arr, start_info = load_start(start, now_layer)
-
+    inputs = build_reach_inputs(now, {None: list(zip(years, futures))}, habitat, start, settings=settings,
+                                classes=classes, align_habitat=align_habitat, threshold=threshold,
+                                now_year=now_year, step_years=step_years, rate=rate,
+                                persistence_years=persistence_years)
     console = Console(stderr=True)
     with Progress(console=console, transient=True) as bar:
         task = bar.add_task("dispersal steps", total=None)
-        result = simulate_reach(now_layer, future_layers, hab, start_arr, threshold=thr, settings=settings,
-                                now_year=now_year, step_years=step_years, rate=rate,
-                                persistence_years=persistence_years, replicates=replicates, seed=seed,
-                                progress=lambda i, n: bar.update(task, completed=i, total=n))
-    result.summary["start"] = start_info
-    result.summary["inputs"] = {"now": now, "futures": list(futures), "habitat": habitat, "classes": classes}
+        result = run_reach(inputs, replicates=replicates, seed=seed,
+                           progress=lambda i, n: bar.update(task, completed=i, total=n))
     written = write_reach_outputs(result, out, summary, front=front, arrival=arrival, overwrite=overwrite,
                                   tags={"software": "envelope"})
     _print(result.summary, written)

@@ -3,25 +3,10 @@
 from __future__ import annotations
 
 import json
-import re
-
 import click
 
-from envelope.cli.options import climate_opt, json_opt, output_opt, overwrite_opt, positive_float
-
-
-def _years(ctx, param, value):
-    """'1990-2020' -> (1990, 2020); '2001' -> (2001, 2001)."""
-    if value is None:
-        return None
-    match = re.fullmatch(r"\s*(\d{1,4})\s*(?:[-:/]\s*(\d{1,4})\s*)?", value)
-    if not match:
-        raise click.BadParameter(f"{value!r}; expected FIRST-LAST, e.g. 1990-2020", ctx=ctx, param=param)
-    first = int(match.group(1))
-    last = int(match.group(2)) if match.group(2) else first
-    if first > last:
-        raise click.BadParameter(f"{value!r}: first year is after last year", ctx=ctx, param=param)
-    return first, last
+from envelope.cli.options import (climate_opt, json_opt, output_opt, overwrite_opt, positive_float,
+                                  record_years_opt, record_years_value)
 
 
 @click.command()
@@ -33,14 +18,13 @@ def _years(ctx, param, value):
                                           "required with --x-column/--y-column).")
 @click.option("--max-uncertainty-m", type=float, default=None, callback=positive_float, metavar="M",
               help="Drop records whose coordinateUncertaintyInMeters exceeds M.")
-@click.option("--years", default=None, callback=_years, metavar="FIRST-LAST",
-              help="Keep records from these years (inclusive), e.g. 1990-2020; records without a year are dropped.")
+@record_years_opt
 @click.option("--thin-km", type=float, default=None, callback=positive_float, metavar="KM",
               help="Keep records more than KM apart (greedy, in file order).")
 @output_opt(required=False, help="Write the cleaned records to this CSV file.")
 @overwrite_opt
 @json_opt
-def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, years, thin_km, out, overwrite,
+def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, record_years, thin_km, out, overwrite,
             as_json):
     """Clean occurrence records against a climate grid and report what was dropped.
 
@@ -54,7 +38,7 @@ def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, y
     \b
     Examples:
       $ envelope records sightings.csv --climate baseline.tif
-      $ envelope records sightings.csv --climate baseline.tif --years 1990-2020 \\
+      $ envelope records sightings.csv --climate baseline.tif --record-years 1990-2020 \\
           --max-uncertainty-m 1000 --thin-km 10 --out clean.csv
       $ envelope records plots.tsv --climate tmean.tif --climate precip.tif \\
           --x-column easting --y-column northing --crs EPSG:3035 --json
@@ -68,7 +52,8 @@ def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, y
         check_writable(out, overwrite)  # refuse before any work is done
     table = read_occurrences(records_path, x_column=x_column, y_column=y_column, crs=crs)
     grid = open_climate(list(climate))
-    result = clean_occurrences(table, grid, max_uncertainty_m=max_uncertainty_m, years=years, thin_km=thin_km)
+    result = clean_occurrences(table, grid, max_uncertainty_m=max_uncertainty_m,
+                               record_years=record_years_value(record_years), thin_km=thin_km)
     if out is not None:
         with atomic_output(out, overwrite) as tmp:
             result.table.to_csv(tmp, index=False)

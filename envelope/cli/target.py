@@ -110,7 +110,8 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
     from envelope.grids import check_same_grid
     from envelope.io.atomic import check_writable
     from envelope.io.rasters import open_layer
-    from envelope.targeting import target_restoration, write_target_outputs
+    from envelope.targeting import target_restoration
+    from envelope.pipelines.target import write_target_outputs
 
     for p in (out, table, summary):
         check_writable(p, overwrite)
@@ -129,7 +130,7 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
     else:
         model = _from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
                               mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years)
-    grid, grid_name = model["now"], model["now_name"]
+    grid, grid_name = model.now, model.now_name
     if candidate_classes is None:
         cand = open_layer(candidates)
     else:
@@ -147,16 +148,16 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
 
     t0 = time.perf_counter()
     with Console(stderr=True).status("choosing patches (deterministic reach runs)"):
-        result = target_restoration(grid, model["futures"], model["habitat"], model["start"], cand,
-                                    budget_km2=budget_km2, threshold=model["threshold"], settings=model["settings"],
+        futures = model.futures.get(None, model.futures)  # one --future path, or {path name: horizons}
+        result = target_restoration(grid, futures, model.habitat, model.start, cand,
+                                    budget_km2=budget_km2, threshold=model.threshold, settings=model.settings,
                                     cost=cost_layer, budget_cost=budget_cost, quality=quality_value,
-                                    objective=objective, now_year=model["now_year"], step_years=model["step_years"],
-                                    rate=model["rate"], persistence_years=model["persistence_years"],
+                                    objective=objective, **model.timing(),
                                     random_draws=random_draws, seed=seed, max_evaluations=max_evaluations,
                                     max_patch_km2=max_patch_km2)
     result.summary["seconds"] = round(time.perf_counter() - t0, 3)
-    result.summary["start"] = model["start_info"]
-    result.summary["inputs"] = {**model["inputs"], "candidates": candidates, "candidate_classes": candidate_classes,
+    result.summary["start"] = model.start_info
+    result.summary["inputs"] = {**model.inputs, "candidates": candidates, "candidate_classes": candidate_classes,
                                 "cost": cost,
                                 "quality": None if isinstance(quality_value, float) else quality}
     written = write_target_outputs(result, out, table, summary, overwrite=overwrite, tags={"software": "envelope"})
@@ -186,14 +187,12 @@ def _quality(text, grid, grid_name):
 
 
 def _from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
-                  mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years) -> dict:
+                  mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years):
     """The reach model from the command line: one climate path (--future/--years) or a suitability table."""
     from envelope.errors import InputError
-    from envelope.grids import check_same_grid
-    from envelope.habitat import load_habitat
-    from envelope.io.rasters import open_layer, read_tags
-    from envelope.reach import DispersalSettings, load_start, threshold_from_tags
     from envelope.io.tables import suitability_paths
+    from envelope.pipelines.inputs import build_reach_inputs
+    from envelope.reach import DispersalSettings
 
     for flag, value in (("--now", now), ("--habitat", habitat), ("--start", start),
                         ("--mean-distance-km", mean_distance_km)):
@@ -215,37 +214,23 @@ def _from_options(now, futures, years, scenario_table, habitat, classes, align_h
     if mean_range is not None:
         raise InputError("--mean-distance-km: target runs the deterministic model; give one distance, not LOW:HIGH")
     settings = DispersalSettings(kernel=kernel, mean_distance_km=mean_km, shape=shape)
-    now_layer = open_layer(now)
-    layers = {}
-    for name, horizons in paths.items():
-        layers[name] = []
-        for year, path in horizons:
-            layer = open_layer(path)
-            source = f"--future {path}" if name is None else f"--scenarios {scenario_table}: {path}"
-            check_same_grid(now_layer, layer, ref_name=f"--now {now}", other_name=source)
-            layers[name].append((year, layer))
-    all_paths = [str(p) for horizons in paths.values() for _, p in horizons]
-    thr = threshold_from_tags({now: read_tags(now), **{p: read_tags(p) for p in all_paths}}, threshold)
-    hab = load_habitat(habitat, now_layer, classes=classes, align=align_habitat)
-    start_arr, start_info = load_start(start, now_layer)
-    return {"now": now_layer, "now_name": f"--now {now}", "futures": layers.get(None, layers),
-            "habitat": hab, "start": start_arr, "start_info": start_info, "threshold": thr, "settings": settings,
-            "now_year": now_year, "step_years": step_years, "rate": rate, "persistence_years": persistence_years,
-            "inputs": {"now": now, "futures": all_paths, "scenarios": scenario_table, "habitat": habitat,
-                       "classes": classes}}
+    model = build_reach_inputs(
+        now, paths, habitat, start, settings=settings, classes=classes, align_habitat=align_habitat,
+        threshold=threshold, now_year=now_year, step_years=step_years, rate=rate,
+        persistence_years=persistence_years,
+        path_names=lambda name, p: f"--future {p}" if name is None else f"--scenarios {scenario_table}: {p}")
+    model.inputs["scenarios"] = scenario_table
+    return model
 
 
-def _from_study(study_file, run_dir) -> dict:
+def _from_study(study_file, run_dir):
     """The reach model of a finished study run: each pathway's ensemble-mean futures."""
-    from envelope.study.schema import load_study
     from envelope.study.layout import reach_inputs_from_run
+    from envelope.study.schema import load_study
 
     study = load_study(study_file)
     model = reach_inputs_from_run(study, run_dir)
-    model.update({"now_name": f"--run-dir {run_dir}: {model['paths']['now']}",
-                  "inputs": {"study": study_file, "run_dir": run_dir, "now": str(model["paths"]["now"]),
-                             "habitat": str(study.habitat.path), "classes": study.habitat.classes and
-                             str(study.habitat.classes)}})
+    model.inputs.update({"study": study_file, "run_dir": run_dir})
     return model
 
 

@@ -10,6 +10,36 @@ from pathlib import Path
 
 from envelope.errors import InputError, OutputExistsError
 
+__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode"]
+
+
+def file_mode() -> int:
+    """Permission bits of a new file under the process umask (0666 & ~umask), as ``open()`` would give."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+def check_distinct(outputs: dict, inputs: dict | None = None) -> None:
+    """Refuse two outputs on one path, or an output on an input, before any work.
+
+    ``outputs`` and ``inputs`` map how the user named each file (a flag such as ``--out``)
+    to its path; None values are skipped. The message names both flags and the path.
+    """
+    seen = {}
+    for flag, path in (outputs or {}).items():
+        if path is None:
+            continue
+        key = os.path.realpath(path)
+        if key in seen:
+            raise InputError(f"{flag} and {seen[key]} are the same file ({path}); give each output its own path")
+        seen[key] = flag
+    for flag, path in (inputs or {}).items():
+        for p in ([path] if isinstance(path, (str, os.PathLike)) else list(path or [])):
+            key = os.path.realpath(p)
+            if key in seen:
+                raise InputError(f"{seen[key]} {p} is also an input ({flag}); write the output elsewhere")
+
 
 def check_writable(path: str | os.PathLike, overwrite: bool = False) -> Path:
     """Refuse to replace an existing file unless ``overwrite``; check the folder exists.
@@ -48,6 +78,8 @@ def atomic_output(path: str | os.PathLike, overwrite: bool = False) -> Iterator[
         # re-check: another process may have created the target meanwhile
         if path.exists() and not overwrite:
             raise OutputExistsError(f"{path}: file exists; add --overwrite to replace it")
+        if tmp.exists():
+            os.chmod(tmp, file_mode())  # mkstemp makes 0600; outputs follow the user's umask
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):

@@ -10,7 +10,7 @@ from envelope.errors import InputError
 from envelope.io.atomic import atomic_output
 
 __all__ = ["SCENARIO_COLUMNS", "SUITABILITY_TABLE_COLUMNS", "SUITABILITY_TABLE_NAME", "Scenario", "group_scenarios",
-           "read_scenarios", "read_suitability_table", "suitability_paths", "write_suitability_table"]
+           "read_class_table", "read_scenarios", "suitability_paths", "write_suitability_table"]
 
 SCENARIO_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path")
 SUITABILITY_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path", "mess_path",
@@ -27,6 +27,8 @@ class Scenario:
     climate_model: str
     horizon: int
     path: Path
+    mess_path: Path | None = None     # suitability tables only: the scenario's MESS raster
+    novel_share: float | None = None  # suitability tables only: share of the area with MESS < 0
 
 
 def _rows_from_csv(path: Path) -> list[dict]:
@@ -61,13 +63,20 @@ def _rows_from_toml(path: Path) -> list[dict]:
     return [{k: str(v) for k, v in row.items()} for row in rows]
 
 
+def _resolve(table: Path, value: str) -> Path:
+    p = Path(value)
+    return p if p.is_absolute() else table.parent / p
+
+
 def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
     """Read a scenario table (CSV with a header, or TOML with ``[[scenario]]`` tables).
 
     Columns / keys: ``name, pathway, climate_model, horizon, path``. ``horizon`` is a
     year; ``path`` is a climate grid (or, ``what`` says, another raster such as a
     suitability map), relative to the table's folder unless absolute. Names must be
-    unique (they name the output files) and every grid must exist.
+    unique (they name the output files) and every grid must exist. The suitability table
+    that ``envelope project --scenarios`` writes has the optional columns ``mess_path``
+    (relative like ``path``) and ``novel_share``; this one reader reads it too.
 
     Examples
     --------
@@ -89,7 +98,7 @@ def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
     scenarios, seen = [], set()
     for i, row in enumerate(rows, start=1):
         name = row["name"]
-        if not name or any(c in name for c in "/\\"):
+        if not name or any(c in name for c in "/\\") or name in (".", ".."):
             raise InputError(f"{path}: row {i} name {name!r}; expected a non-empty name without slashes")
         if name in seen:
             raise InputError(f"{path}: scenario name {name!r} appears twice; names must be unique")
@@ -101,12 +110,18 @@ def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
             horizon = int(float(row["horizon"]))
         except ValueError:
             raise InputError(f"{path}: row {i} ({name}) horizon {row['horizon']!r}; expected a year") from None
-        grid = Path(row["path"])
-        if not grid.is_absolute():
-            grid = path.parent / grid
-        if not grid.exists():
+        grid = _resolve(path, row["path"])
+        if not row["path"] or not grid.is_file():
             raise InputError(f"{path}: row {i} ({name}) {what} {grid} not found")
-        scenarios.append(Scenario(name, row["pathway"], row["climate_model"], horizon, grid))
+        mess = _resolve(path, row["mess_path"]) if row.get("mess_path") else None
+        if mess is not None and not mess.is_file():
+            raise InputError(f"{path}: row {i} ({name}) column 'mess_path' names {row['mess_path']!r}, which is not a file")
+        novel = row.get("novel_share")
+        try:
+            novel = float(novel) if novel not in (None, "", "nan", "NaN") else None
+        except ValueError:
+            raise InputError(f"{path}: row {i} ({name}) novel_share {novel!r}; expected a share between 0 and 1") from None
+        scenarios.append(Scenario(name, row["pathway"], row["climate_model"], horizon, grid, mess, novel))
     return scenarios
 
 
@@ -153,3 +168,65 @@ def write_suitability_table(rows, path, *, overwrite: bool = False) -> Path:
             for row in rows:
                 writer.writerow({k: ("" if row.get(k) is None else row.get(k)) for k in SUITABILITY_TABLE_COLUMNS})
     return Path(path)
+
+
+def read_class_table(path) -> dict:
+    """Read a land-cover class table: CSV with columns ``code`` and ``habitat_quality`` (0–1).
+
+    Other columns (e.g. ``name``) are ignored. Codes must be unique integers.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    dict of int -> float
+        Class code to habitat quality.
+
+    Raises
+    ------
+    InputError
+        Missing file or column, non-integer or duplicate code, quality not a number in 0–1,
+        empty table. The message names the file, the column and the row.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: class table not found")
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            reader = csv.DictReader(fh)
+            columns = [c.strip() for c in (reader.fieldnames or [])]
+            rows = list(reader)
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"{path}: not a readable CSV class table ({exc})") from None
+    for column in ("code", "habitat_quality"):
+        if column not in columns:
+            raise InputError(f"{path}: column {column!r} missing (found {', '.join(columns) or 'no columns'}; "
+                             f"expected code,habitat_quality)")
+    table = {}
+    for line, row in enumerate(rows, start=2):  # line 1 is the header
+        row = {(k or "").strip(): (v or "").strip() for k, v in row.items() if k is not None}
+        raw_code, raw_quality = row.get("code", ""), row.get("habitat_quality", "")
+        try:
+            code_f = float(raw_code)
+            if not code_f.is_integer():
+                raise ValueError
+            code = int(code_f)
+        except ValueError:
+            raise InputError(f"{path}: line {line}, column 'code': expected an integer class code, "
+                             f"got {raw_code!r}") from None
+        try:
+            quality = float(raw_quality)
+        except ValueError:
+            raise InputError(f"{path}: line {line}, column 'habitat_quality': expected a number in 0–1, "
+                             f"got {raw_quality!r}") from None
+        if not (0.0 <= quality <= 1.0):
+            raise InputError(f"{path}: line {line}, column 'habitat_quality': {quality:g} for code {code} "
+                             f"is outside 0–1")
+        if code in table:
+            raise InputError(f"{path}: column 'code': code {code} appears twice (line {line})")
+        table[code] = quality
+    if not table:
+        raise InputError(f"{path}: class table has no rows")
+    return table

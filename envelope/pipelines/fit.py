@@ -59,22 +59,23 @@ def collinear_pairs(values: np.ndarray, names, threshold: float = COLLINEAR_R) -
 
 @dataclass
 class FitOptions:
-    """Settings of one fit; every field maps to a `envelope fit` option and a study-file key."""
+    """Settings of one fit; each field is named as its `envelope fit` option (``--blocks-km`` -> ``blocks_km``)
+    and, where the study file has it, as its study-file key (``model.blocks_km``)."""
 
     method: str = "pointprocess"
-    n_background: int = 10_000
+    background: int = 10_000
     variables: list | None = None
-    block_km: float | None = None
-    n_folds: int = 5
-    cv_scheme: str = "block"            # "block" (spatial) or "random" (for comparison only)
+    blocks_km: float | None = None
+    folds: int = 5
+    cv: str = "block"                   # "block" (spatial) or "random" (for comparison only)
     threshold_rule: object = "max-sss"
     seed: int = 0
     max_uncertainty_m: float | None = None
-    years: tuple | None = None
+    record_years: tuple | None = None
     thin_km: float | None = None
     x_column: str | None = None
     y_column: str | None = None
-    records_crs: str | None = None
+    crs: str | None = None
     background_buffer_km: float | None = None
     permutation_repeats: int = 3
 
@@ -124,9 +125,9 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     names = [str(v) for v in climate["variable"].values]
     units = ([str(u) for u in climate["units"].values] if "units" in climate.coords else [""] * len(names))
 
-    table = read_occurrences(records_path, x_column=opt.x_column, y_column=opt.y_column, crs=opt.records_crs)
-    records = clean_occurrences(table, climate, crs=opt.records_crs, max_uncertainty_m=opt.max_uncertainty_m,
-                                years=opt.years, thin_km=opt.thin_km)
+    table = read_occurrences(records_path, x_column=opt.x_column, y_column=opt.y_column, crs=opt.crs)
+    records = clean_occurrences(table, climate, crs=opt.crs, max_uncertainty_m=opt.max_uncertainty_m,
+                                record_years=opt.record_years, thin_km=opt.thin_km)
     n_pres = len(records.table)
     if n_pres < MIN_RECORDS:
         raise InputError(f"{records_path}: only {n_pres} usable records after cleaning "
@@ -139,11 +140,11 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     report("records", 1, 1)
 
     X_pres = values_at(climate, records.table["row"].to_numpy(), records.table["col"].to_numpy())
-    background = sample_background(climate, opt.n_background, seed=opt.seed, bias=bias, mask=mask,
+    background = sample_background(climate, opt.background, seed=opt.seed, bias=bias, mask=mask,
                                    buffer_km=opt.background_buffer_km, records=records, with_values=False)
     X_bg = values_at(climate, background["row"].to_numpy(), background["col"].to_numpy())
-    if len(background) < opt.n_background:
-        notes.append(f"only {len(background)} background cells available (asked for {opt.n_background})")
+    if len(background) < opt.background:
+        notes.append(f"only {len(background)} background cells available (asked for {opt.background})")
     check_variables(np.vstack([X_pres, X_bg]), names)
     report("background", 1, 1)
 
@@ -154,21 +155,21 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     crs = climate.rio.crs
 
     block_info = {}
-    if opt.cv_scheme == "random":
-        folds = evaluation.random_folds(len(y), opt.n_folds, seed=opt.seed, stratify=y)
+    if opt.cv == "random":
+        folds = evaluation.random_folds(len(y), opt.folds, seed=opt.seed, stratify=y)
         block_km = None
-    elif opt.cv_scheme == "block":
-        if opt.block_km is None:
+    elif opt.cv == "block":
+        if opt.blocks_km is None:
             block_km, block_info = evaluation.default_block_km(px[y == 0], py[y == 0], X_bg, crs=crs, names=names,
                                                                seed=opt.seed)
             block_info = dict(block_info, rule="default (from the predictors' spatial autocorrelation)")
         else:
-            block_km = float(opt.block_km)
+            block_km = float(opt.blocks_km)
             block_info = {"rule": "given (--blocks-km)"}
         blocks = evaluation.spatial_blocks(px, py, crs=crs, block_km=block_km)
-        folds = evaluation.assign_block_folds(blocks, y == 1, opt.n_folds, seed=opt.seed)
+        folds = evaluation.assign_block_folds(blocks, y == 1, opt.folds, seed=opt.seed)
     else:
-        raise InputError(f"cv scheme {opt.cv_scheme!r} is not known; expected 'block' or 'random'")
+        raise InputError(f"cv scheme {opt.cv!r} is not known; expected 'block' or 'random'")
 
     def make():
         return build_estimator(opt.method, opt.seed)
@@ -176,7 +177,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     per_fold, cv = evaluation.cross_validate(
         make, X, y, folds, threshold_rule=opt.threshold_rule,
         fit_params=_group_params(opt.method, folds),
-        progress=lambda k: report("cross-validation", k + 1, opt.n_folds))
+        progress=lambda k: report("cross-validation", k + 1, opt.folds))
 
     estimator = make()
     estimator.fit(X, y, **_group_params(opt.method, folds))
@@ -205,7 +206,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         inputs[str(p)] = file_sha256(p)
     if bias_path is not None:
         inputs[str(bias_path)] = file_sha256(bias_path)
-    cv_block = {"scheme": opt.cv_scheme, "n_folds": opt.n_folds, "block_km": block_km,
+    cv_block = {"scheme": opt.cv, "n_folds": opt.folds, "block_km": block_km,
                 "block_size_rule": block_info, **json_ready(cv)}
     transform = climate.rio.transform()
     metadata = {
@@ -300,3 +301,13 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
         # the model is written last inside the block: if it fails, summary and folds vanish too
         save_model(model_path, result.estimator, result.metadata, overwrite=overwrite)
     return {"model": str(model_path), "summary": str(summary_path), "folds": str(folds_path)}
+
+
+def fit_options_from_study(study, method: str) -> FitOptions:
+    """The fit settings of one method of a study file."""
+    r, m = study.records, study.model
+    return FitOptions(method=method, background=m.background,
+                      variables=list(study.climate.variables) if study.climate.variables else None,
+                      blocks_km=m.blocks_km, folds=m.folds, cv=m.cv, threshold_rule=m.threshold_rule, seed=m.seed,
+                      max_uncertainty_m=r.max_uncertainty_m, record_years=r.years, thin_km=r.thin_km or None,
+                      x_column=r.x_column, y_column=r.y_column, crs=r.crs)

@@ -18,7 +18,8 @@ from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.rasters import open_climate, open_layer
 from envelope.io.tables import SUITABILITY_TABLE_NAME, group_scenarios, read_scenarios, write_suitability_table
 from envelope.io.writing import RasterOutput, write_rasters
-from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, binary_map, novel_area_sums, project_mess, project_suitability, share_of, training_range)
+from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, binary_map, novel_area_sums, project_mess,
+                                 project_suitability, share_of, training_range)
 from envelope.provenance import file_sha256
 
 PROJECT_CHUNKS = {"y": 512, "x": 1024}
@@ -169,9 +170,15 @@ def write_projection(estimator, stack, variables, bounds, metadata, tags, paths,
 
 
 
+def ensemble_file(out_dir, pathway: str, horizon: int, statistic: str, *, suffix: str = ".tif") -> Path:
+    """File of one ensemble statistic of a projection batch: ``ensemble_<pathway>_<horizon>_<statistic><suffix>``."""
+    return Path(out_dir) / f"ensemble_{pathway}_{horizon}_{statistic}{suffix}"
+
+
 def scenario_outputs(scenarios, out_dir, *, mess: bool, suffix: str = ".tif") -> dict:
     """Output file names of a batch: per scenario suitability (and MESS), per group the
-    ensemble rasters, and the suitability table; all inside ``out_dir``."""
+    ensemble rasters, and the suitability table; all inside ``out_dir``. The one
+    definition of these names (the study's run folder uses it too)."""
     out_dir = Path(out_dir)
     files = {"table": out_dir / SUITABILITY_TABLE_NAME, "suitability": {}, "mess": {}, "ensemble": {}}
     for sc in scenarios:
@@ -180,7 +187,7 @@ def scenario_outputs(scenarios, out_dir, *, mess: bool, suffix: str = ".tif") ->
             files["mess"][sc.name] = out_dir / f"{sc.name}_mess{suffix}"
     for pathway, horizon in group_scenarios(scenarios):
         for stat in ENSEMBLE_STATISTICS:
-            files["ensemble"][(pathway, horizon, stat)] = out_dir / f"ensemble_{pathway}_{horizon}_{stat}{suffix}"
+            files["ensemble"][(pathway, horizon, stat)] = ensemble_file(out_dir, pathway, horizon, stat, suffix=suffix)
     return files
 
 
@@ -191,12 +198,13 @@ def _all_paths(files) -> list[Path]:
 
 def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreement: float = DEFAULT_AGREEMENT,
                       clamp: bool = True, overwrite: bool = False, scheduler=None, chunks=None,
-                      progress=None) -> dict:
+                      progress=None, suffix: str = ".tif") -> dict:
     """Project a model onto every scenario of a table and build the climate-model ensembles.
 
     Writes into ``out_dir`` (created if missing): ``<name>_suitability.tif`` (and
     ``<name>_mess.tif``) per scenario; per pathway × horizon
-    ``ensemble_<pathway>_<horizon>_{mean,sd,count,consensus}.tif`` (see
+    ``ensemble_<pathway>_<horizon>_{mean,sd,count,consensus}.tif`` (``suffix`` ``.nc``
+    writes CF-NetCDF instead; see
     :func:`ensemble_statistics`; threshold from the model file); and
     ``suitability_table.csv`` (columns :data:`SUITABILITY_TABLE_COLUMNS`, paths relative to
     the table's folder). All scenario grids must share one grid (CRS, resolution, shape,
@@ -231,7 +239,7 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
             check_same_grid(stacks[first.name], stack, ref_name=f"scenario {first.name} ({first.path})",
                             other_name=f"scenario {sc.name} ({sc.path})")
         stacks[sc.name] = stack
-    files = scenario_outputs(scenarios, out_dir, mess=mess)
+    files = scenario_outputs(scenarios, out_dir, mess=mess, suffix=suffix)
     if out_dir.is_dir():
         for p in _all_paths(files):
             check_writable(p, overwrite)

@@ -1,30 +1,125 @@
-"""A study's run folder read back: where `envelope run` keeps each result, and the reach model's inputs from them."""
+"""A study's run folder: the one definition of where `envelope run` keeps each result, and reading them back."""
 
 from __future__ import annotations
 
 import json
+from dataclasses import dataclass
 from pathlib import Path
 
 from envelope.errors import InputError
 
-__all__ = ["run_paths", "pathway_futures", "study_dispersal", "study_habitat", "study_start", "reach_inputs_from_run"]
+__all__ = ["MANIFEST_NAME", "RunLayout", "reach_inputs_from_run", "study_dispersal", "study_start_options"]
+
+MANIFEST_NAME = "manifest.json"
+REACH_FILES = ("classes", "summary", "front", "arrival")
 
 
-def run_paths(study, run_dir) -> dict:
-    """Paths of a run's results: today's suitability, the scenario projections and their table, the fit summary."""
-    run_dir = Path(run_dir)
-    ext = "." + study.outputs.format
-    proj_dir = run_dir / "projection" / "scenarios"
-    return {"now": run_dir / "projection" / f"now_suitability{ext}", "proj_dir": proj_dir,
-            "suit_table": proj_dir / "suitability_table.csv",
-            "fit_summary": run_dir / "models" / f"{study.model.methods[0]}.fit.json", "ext": ext}
+@dataclass(frozen=True)
+class RunLayout:
+    """Every file name of a run folder, for a study whose rasters are written with suffix ``ext``.
 
+    ::
 
-def pathway_futures(suit_rows, proj_dir, ext) -> dict:
-    """Per pathway, its horizons' ensemble-mean suitability maps: {pathway: [(year, path), ...]}."""
-    horizons = sorted({int(h) for h in suit_rows["horizon"]})
-    return {pathway: [(h, Path(proj_dir) / f"ensemble_{pathway}_{h}_mean{ext}") for h in horizons]
-            for pathway in sorted(set(suit_rows["pathway"]))}
+        RUN_DIR/
+          manifest.json                      step cache and settings
+          scenarios.csv                      the study's scenario table (absolute paths)
+          models/<method>.envm               one model file per method
+          models/<method>.fit.json           its fit summary (+ .fit.folds.csv)
+          projection/now_suitability<ext>    today's suitability (first method)
+          projection/scenarios/...           `envelope project --scenarios` outputs (scenario_outputs)
+          change/<scenario>.tif|.json        range change per scenario, change/change_table.csv
+          reach/<run>_reach<ext>             reach classes per pathway (+ _reach.json, _front.geojson, _arrival<ext>)
+          report.html
+    """
+
+    run_dir: Path
+    ext: str = ".tif"
+    methods: tuple = ("pointprocess",)
+
+    @classmethod
+    def of(cls, study, run_dir) -> "RunLayout":
+        return cls(Path(run_dir), "." + study.outputs.format, tuple(study.model.methods))
+
+    # ------------------------------------------------------------------ fit
+    @property
+    def models_dir(self) -> Path:
+        return self.run_dir / "models"
+
+    def model(self, method: str | None = None) -> Path:
+        return self.models_dir / f"{method or self.methods[0]}.envm"
+
+    def fit_summary(self, method: str | None = None) -> Path:
+        return self.models_dir / f"{method or self.methods[0]}.fit.json"
+
+    def fit_folds(self, method: str | None = None) -> Path:
+        return self.models_dir / f"{method or self.methods[0]}.fit.folds.csv"
+
+    # ------------------------------------------------------------------ projection
+    @property
+    def manifest(self) -> Path:
+        return self.run_dir / MANIFEST_NAME
+
+    @property
+    def scenario_table(self) -> Path:
+        return self.run_dir / "scenarios.csv"
+
+    @property
+    def now(self) -> Path:
+        return self.run_dir / "projection" / f"now_suitability{self.ext}"
+
+    @property
+    def projections_dir(self) -> Path:
+        return self.run_dir / "projection" / "scenarios"
+
+    def projections(self, scenarios, *, mess: bool) -> dict:
+        """The projection batch's files (:func:`envelope.pipelines.project.scenario_outputs`)."""
+        from envelope.pipelines.project import scenario_outputs
+
+        return scenario_outputs(scenarios, self.projections_dir, mess=mess, suffix=self.ext)
+
+    @property
+    def suitability_table(self) -> Path:
+        from envelope.io.tables import SUITABILITY_TABLE_NAME
+
+        return self.projections_dir / SUITABILITY_TABLE_NAME
+
+    def ensemble(self, pathway: str, horizon: int, statistic: str) -> Path:
+        from envelope.pipelines.project import ensemble_file
+
+        return ensemble_file(self.projections_dir, pathway, horizon, statistic, suffix=self.ext)
+
+    def pathway_futures(self, scenarios) -> dict:
+        """Per pathway, its horizons' ensemble-mean suitability maps: {pathway: [(year, path), ...]}."""
+        horizons = sorted({int(s.horizon) for s in scenarios})
+        return {pathway: [(h, self.ensemble(pathway, h, "mean")) for h in horizons]
+                for pathway in sorted({s.pathway for s in scenarios})}
+
+    # ------------------------------------------------------------------ change, reach, report
+    @property
+    def change_dir(self) -> Path:
+        return self.run_dir / "change"
+
+    @property
+    def change_table(self) -> Path:
+        return self.change_dir / "change_table.csv"
+
+    def change_map(self, scenario: str) -> Path:
+        """The class raster ``range_change_batch`` writes for one scenario (always GeoTIFF)."""
+        return self.change_dir / f"{scenario}.tif"
+
+    @property
+    def reach_dir(self) -> Path:
+        return self.run_dir / "reach"
+
+    def reach(self, run: str) -> dict:
+        """The files of one reach run: ``classes``, ``summary``, ``front`` and ``arrival``."""
+        d = self.reach_dir
+        return {"classes": d / f"{run}_reach{self.ext}", "summary": d / f"{run}_reach.json",
+                "front": d / f"{run}_front.geojson", "arrival": d / f"{run}_arrival{self.ext}"}
+
+    @property
+    def report(self) -> Path:
+        return self.run_dir / "report.html"
 
 
 def study_dispersal(study, *, stochastic: bool = True):
@@ -37,33 +132,32 @@ def study_dispersal(study, *, stochastic: bool = True):
                              mean_distance_range_km=d.mean_distance_range_km if use_range else None)
 
 
-def study_habitat(study, grid):
-    """The study's habitat on ``grid`` (:func:`envelope.habitat.load_habitat`)."""
-    from envelope.habitat import load_habitat
-
-    return load_habitat(study.habitat.path, grid, classes=study.habitat.classes, align=study.habitat.align)
-
-
-def study_start(study, grid):
-    """Occupied cells today: the dispersal start file, or the records cleaned by the study's own rules.
-
-    A raster start ignores the record filters. Returns (occupancy array, description).
-    """
-    from envelope.reach import load_start
-
+def study_start_options(study) -> dict:
+    """The record-cleaning options of the study, for a records start (a raster start ignores them)."""
     r = study.records
-    start_path = study.dispersal.start or r.path
-    return load_start(start_path, grid, x_column=r.x_column, y_column=r.y_column,
-                      max_uncertainty_m=r.max_uncertainty_m, years=r.years, crs=r.crs)
+    return {"x_column": r.x_column, "y_column": r.y_column, "max_uncertainty_m": r.max_uncertainty_m,
+            "record_years": r.years, "crs": r.crs}
 
 
-def reach_inputs_from_run(study, run_dir) -> dict:
+def study_reach_inputs(study, now, paths: dict, *, stochastic: bool, now_name=None, now_layer=None):
+    """The study's reach model on the climate paths ``paths`` ({name: [(year, map), ...]})."""
+    from envelope.pipelines.inputs import build_reach_inputs
+
+    d = study.dispersal
+    return build_reach_inputs(now, paths, study.habitat.path, d.start or study.records.path,
+                              settings=study_dispersal(study, stochastic=stochastic),
+                              classes=study.habitat.classes, align_habitat=study.habitat.align,
+                              now_year=study.climate.now_year, step_years=d.step_years, rate=d.rate,
+                              persistence_years=d.persistence_years, start_options=study_start_options(study),
+                              now_name=now_name, now_layer=now_layer,
+                              path_names=lambda name, p: f"{name}: {p}")
+
+
+def reach_inputs_from_run(study, run_dir):
     """Everything a deterministic reach run of a finished study needs, read from its run folder.
 
-    Returns a dict with ``now`` (layer), ``futures`` ({pathway: [(year, layer), ...]}, the
-    ensemble means of the climate models), ``habitat``, ``start`` and ``start_info``,
-    ``threshold`` (the fitted model's), ``settings`` (deterministic DispersalSettings),
-    ``now_year``, ``step_years``, ``rate``, ``persistence_years`` and ``paths``.
+    Returns :class:`envelope.pipelines.inputs.ReachInputs` whose ``futures`` are the
+    ensemble means of the climate models per pathway, with the fitted model's threshold.
 
     Raises
     ------
@@ -71,35 +165,28 @@ def reach_inputs_from_run(study, run_dir) -> dict:
         The study has no habitat or dispersal section, or the run folder lacks a result
         (the message names the file and says to run `envelope run` first).
     """
-    import pandas as pd
-
-    from envelope.grids import check_same_grid
-    from envelope.io.rasters import open_layer
-
     if study.habitat is None or study.dispersal is None:
         missing = "[habitat]" if study.habitat is None else "[dispersal]"
         raise InputError(f"--study: the study file has no {missing} section; the reach model needs it")
-    paths = run_paths(study, run_dir)
-    for key in ("now", "suit_table", "fit_summary"):
-        if not paths[key].is_file():
-            raise InputError(f"--run-dir {run_dir}: {paths[key]} not found; expected a finished run of this study "
+    layout = RunLayout.of(study, run_dir)
+    for path in (layout.now, layout.suitability_table, layout.fit_summary()):
+        if not path.is_file():
+            raise InputError(f"--run-dir {run_dir}: {path} not found; expected a finished run of this study "
                              f"(envelope run STUDY --out {run_dir})")
-    futures = pathway_futures(pd.read_csv(paths["suit_table"]), paths["proj_dir"], paths["ext"])
-    now = open_layer(paths["now"])
-    layers = {}
-    for pathway, horizons in futures.items():
-        layers[pathway] = []
-        for year, p in horizons:
+    from envelope.io.tables import read_scenarios
+
+    futures = layout.pathway_futures(read_scenarios(layout.suitability_table, what="suitability raster"))
+    for horizons in futures.values():
+        for _, p in horizons:
             if not p.is_file():
                 raise InputError(f"--run-dir {run_dir}: ensemble mean {p} not found; expected a finished run "
                                  f"with ensembles (outputs.ensemble = true)")
-            layer = open_layer(p)
-            check_same_grid(now, layer, ref_name=str(paths["now"]), other_name=str(p))
-            layers[pathway].append((year, layer))
-    threshold = json.loads(paths["fit_summary"].read_text())["threshold"]["value"]
-    start, start_info = study_start(study, now)
-    d = study.dispersal
-    return {"now": now, "futures": layers, "habitat": study_habitat(study, now), "start": start,
-            "start_info": start_info, "threshold": threshold, "settings": study_dispersal(study, stochastic=False),
-            "now_year": study.climate.now_year, "step_years": d.step_years, "rate": d.rate,
-            "persistence_years": d.persistence_years, "paths": paths}
+    threshold = json.loads(layout.fit_summary().read_text())["threshold"]["value"]
+    model = study_reach_inputs(study, layout.now, futures, stochastic=False,
+                               now_name=f"--run-dir {run_dir}: {layout.now}")
+    if abs(model.threshold - float(threshold)) > 1e-12:
+        raise InputError(f"--run-dir {run_dir}: the suitability rasters' threshold {model.threshold:g} differs "
+                         f"from the fit summary's {threshold:g}; run the study again")
+    model.inputs.update({"now": str(layout.now), "habitat": str(study.habitat.path),
+                         "classes": study.habitat.classes and str(study.habitat.classes)})
+    return model

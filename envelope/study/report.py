@@ -9,16 +9,19 @@ import numpy as np
 import pandas as pd
 
 
-def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_table, proj_dir, change_table=None,
-                 reach_rows=()):
-    """Write ``report_path``: question, data, skill, maps, areas, cautions, methods, references."""
+def build_report(study, layout, *, fit_summary, suitability, change=True, reach_rows=()):
+    """Write the run's report (``layout.report``): question, data, skill, maps, areas, cautions, methods, references.
+
+    ``layout`` is the run's :class:`envelope.study.layout.RunLayout`, ``suitability`` the rows
+    of its suitability table (:func:`envelope.io.tables.read_scenarios`), ``reach_rows`` the
+    runner's list of reach runs and their files.
+    """
     from envelope import figures
     from envelope.io.rasters import open_layer
     from envelope.palettes import CHANGE_CLASS_COLOURS, REACH_CLASS_COLOURS
     from envelope.reach import REACH_CLASSES
     from envelope.study.html import Report, records_table
 
-    run_dir = Path(run_dir)
     rep = Report(study.study.name, f"Species: {study.study.species}" if study.study.species else "")
     rep.add_section("question", paragraphs=[study.study.question or "Where will the climate suit the species, "
                                             "and which of those places can it reach?"])
@@ -30,7 +33,7 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
     cv = fit_summary["cv"]
     skill = pd.DataFrame([{"metric": k, "mean": cv.get(f"{k}_mean"), "sd": cv.get(f"{k}_sd")}
                           for k in ("auc", "tss", "kappa", "boyce", "omission_p10")])
-    folds_csv = Path(run_dir / "models" / f"{fit_summary['method']}.fit.folds.csv")
+    folds_csv = layout.fit_folds(fit_summary["method"])
     figs = []
     if study.outputs.figures:
         if folds_csv.exists():
@@ -47,17 +50,19 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
         table=skill, figures=figs, table_caption="Cross-validated skill (mean and SD over folds)")
 
     maps = []
-    now = open_layer(now_path)
+    now = open_layer(layout.now)
     land = np.isfinite(now)
     thr = fit_summary["threshold"]["value"]
-    suit_rows = pd.read_csv(suit_table)
+    suit_rows = pd.DataFrame([{"name": s.name, "pathway": s.pathway, "climate_model": s.climate_model,
+                               "horizon": s.horizon, "mess_path": s.mess_path, "novel_share": s.novel_share}
+                              for s in suitability])
     if study.outputs.figures:
         maps.append((figures.map_continuous(now, title="Suitability today", label="suitability", vmin=0, vmax=1,
                                             land_mask=land, threshold_contour=thr), "Climatic suitability today"))
         horizon = int(suit_rows["horizon"].max())
         for pathway in sorted(set(suit_rows["pathway"])):
-            mean = Path(proj_dir) / f"ensemble_{pathway}_{horizon}_mean.tif"
-            count = Path(proj_dir) / f"ensemble_{pathway}_{horizon}_count.tif"
+            mean = layout.ensemble(pathway, horizon, "mean")
+            count = layout.ensemble(pathway, horizon, "count")
             if mean.exists():
                 maps.append((figures.map_continuous(open_layer(mean), title=f"{pathway} {horizon}: ensemble mean",
                                                     label="suitability", vmin=0, vmax=1, land_mask=land,
@@ -71,17 +76,15 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
             worst = suit_rows[(suit_rows["pathway"] == pathway) & (suit_rows["horizon"] == horizon)]
             mess_col = worst["mess_path"].dropna() if "mess_path" in worst else []
             if len(mess_col):
-                p = Path(suit_table).parent / mess_col.iloc[0]
-                maps.append((figures.map_mess(open_layer(p, band=1), land_mask=land),
+                maps.append((figures.map_mess(open_layer(mess_col.iloc[0], band=1), land_mask=land),
                              f"Novel climate (MESS < 0), scenario {worst['name'].iloc[0]}"))
-        change_dir = Path(run_dir) / "change"
         from envelope.kernels.change import CHANGE_CLASSES
 
         for pathway in sorted(set(suit_rows["pathway"])):
             rows = suit_rows[(suit_rows["pathway"] == pathway) & (suit_rows["horizon"] == horizon)]
-            if len(rows) and (change_dir / f"{rows['name'].iloc[0]}.tif").exists():
+            if len(rows) and layout.change_map(rows["name"].iloc[0]).exists():
                 name = rows["name"].iloc[0]
-                ch = open_layer(change_dir / f"{name}.tif", categorical=True)
+                ch = open_layer(layout.change_map(name), categorical=True)
                 maps.append((figures.map_classes(ch.where(ch != 255), CHANGE_CLASSES, title=f"Range change: {name}",
                                                  colours=CHANGE_CLASS_COLOURS, land_mask=land),
                              f"Climatic range change, scenario {name} (one climate model)"))
@@ -99,8 +102,8 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
     rep.add_section("maps", figures=maps)
 
     tables = []
-    if change_table is not None and Path(change_table).exists():
-        ct = pd.read_csv(change_table)
+    if change and layout.change_table.exists():
+        ct = pd.read_csv(layout.change_table)
         cols = [c for c in ("name", "pathway", "climate_model", "horizon", "range_km2.now", "range_km2.future",
                             "range_change_pct", "area_km2.gained", "area_km2.gained_novel", "area_km2.lost", "leading_edge_shift_km",
                             "centroid_shift_km") if c in ct]
@@ -144,5 +147,5 @@ def build_report(study, run_dir, report_path, *, fit_summary, now_path, suit_tab
         "Presence/background point-process model (penalised logistic regression with weighted background, "
         "complementary log-log output), spatial block cross-validation, MESS against the training climate, "
         "habitat-gated integrodifference spread. Equations and references: docs/methods.md and docs/dispersal.md."])
-    rep.write(report_path, overwrite=True)
-    return Path(report_path)
+    rep.write(layout.report, overwrite=True)
+    return layout.report

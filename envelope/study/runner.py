@@ -10,12 +10,9 @@ from pathlib import Path
 
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_output
-from envelope.study.layout import run_paths
+from envelope.study.layout import MANIFEST_NAME, RunLayout, study_reach_inputs
 
 log = logging.getLogger(__name__)
-
-MANIFEST = "manifest.json"
-
 
 class StepCache:
     """Content-hash cache of finished steps, kept in ``RUN_DIR/manifest.json``.
@@ -28,7 +25,7 @@ class StepCache:
 
     def __init__(self, run_dir: Path, settings: dict):
         self.run_dir = Path(run_dir)
-        self.path = self.run_dir / MANIFEST
+        self.path = self.run_dir / MANIFEST_NAME
         self.manifest = {"steps": {}}
         if self.path.exists():
             try:
@@ -87,13 +84,13 @@ class StepCache:
             tmp.write_text(json.dumps(self.manifest, indent=2, default=str))
 
 
-def _scenario_table(study, run_dir: Path) -> Path:
+def _scenario_table(study, layout: RunLayout) -> Path:
     """The study's scenarios as a CSV (absolute paths) inside the run folder."""
     import pandas as pd
 
     rows = [{"name": s.name, "pathway": s.pathway, "climate_model": s.climate_model, "horizon": s.horizon,
              "path": str(s.path)} for s in study.scenarios]
-    target = run_dir / "scenarios.csv"
+    target = layout.scenario_table
     text = pd.DataFrame(rows).to_csv(index=False)
     if not target.exists() or target.read_text() != text:
         with atomic_output(target, overwrite=True) as tmp:
@@ -102,66 +99,53 @@ def _scenario_table(study, run_dir: Path) -> Path:
 
 
 def run_study(study, run_dir, *, progress=None) -> dict:
-    """Run a validated study (:func:`envelope.study.load_study`) into ``run_dir``.
+    """Run a validated study (:func:`envelope.study.schema.load_study`) into ``run_dir``.
 
     Steps: fit each method; project today's climate and every scenario (MESS, ensembles);
     range change per scenario; habitat-gated reach per pathway through the ensemble-mean
     suitability at each horizon, plus a counterfactual with the climate held at today's;
-    figures; the HTML report. Returns a dict of key results and paths.
+    figures; the HTML report. Every file name comes from :class:`RunLayout`. Returns a
+    dict of key results and paths.
     """
-    import pandas as pd
-
-    from envelope.pipelines.fit import FitOptions, fit_model, write_fit_outputs
     from envelope.io.rasters import open_climate, open_layer
+    from envelope.io.tables import read_scenarios
+    from envelope.pipelines.fit import fit_model, fit_options_from_study, write_fit_outputs
 
-    run_dir = Path(run_dir)
+    layout = RunLayout.of(study, run_dir)
+    run_dir = layout.run_dir
     run_dir.mkdir(parents=True, exist_ok=True)
     settings = study.to_dict()
     cache = StepCache(run_dir, settings)
     say = progress or (lambda stage: None)
-    paths = run_paths(study, run_dir)
-    ext = paths["ext"]
     baseline = list(study.climate.baseline)
-    method = study.model.methods[0]
     results = {"run_dir": str(run_dir), "methods": list(study.model.methods)}
 
     # 1. fit every method ------------------------------------------------------------
     fit_inputs = [study.records.path, *baseline] + ([study.model.bias] if study.model.bias else [])
-    models = {}
     for m in study.model.methods:
-        model_path = run_dir / "models" / f"{m}.envm"
-        summary_path = run_dir / "models" / f"{m}.fit.json"
-        models[m] = model_path
+        model_path, summary_path = layout.model(m), layout.fit_summary(m)
 
         def do_fit(m=m, model_path=model_path, summary_path=summary_path):
             say(f"fit {m}")
             model_path.parent.mkdir(exist_ok=True)
             stack = open_climate(baseline)
             bias = open_layer(study.model.bias) if study.model.bias else None
-            r = study.records
-            opts = FitOptions(method=m, n_background=study.model.background,
-                              variables=list(study.climate.variables) if study.climate.variables else None,
-                              block_km=study.model.blocks_km, n_folds=study.model.folds, cv_scheme=study.model.cv,
-                              threshold_rule=study.model.threshold_rule, seed=study.model.seed,
-                              max_uncertainty_m=r.max_uncertainty_m, years=r.years, thin_km=r.thin_km or None,
-                              x_column=r.x_column, y_column=r.y_column, records_crs=r.crs)
-            result = fit_model(r.path, stack, options=opts, bias=bias, climate_paths=baseline,
-                               bias_path=study.model.bias or None)
+            result = fit_model(study.records.path, stack, options=fit_options_from_study(study, m), bias=bias,
+                               climate_paths=baseline, bias_path=study.model.bias or None)
             write_fit_outputs(result, model_path, summary_path, overwrite=True)
 
         cache.run(f"fit:{m}", {"records": settings["records"], "model": settings["model"], "method": m,
                                "climate": settings["climate"]}, fit_inputs,
                   [model_path, summary_path], do_fit)
-    fit_summary = json.loads(paths["fit_summary"].read_text())
+    fit_summary = json.loads(layout.fit_summary().read_text())
     results["fit"] = fit_summary
     threshold = fit_summary["threshold"]["value"]
-    model = models[method]
+    model = layout.model()
 
     # 2. projection: today and every scenario -------------------------------------------
-    from envelope.pipelines.project import project_file
-    from envelope.pipelines.project import project_scenarios
+    from envelope.pipelines.project import project_file, project_scenarios
 
-    now_path = paths["now"]
+    now_path = layout.now
 
     def do_now():
         say("project today")
@@ -169,74 +153,67 @@ def run_study(study, run_dir, *, progress=None) -> dict:
         project_file(model, baseline, now_path, overwrite=True)
 
     cache.run("project:now", {"clamp": True}, [model, *baseline], [now_path], do_now)
-    table = _scenario_table(study, run_dir)
-    proj_dir, suit_table = paths["proj_dir"], paths["suit_table"]
+    table = _scenario_table(study, layout)
+    suit_table = layout.suitability_table
 
     def do_scen():
         say("project scenarios")
-        project_scenarios(model, table, proj_dir, mess=study.outputs.mess, agreement=study.scenario_set.agreement,
-                          overwrite=True)
+        project_scenarios(model, table, layout.projections_dir, mess=study.outputs.mess,
+                          agreement=study.scenario_set.agreement, overwrite=True, suffix=layout.ext)
 
-    cache.run("project:scenarios", {"mess": study.outputs.mess, "agreement": study.scenario_set.agreement},
+    cache.run("project:scenarios", {"mess": study.outputs.mess, "agreement": study.scenario_set.agreement,
+                                    "format": layout.ext},
               [model, table] + [s.path for s in study.scenarios], [suit_table], do_scen)
-    suit_rows = pd.read_csv(suit_table)
+    suitability = read_scenarios(suit_table, what="suitability raster")
 
     # 3. change per scenario -----------------------------------------------------------
-    change_table_path = run_dir / "change" / "change_table.csv"
     if study.outputs.change:
-        from envelope.change import range_change_batch
+        from envelope.pipelines.change import range_change_batch
 
         def do_change():
             say("range change")
-            change_table_path.parent.mkdir(exist_ok=True)
-            range_change_batch(now_path, suit_table, run_dir / "change", change_table_path, overwrite=True)
+            layout.change_dir.mkdir(exist_ok=True)
+            range_change_batch(now_path, suit_table, layout.change_dir, layout.change_table, overwrite=True)
 
-        cache.run("change", {"edge_percentile": 95.0}, [now_path, suit_table], [change_table_path], do_change)
-        results["change_table"] = str(change_table_path)
+        cache.run("change", {"edge_percentile": 95.0}, [now_path, suit_table], [layout.change_table], do_change)
+        results["change_table"] = str(layout.change_table)
 
     # 4. reach per pathway through the ensemble-mean suitability ------------------------
     reach_rows = []
     if study.outputs.reach and study.habitat is not None and study.dispersal is not None:
-        reach_rows = _run_reach(study, run_dir, cache, now_path, proj_dir, suit_rows, threshold, ext, say)
+        reach_rows = _run_reach(study, layout, cache, suitability, threshold, say)
         results["reach"] = reach_rows
 
     # 5. figures and report ---------------------------------------------------------------
     if study.outputs.report:
         from envelope.study.report import build_report
 
-        report_path = run_dir / "report.html"
-
         def do_report():
             say("figures and report")
-            build_report(study, run_dir, report_path, fit_summary=fit_summary, now_path=now_path,
-                         suit_table=suit_table, proj_dir=proj_dir,
-                         change_table=change_table_path if study.outputs.change else None,
-                         reach_rows=reach_rows)
+            build_report(study, layout, fit_summary=fit_summary, suitability=suitability,
+                         change=study.outputs.change, reach_rows=reach_rows)
 
-        report_inputs = [p for p in [now_path, suit_table, change_table_path,
-                                     run_dir / "models" / f"{method}.fit.json"] if Path(p).exists()]
+        report_inputs = [p for p in [now_path, suit_table, layout.change_table, layout.fit_summary()]
+                         if Path(p).exists()]
         report_inputs += [Path(r["summary"]) for r in reach_rows]
         cache.run("report", {"study": settings["study"], "figures": study.outputs.figures}, report_inputs,
-                  [report_path], do_report)
-        results["report"] = str(report_path)
+                  [layout.report], do_report)
+        results["report"] = str(layout.report)
     cache.manifest["last_run"] = {"ran": cache.ran, "skipped": cache.skipped}
     cache.save()
     results["ran"], results["skipped"] = cache.ran, cache.skipped
     return results
 
 
-def _run_reach(study, run_dir, cache, now_path, proj_dir, suit_rows, threshold, ext, say) -> list:
+def _run_reach(study, layout: RunLayout, cache, suitability, threshold, say) -> list:
     """Reach per pathway (ensemble-mean maps by horizon) and the held-climate counterfactual."""
-    from envelope.io.rasters import open_layer
-    from envelope.reach import simulate_reach, write_reach_outputs
-    from envelope.study.layout import pathway_futures, study_dispersal, study_habitat, study_start
+    from envelope.pipelines.reach import run_reach, write_reach_outputs
 
     d = study.dispersal
     start_path = d.start or study.records.path
-    reach_dir = run_dir / "reach"
-    runs = pathway_futures(suit_rows, proj_dir, ext)
+    runs = layout.pathway_futures(suitability)
     if d.counterfactual:
-        runs["held-climate"] = [(h, now_path) for h, _ in next(iter(runs.values()))]
+        runs["held-climate"] = [(h, layout.now) for h, _ in next(iter(runs.values()))]
     # the fragmentation table is part of the reach summary; its settings are in the key so
     # run folders made before it existed get it on the next run
     settings = {"dispersal": study.to_dict()["dispersal"], "habitat": study.to_dict()["habitat"],
@@ -244,33 +221,23 @@ def _run_reach(study, run_dir, cache, now_path, proj_dir, suit_rows, threshold, 
                 "fragmentation": {"habitat_threshold": 0.5, "band_deg": 1.0}}
     rows = []
     for name, futures in runs.items():
-        out = reach_dir / f"{name}_reach{ext}"
-        summary = reach_dir / f"{name}_reach.json"
-        front = reach_dir / f"{name}_front.geojson"
-        arrival = reach_dir / f"{name}_arrival{ext}"
-        inputs = [now_path, study.habitat.path, start_path] + [p for _, p in futures]
+        files = layout.reach(name)
+        inputs = [layout.now, study.habitat.path, start_path] + [p for _, p in futures]
         if study.habitat.classes:
             inputs.append(study.habitat.classes)
 
-        def do_reach(name=name, futures=futures, out=out, summary=summary, front=front, arrival=arrival):
+        def do_reach(name=name, futures=futures, files=files):
             say(f"reach {name}")
-            reach_dir.mkdir(exist_ok=True)
-            now_layer = open_layer(now_path)
-            future_layers = [(h, open_layer(p)) for h, p in futures]
-            hab = study_habitat(study, now_layer)
+            layout.reach_dir.mkdir(exist_ok=True)
             # records as the start: the same cleaning rules as the fit (a raster start ignores them)
-            start, info = study_start(study, now_layer)
-            result = simulate_reach(now_layer, future_layers, hab, start, threshold=threshold,
-                                    settings=study_dispersal(study), now_year=study.climate.now_year,
-                                    step_years=d.step_years, rate=d.rate, persistence_years=d.persistence_years,
-                                    replicates=d.replicates, seed=study.model.seed)
-            result.summary.update({"run": name, "start": info,
+            model = study_reach_inputs(study, layout.now, {name: futures}, stochastic=True)
+            result = run_reach(model, replicates=d.replicates, seed=study.model.seed)
+            result.summary.update({"run": name,
                                    "climate": "held at today's" if name == "held-climate" else
                                    f"pathway {name}, ensemble mean of climate models"})
-            write_reach_outputs(result, out, summary, front=front, arrival=arrival, overwrite=True,
-                                tags={"run": name})
+            write_reach_outputs(result, files["classes"], files["summary"], front=files["front"],
+                                arrival=files["arrival"], overwrite=True, tags={"run": name})
 
-        cache.run(f"reach:{name}", settings, inputs, [out, summary, front, arrival], do_reach)
-        rows.append({"run": name, "classes": str(out), "summary": str(summary), "front": str(front),
-                     "arrival": str(arrival)})
+        cache.run(f"reach:{name}", settings, inputs, list(files.values()), do_reach)
+        rows.append({"run": name, **{k: str(v) for k, v in files.items()}})
     return rows

@@ -50,7 +50,7 @@ def run(*args):
 def test_summary_table(tmp_path, grid_tif):
     # Source: constructed file; counts follow from the construction (common practice, no source).
     result = run("records", write(tmp_path, "r.csv", HEADER + GOOD), "--climate", grid_tif,
-                 "--max-uncertainty-m", 100, "--years", "1990-2020")
+                 "--max-uncertainty-m", 100, "--record-years", "1990-2020")
     assert result.exit_code == 0, result.output
     assert "dropped: duplicate cell" in result.output
     assert "kept" in result.output and "read" in result.output
@@ -60,7 +60,7 @@ def test_json_counts_and_cleaned_csv(tmp_path, grid_tif):
     # Source: constructed file; counts follow from the construction (common practice, no source).
     out = tmp_path / "clean.csv"
     result = run("records", write(tmp_path, "r.csv", HEADER + GOOD), "--climate", grid_tif,
-                 "--max-uncertainty-m", 100, "--years", "1990-2020", "--out", out, "--json")
+                 "--max-uncertainty-m", 100, "--record-years", "1990-2020", "--out", out, "--json")
     assert result.exit_code == 0, result.output
     summary = json.loads(result.output)
     assert summary["read"] == 8 and summary["kept"] == 2
@@ -109,7 +109,7 @@ def test_nonsense_crs_and_bad_options(tmp_path, grid_tif):
     assert result.exit_code == 2 and "not understood by pyproj" in result.output
     result = run("records", records, "--climate", grid_tif, "--x-column", "easting", "--y-column", "northing")
     assert result.exit_code == 2 and "state their CRS" in result.output
-    result = run("records", records, "--climate", grid_tif, "--years", "recent")
+    result = run("records", records, "--climate", grid_tif, "--record-years", "recent")
     assert result.exit_code == 2 and "expected FIRST-LAST" in result.output
     result = run("records", records, "--climate", grid_tif, "--thin-km", "-3")
     assert result.exit_code == 2 and "must be a positive number" in result.output
@@ -119,3 +119,14 @@ def test_help_has_examples():
     # Common practice, no source: every command's help shows `$ envelope ...` examples.
     result = run("records", "--help")
     assert result.exit_code == 0 and "$ envelope records" in result.output
+
+
+def test_old_years_spelling_still_filters_with_a_warning(tmp_path, grid_tif):
+    # Common practice, no source: a renamed option keeps working for a while and says so.
+    records = write(tmp_path, "r.csv", HEADER + GOOD)
+    new = run("records", records, "--climate", grid_tif, "--record-years", "1990-2020", "--json")
+    old = run("records", records, "--climate", grid_tif, "--years", "1990-2020", "--json")
+    assert new.exit_code == 0 and old.exit_code == 0, old.output
+    assert json.loads(old.stdout) == json.loads(new.stdout)
+    assert json.loads(new.stdout)["dropped"]["outside_years"] == 1
+    assert "--years is deprecated" in old.stderr and "--record-years" in old.stderr

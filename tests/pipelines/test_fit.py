@@ -31,7 +31,7 @@ def _truth_scores(result, stack):
 
 @pytest.fixture(scope="module")
 def fitted(stack):
-    opts = FitOptions(n_background=4000, n_folds=4, seed=1, max_uncertainty_m=2000, permutation_repeats=1)
+    opts = FitOptions(background=4000, folds=4, seed=1, max_uncertainty_m=2000, permutation_repeats=1)
     return {m: fit_model(DEMO / "presences.csv", stack, options=FitOptions(**{**opts.__dict__, "method": m}))
             for m in ("pointprocess", "envelope")}
 
@@ -87,7 +87,7 @@ def test_fewer_than_five_records_is_an_error(tmp_path, stack):
     demo = pd.read_csv(DEMO / "presences.csv").iloc[:4]  # four distinct, clean demo records
     p = _records(tmp_path, demo["decimalLongitude"], demo["decimalLatitude"])
     with pytest.raises(InputError, match="only 4 usable records"):
-        fit_model(p, stack, options=FitOptions(n_background=500, n_folds=2, block_km=20))
+        fit_model(p, stack, options=FitOptions(background=500, folds=2, blocks_km=20))
 
 
 def test_constant_variable_is_an_error(tmp_path, stack):
@@ -95,7 +95,7 @@ def test_constant_variable_is_an_error(tmp_path, stack):
     flat = flat.where(flat["variable"] != "bio17", 5.0).where(np.isfinite(stack))
     p = DEMO / "presences.csv"
     with pytest.raises(InputError, match="'bio17' is constant"):
-        fit_model(p, flat, options=FitOptions(n_background=500, n_folds=2))
+        fit_model(p, flat, options=FitOptions(background=500, folds=2))
 
 
 def test_missing_variable_is_named(stack):
@@ -106,6 +106,6 @@ def test_missing_variable_is_named(stack):
 def test_fewer_than_fifteen_records_warns(tmp_path, stack):
     demo = pd.read_csv(DEMO / "presences.csv").iloc[:12]
     p = _records(tmp_path, demo["decimalLongitude"], demo["decimalLatitude"])
-    result = fit_model(p, stack, options=FitOptions(method="envelope", n_background=500, n_folds=2, block_km=150,
+    result = fit_model(p, stack, options=FitOptions(method="envelope", background=500, folds=2, blocks_km=150,
                                                     permutation_repeats=1))
     assert any("fewer than 15" in n for n in result.summary["notes"])

@@ -1,0 +1,135 @@
+"""The change pipeline: suitability rasters in, range-change class rasters, JSON summaries and a change table out."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from envelope.change import (CHANGE_CLASSES, CHANGE_NODATA, LABEL_COLUMNS, change_table, classify_range_change, summarise_change)
+from envelope.errors import InputError
+from envelope.grids import check_same_grid
+from envelope.io.atomic import atomic_output, atomic_outputs, check_writable
+from envelope.io.rasters import open_layer, read_tags
+from envelope.io.tables import read_scenarios
+from envelope.io.writing import write_raster
+from envelope.pipelines.inputs import resolve_threshold
+from envelope.provenance import json_text
+
+__all__ = ["range_change", "range_change_batch", "write_change_table"]
+
+
+def _open(path, *, what, band=None):
+    if not Path(path).exists():
+        raise InputError(f"{path}: {what} file not found")
+    return open_layer(path, band=band)
+
+
+def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, elevation):
+    """Open and check one future map (and its MESS) against NOW; return classes and threshold."""
+    future = _open(future_path, what="future suitability")
+    future = check_same_grid(now, future, ref_name=str(now_path), other_name=str(future_path))
+    value, rule = resolve_threshold({str(now_path): read_tags(now_path), str(future_path): read_tags(future_path)},
+                                    threshold)
+    mess = None
+    if mess_path is not None:
+        # `envelope project --mess` writes two bands: the MESS value and the most dissimilar variable
+        mess = _open(mess_path, what="MESS", band=1)
+        mess = check_same_grid(now, mess, ref_name=str(now_path), other_name=str(mess_path))
+    classes = classify_range_change(now, future, value, mess=mess)
+    classes.attrs["mess"] = mess is not None
+    return classes, value, rule
+
+
+def _open_elevation(now, now_path, elevation_path):
+    if elevation_path is None:
+        return None
+    elevation = _open(elevation_path, what="elevation")
+    return check_same_grid(now, elevation, ref_name=str(now_path), other_name=str(elevation_path))
+
+
+def _write_pair(classes, summary, raster_tmp, summary_tmp):
+    tags = {"threshold": summary["threshold"], "threshold_state": ">=", "content": "range change classes"}
+    if summary.get("threshold_rule") is not None:
+        tags["threshold_rule"] = summary["threshold_rule"]
+    write_raster(classes, raster_tmp, overwrite=True, tags=tags, categories=dict(CHANGE_CLASSES),
+                 nodata=CHANGE_NODATA)
+    Path(summary_tmp).write_text(json_text(summary) + "\n")
+
+
+def range_change(now, future, out, summary, *, threshold=None, mess=None, elevation=None,
+                 edge_percentile: float = 95.0, overwrite: bool = False) -> dict:
+    """Classify range change between suitability rasters ``now`` and ``future``; write map and summary.
+
+    Writes the class raster ``out`` (uint8, categories in its tags) and the JSON ``summary``
+    together, atomically: after an error neither is written. Returns the summary dict.
+    See :func:`summarise_change` for the measures and docs/change.md for their definitions.
+    """
+    for path in (out, summary):
+        check_writable(path, overwrite)
+    if Path(out).resolve() == Path(summary).resolve():
+        raise InputError(f"{out}: the change map and the summary must be different files")
+    now_da = _open(now, what="current suitability")
+    elevation_da = _open_elevation(now_da, now, elevation)
+    classes, value, rule = _prepare(now, now_da, future, threshold, mess, elevation, elevation_da)
+    result = summarise_change(classes, elevation=elevation_da, edge_percentile=edge_percentile)
+    result["threshold_rule"] = rule
+    result["inputs"] = {"now": str(now), "future": str(future), "mess": None if mess is None else str(mess),
+                        "elevation": None if elevation is None else str(elevation)}
+    with atomic_outputs([out, summary], overwrite) as (raster_tmp, summary_tmp):
+        _write_pair(classes, result, raster_tmp, summary_tmp)
+    return result
+
+
+def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevation=None,
+                       edge_percentile: float = 95.0, overwrite: bool = False):
+    """Range change of ``now`` against every future map listed in the CSV ``scenarios``.
+
+    ``scenarios`` has columns name, pathway, climate_model, horizon, path (future suitability
+    raster) and optionally mess_path; relative paths are read from the table's folder. For
+    each row ``out_dir/<name>.tif`` and ``out_dir/<name>.json`` are written, and the combined
+    table (one row per scenario, see :func:`change_table`) goes to ``table``. Every input is
+    checked before anything is written, and all outputs appear together or not at all.
+    Returns the combined table (pandas.DataFrame).
+    """
+    rows = read_scenarios(scenarios, what="future suitability raster")
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InputError(f"{out_dir}: exists and is not a folder")
+    if not out_dir.exists() and not out_dir.absolute().parent.is_dir():
+        raise InputError(f"{out_dir}: its parent folder does not exist")
+    outputs = []
+    for row in rows:
+        outputs += [out_dir / f"{row.name}.tif", out_dir / f"{row.name}.json"]
+    if out_dir.is_dir():
+        for p in outputs:
+            check_writable(p, overwrite)
+    check_writable(table, overwrite)
+
+    now_da = _open(now, what="current suitability")
+    elevation_da = _open_elevation(now_da, now, elevation)
+    prepared = []
+    for row in rows:  # check every scenario before the first byte is written
+        classes, value, rule = _prepare(now, now_da, row.path, threshold, row.mess_path, elevation, elevation_da)
+        prepared.append((classes, value, rule))
+    summaries = []
+    for row, (classes, value, rule) in zip(rows, prepared):
+        result = summarise_change(classes, elevation=elevation_da, edge_percentile=edge_percentile)
+        result["threshold_rule"] = rule
+        result["inputs"] = {"now": str(now), "future": str(row.path),
+                            "mess": None if row.mess_path is None else str(row.mess_path),
+                            "elevation": None if elevation is None else str(elevation)}
+        summaries.append(result)
+    frame = change_table(summaries, [{c: getattr(row, c) for c in LABEL_COLUMNS} for row in rows])
+    out_dir.mkdir(exist_ok=True)
+    with atomic_outputs(outputs + [table], overwrite) as tmps:
+        for k, (classes, _, _) in enumerate(prepared):
+            _write_pair(classes, summaries[k], tmps[2 * k], tmps[2 * k + 1])
+        frame.to_csv(tmps[-1], index=False)
+    return frame
+
+
+def write_change_table(df, path: str | os.PathLike, overwrite: bool = False) -> Path:
+    """Write the change table ``df`` as CSV to ``path`` atomically (refuses to replace without ``overwrite``)."""
+    with atomic_output(path, overwrite) as tmp:
+        df.to_csv(tmp, index=False)
+    return Path(path)
