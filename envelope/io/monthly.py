@@ -12,7 +12,8 @@ import xarray as xr
 
 from envelope.errors import InputError
 
-__all__ = ["gridded_variables", "open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "kind_of_units"]
+__all__ = ["gridded_variables", "open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "MONTH_VARIABLES",
+           "kind_of_units"]
 
 log = logging.getLogger(__name__)
 
@@ -25,6 +26,9 @@ _KELVIN = {"k", "kelvin", "degk", "deg_k"}
 _MM = {"mm", "millimeter", "millimeters", "millimetre", "millimetres", "mm/month", "mm month-1",
        "mm/mon", "kg m-2", "kg/m2", "kg m**-2"}
 
+
+#: Names of the 12 bands (GeoTIFF) or 2-D variables (NetCDF) that :func:`write_monthly` writes.
+MONTH_VARIABLES = [f"M{m:02d}" for m in range(1, 13)]
 
 _GEOTIFF = {".tif", ".tiff"}
 _NETCDF = {".nc", ".nc4", ".netcdf", ".cdf"}
@@ -135,8 +139,40 @@ def gridded_variables(path) -> list[str] | None:
         return [str(v) for v in ds.data_vars if ds[v].ndim >= 3]
 
 
+def _order_by_month_coordinate(da, path):
+    """A ``month`` dim: sorted by its coordinate when the file has one (each month 1..12 once), else file order."""
+    if "month" not in da.coords:  # a dimension without a coordinate variable: January .. December
+        return da.assign_coords(month=np.arange(1, 13))
+    values = da["month"].values
+    try:
+        months = np.asarray(values, dtype=float)
+    except (TypeError, ValueError):
+        months = None
+    if months is None or sorted(months.tolist()) != list(range(1, 13)):
+        raise InputError(f"{path}: month values {list(values.tolist())}; expected each month 1..12 once")
+    return da.assign_coords(month=months.astype(int)).sortby("month")
+
+
+def _open_month_variables(path, chunks):
+    """A NetCDF as :func:`write_monthly` writes it (2-D variables M01 ... M12) as one (month, y, x) array."""
+    from envelope.io.rasters import open_climate
+
+    stack = open_climate(path, variables=MONTH_VARIABLES, chunks=chunks)
+    units = sorted({str(u) for u in stack["units"].values})
+    if len(units) > 1:
+        raise InputError(f"{path}: variables M01 ... M12 have different units ({', '.join(units)}); expected one")
+    crs = stack.rio.crs
+    da = stack.drop_vars("units").rename(variable="month").assign_coords(month=np.arange(1, 13))
+    da.attrs = {"units": units[0]}
+    return da.rio.write_crs(crs)
+
+
 def _open_netcdf(path, chunks, name, variable):
     ds = _open_dataset(path, chunks)
+    if (variable is None and not any(ds[v].ndim >= 3 for v in ds.data_vars)
+            and all(m in ds.data_vars for m in MONTH_VARIABLES)):
+        ds.close()
+        return _open_month_variables(path, chunks)
     da = _pick_variable(ds, path, name, variable)
     xdim = _find_dim(da, _X_NAMES, "x", path)
     ydim = _find_dim(da, _Y_NAMES, "y", path)
@@ -162,7 +198,7 @@ def _open_netcdf(path, chunks, name, variable):
                              "expected each month 1..12 once")
         da = da.drop_vars("time").rename(time="month").assign_coords(month=months).sortby("month")
     else:
-        da = da.assign_coords(month=np.arange(1, 13))
+        da = _order_by_month_coordinate(da, path)
     da = da.rename({ydim: "y", xdim: "x"})
     try:
         crs = da.rio.crs
@@ -193,7 +229,9 @@ def open_monthly(path, *, name: str, variable: str | None = None, units: str | N
     ----------
     path : str or Path
         A GeoTIFF with 12 bands (band 1 = January) or a NetCDF file whose variable has a
-        ``month`` dim of 12 or a ``time`` dim of 12 dates (months taken from the dates).
+        ``month`` dim of 12 (ordered by its coordinate 1..12 when it has one) or a ``time``
+        dim of 12 dates (months taken from the dates), or 2-D variables ``M01`` ... ``M12``
+        as :func:`write_monthly` writes them.
     name : str
         Role of the stack (``"tmin"``, ``"prec"`` ...): the array's name, and the NetCDF
         variable picked when the file holds several.

@@ -26,8 +26,11 @@ class ClimatePath:
     maps: list  # 2-D float arrays (NaN = no climate data)
 
     def __post_init__(self):
-        if len(self.years) != len(self.maps) or not self.years:
-            raise InputError("a climate path needs one suitability map per year")
+        if len(self.years) != len(self.maps) or len(self.years) == 0:
+            raise InputError(f"a climate path needs one suitability map per year; got {len(self.years)} years "
+                             f"and {len(self.maps)} maps")
+        if not all(np.isfinite(float(y)) for y in self.years):
+            raise InputError(f"climate path years must be finite numbers, got {list(self.years)}")
         order = np.argsort(self.years)
         years = [float(self.years[i]) for i in order]
         if any(b <= a for a, b in zip(years, years[1:])):
@@ -63,9 +66,9 @@ class TransientResult:
 def step_years_list(start_year: float, end_year: float, step_years: float) -> list:
     """The years at the end of each step: start + S, start + 2S, ..., ending exactly at end_year."""
     if not (step_years > 0):
-        raise InputError(f"--step-years must be > 0, got {step_years!r}")
-    if end_year <= start_year:
-        raise InputError(f"horizon year {end_year:g} is not after the start year {start_year:g}")
+        raise InputError(f"step_years must be > 0, got {step_years!r}")
+    if not end_year > start_year:
+        raise InputError(f"end_year {end_year:g} is not after start_year {start_year:g}")
     n = max(1, math.ceil((end_year - start_year) / step_years - 1e-9))
     return [start_year + min((i + 1) * step_years, end_year - start_year) for i in range(n)]
 
@@ -110,7 +113,7 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
     TransientResult
     """
     if not 0 <= threshold <= 1:
-        raise InputError(f"--threshold must lie in [0, 1], got {threshold!r}")
+        raise InputError(f"threshold must lie in [0, 1], got {threshold!r}")
     start = np.asarray(start, dtype=np.float64)
     habitat = np.asarray(habitat, dtype=np.float64)
     if start.shape != habitat.shape:
@@ -118,7 +121,10 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
     ops = operators if isinstance(operators, (list, tuple)) else [operators]
     n_rep = len(rngs) if rngs is not None else 0
     if len(ops) > 1 and len(ops) != n_rep:
-        raise InputError("one spread operator per replicate is needed when kernels differ")
+        raise InputError(f"operators: {len(ops)} spread operators for {n_rep} replicates (rngs); "
+                         "expected one operator, or one per replicate")
+    if persistence_steps < 0:
+        raise InputError(f"persistence_steps must be >= 0, got {persistence_steps!r}")
 
     years = step_years_list(float(start_year), float(end_year), float(step_years))
     wanted = sorted({float(y) for y in snapshot_years} | {float(end_year)})

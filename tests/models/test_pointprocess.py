@@ -1,10 +1,11 @@
 """PointProcessModel: Fithian & Hastie (2013) convergence to the Poisson point process, a simulated niche."""
 
-import time
+import warnings
 
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from sklearn.exceptions import ConvergenceWarning
 from sklearn.metrics import roc_auc_score
 
 from envelope.errors import InputError
@@ -119,11 +120,14 @@ def test_elasticnet_and_errors():
         PointProcessModel().fit(X[y == 1], y[y == 1])
 
 
-def test_fit_speed_l1():
-    # Common practice, no source: 1 000 presences x 10 000 background x 8 variables in seconds
+def test_l1_fit_converges_at_benchmark_size():
+    # Common practice, no source: the default L1 fit on 1 000 presences x 10 000 background x 8 variables
+    # (the case timed by bench/bench_pointprocess.py) stops on its tolerance, not on the iteration cap
     rng = np.random.default_rng(0)
     P = rng.normal(size=(1000, 8)) * 0.6 + 0.5
     B = rng.normal(size=(10000, 8))
-    t = time.perf_counter()
-    PointProcessModel(random_state=0).fit(np.r_[P, B], np.r_[np.ones(1000), np.zeros(10000)])
-    assert time.perf_counter() - t < 20
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ConvergenceWarning)
+        m = PointProcessModel(random_state=0).fit(np.r_[P, B], np.r_[np.ones(1000), np.zeros(10000)])
+    assert m.n_iter_ < m.max_iter
+    assert np.isfinite(m.coef_).all() and np.isfinite(m.intercept_)
