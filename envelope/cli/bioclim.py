@@ -28,34 +28,6 @@ def monthly_path(flag):
                         help=f"12-month stack for {flag[2:]} (12-band GeoTIFF or NetCDF with 12 months).")
 
 
-def write_bioclim(paths: dict, out, *, variables=None, gdd_base=5.0, wrap=True, ddof=0, cv_plus_one=False,
-                  overwrite=False):
-    """Open the monthly files in ``paths`` (tmin, tmax, prec[, tmean]), check them, write BIO layers to ``out``.
-
-    Returns the lazy result that was written (for reporting).
-    """
-    from envelope.bioclim import bioclim as compute_bioclim
-    from envelope.bioclim import check_monthly, check_monthly_grids
-    from envelope.io.atomic import check_writable
-    from envelope.io.monthly import PRECIPITATION, TEMPERATURE, open_monthly
-    from envelope.io.writing import write_raster
-
-    check_writable(out, overwrite)
-    arrays = {role: open_monthly(p, name=role, units=PRECIPITATION if role == "prec" else TEMPERATURE)
-              for role, p in paths.items() if p is not None}
-    names = {role: str(p) for role, p in paths.items() if p is not None}
-    check_monthly_grids({names[r]: a for r, a in arrays.items()})
-    check_monthly(arrays["tmin"], arrays["tmax"], arrays["prec"], arrays.get("tmean"), names=names)
-    stack = compute_bioclim(arrays["tmin"], arrays["tmax"], arrays["prec"], arrays.get("tmean"),
-                            variables=variables, wrap=wrap, ddof=int(ddof), cv_plus_one=cv_plus_one,
-                            gdd_base=gdd_base)
-    tags = {key: str(value) for key, value in stack.attrs.items()}
-    tags["long_names"] = dict(zip(map(str, stack["variable"].values), map(str, stack["long_name"].values)))
-    tags.update({f"input_{role}": str(p) for role, p in names.items()})
-    write_raster(stack, out, overwrite=overwrite, tags=tags)
-    return stack
-
-
 @click.command()
 @monthly_path("--tmin")
 @monthly_path("--tmax")
@@ -80,6 +52,8 @@ def bioclim(tmin, tmax, prec, tmean, out, variables, gdd_base, wrap, ddof, cv_pl
       $ envelope bioclim --tmin tmin.tif --tmax tmax.tif --prec prec.tif --out bio.tif
       $ envelope bioclim --tmin t.nc --tmax T.nc --prec p.nc --out bio.tif --variables BIO1,BIO12,GDD5
     """
+    from envelope.pipelines.climate import write_bioclim
+
     stack = write_bioclim({"tmin": tmin, "tmax": tmax, "prec": prec, "tmean": tmean}, out,
                           variables=variables, gdd_base=gdd_base, wrap=wrap, ddof=int(ddof),
                           cv_plus_one=cv_plus_one, overwrite=overwrite)

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import click
 
+from envelope.models import METHOD_NAMES
+
 from envelope.cli.options import (climate_opt, overwrite_opt, positive_float, record_years_opt, record_years_value,
                                   seed_opt, variables_opt)
 
@@ -30,7 +32,7 @@ def _rule(ctx, param, value):
 @click.option("--out", "out", required=True, type=click.Path(dir_okay=False), help="Model file to write (.envm).")
 @click.option("--summary", type=click.Path(dir_okay=False), default=None,
               help="Fit summary JSON (default: <model>.fit.json beside the model; per-fold CSV beside it).")
-@click.option("--method", type=click.Choice(["pointprocess", "envelope", "brt", "forest", "ensemble"]),
+@click.option("--method", type=click.Choice(METHOD_NAMES),
               default="pointprocess", show_default=True, help="Model family.")
 @click.option("--background", "background", type=click.IntRange(min=100), default=10_000, show_default=True,
               help="Number of random background cells.")
@@ -71,18 +73,12 @@ def fit(presences, climate, out, summary, method, background, bias, variables, b
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-    from envelope.pipelines.fit import FitOptions, fit_model, write_fit_outputs
-    from envelope.io.atomic import check_writable
-    from envelope.io.rasters import open_climate, open_layer
+    from envelope.io.atomic import check_distinct, check_writable
+    from envelope.pipelines.fit import FitOptions, fit_files, write_fit_outputs
 
+    check_distinct({"--out": out, "--summary": summary}, {"--presences": presences, "--climate": climate, "--bias": bias})
     check_writable(out, overwrite)
     console = Console(stderr=True)
-    stack = open_climate(list(climate))
-    bias_layer = open_layer(bias) if bias else None
-    if bias_layer is not None:
-        from envelope.grids import check_same_grid
-
-        check_same_grid(stack, bias_layer, ref_name="climate", other_name=f"--bias {bias}")
     options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
                          folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed,
                          max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
@@ -96,8 +92,7 @@ def fit(presences, climate, out, summary, method, background, bias, variables, b
                 tasks[stage] = bar.add_task(stage, total=total)
             bar.update(tasks[stage], completed=done)
 
-        result = fit_model(presences, stack, options=options, bias=bias_layer, climate_paths=climate,
-                           bias_path=bias, progress=progress)
+        result = fit_files(presences, list(climate), options=options, bias=bias, progress=progress)
     paths = write_fit_outputs(result, out, summary, overwrite=overwrite)
     print_fit_summary(result.summary, paths)
 

@@ -42,48 +42,14 @@ def fragmentation(habitat, classes, grid, align_habitat, band_deg, habitat_thres
       $ envelope fragmentation --habitat landcover.tif --classes classes.csv --grid baseline.tif \\
             --band-deg 0.5 --connectivity 8 --out fragmentation.csv --summary fragmentation.json
     """
-    import json
-    import math
-
-    import numpy as np
     from rich.console import Console
     from rich.table import Table
 
-    from envelope.errors import InputError
-    from envelope.provenance import json_text
-    from envelope.habitat import fragmentation_by_latitude, fragmentation_summary
-    from envelope.pipelines.inputs import load_habitat
-    from envelope.io.atomic import atomic_output, check_writable
-    from envelope.io.rasters import open_layer
+    from envelope.pipelines.fragmentation import fragmentation_files
 
-    for p in (out, summary):
-        if p:
-            check_writable(p, overwrite)
-    if not (0 < habitat_threshold <= 1):
-        raise InputError(f"--habitat-threshold must lie in (0, 1], got {habitat_threshold:g}")
-    if not (0 < band_deg <= 180 and math.isfinite(band_deg)):
-        raise InputError(f"--band-deg must be a width in degrees in (0, 180], got {band_deg:g}")
-    if grid:
-        ref = open_layer(grid, band=1)
-        land = ref.notnull().astype(np.float32)
-        hab = load_habitat(habitat, ref, classes=classes, align=align_habitat)
-        land_name = f"cells of --grid {grid} with data"
-    else:
-        hab = load_habitat(habitat, habitat, classes=classes, nodata_as=float("nan"))
-        land, land_name = None, f"cells of --habitat {habitat} with data"
-    conn = int(connectivity)
-    table = fragmentation_by_latitude(hab, threshold=habitat_threshold, band_deg=band_deg, land_mask=land,
-                                      connectivity=conn)
-    if table.empty:
-        raise InputError(f"--habitat {habitat}: no land cell ({land_name}); nothing to tabulate")
-    result = fragmentation_summary(table, threshold=habitat_threshold, band_deg=band_deg, connectivity=conn,
-                                   land=land_name)
-    result["inputs"] = {"habitat": habitat, "classes": classes, "grid": grid}
-    with atomic_output(out, overwrite=overwrite) as tmp:
-        table.to_csv(tmp, index=False)
-    if summary:
-        with atomic_output(summary, overwrite=overwrite) as tmp:
-            tmp.write_text(json_text(result))
+    table, result = fragmentation_files(habitat, out, summary=summary, grid=grid, classes=classes,
+                                        align_habitat=align_habitat, habitat_threshold=habitat_threshold,
+                                        band_deg=band_deg, connectivity=connectivity, overwrite=overwrite)
 
     console = Console()
     t = Table(title=f"Habitat by {band_deg:g}° latitude band (equator to pole)")

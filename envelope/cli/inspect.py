@@ -25,9 +25,9 @@ def inspect(model_file, as_json):
       $ envelope inspect model.envm
       $ envelope inspect model.envm --json > model.json
     """
-    from envelope.io.modelfile import model_summary, read_manifest
+    from envelope.pipelines.info import describe_model
 
-    summary = model_summary(read_manifest(model_file))
+    summary = describe_model(model_file)
     if as_json:
         click.echo(json.dumps(summary, indent=2, default=str))
         return

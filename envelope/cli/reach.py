@@ -45,7 +45,6 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     from envelope.io.atomic import check_distinct, check_writable
     from envelope.pipelines.inputs import build_reach_inputs
     from envelope.pipelines.reach import run_reach, write_reach_outputs
-    from envelope.reach import DispersalSettings
 
     check_distinct({"--out": out, "--summary": summary, "--front": front, "--arrival": arrival},
                    {"--now": now, "--future": futures, "--habitat": habitat, "--start": start, "--classes": classes})
@@ -55,8 +54,8 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     if len(years) != len(futures):
         raise InputError(f"--years gives {len(years)} year(s) for {len(futures)} --future map(s); give one per map")
     mean_km, mean_range = mean_distance_km
-    settings = DispersalSettings(kernel=kernel, mean_distance_km=mean_km, shape=shape,
-                                 mean_distance_range_km=mean_range if replicates else None)
+    settings = {"kernel": kernel, "mean_distance_km": mean_km, "shape": shape,
+                "mean_distance_range_km": mean_range if replicates else None}
     inputs = build_reach_inputs(now, {None: list(zip(years, futures))}, habitat, start, settings=settings,
                                 classes=classes, align_habitat=align_habitat, threshold=threshold,
                                 now_year=now_year, step_years=step_years, rate=rate,

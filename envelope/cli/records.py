@@ -43,25 +43,11 @@ def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, r
       $ envelope records plots.tsv --climate tmean.tif --climate precip.tif \\
           --x-column easting --y-column northing --crs EPSG:3035 --json
     """
-    from envelope.io.atomic import atomic_output, check_writable
-    from envelope.io.records import read_occurrences
-    from envelope.io.rasters import open_climate
-    from envelope.records import clean_occurrences
+    from envelope.pipelines.records import clean_records_file
 
-    if out is not None:
-        check_writable(out, overwrite)  # refuse before any work is done
-    table = read_occurrences(records_path, x_column=x_column, y_column=y_column, crs=crs)
-    grid = open_climate(list(climate))
-    result = clean_occurrences(table, grid, max_uncertainty_m=max_uncertainty_m,
-                               record_years=record_years_value(record_years), thin_km=thin_km)
-    if out is not None:
-        with atomic_output(out, overwrite) as tmp:
-            result.table.to_csv(tmp, index=False)
-
-    summary = result.summary()
-    summary["source"] = str(records_path)
-    if out is not None:
-        summary["out"] = str(out)
+    summary = clean_records_file(records_path, list(climate), x_column=x_column, y_column=y_column, crs=crs,
+                                 max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
+                                 thin_km=thin_km, out=out, overwrite=overwrite)
     if as_json:
         click.echo(json.dumps(summary, indent=2))
         return

@@ -101,18 +101,15 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
             --candidates sample_grids/demo/landcover.tif --candidate-classes 4 --max-patch-km2 400 \\
             --budget-km2 1500 --out priority.tif --table priority.csv --summary target.json
     """
-    import time
-
-    import numpy as np
     from rich.console import Console
 
     from envelope.errors import InputError
-    from envelope.grids import check_same_grid
-    from envelope.io.atomic import check_writable
-    from envelope.io.rasters import open_layer
-    from envelope.targeting import target_restoration
-    from envelope.pipelines.target import write_target_outputs
+    from envelope.io.atomic import check_distinct, check_writable
+    from envelope.pipelines.target import choose_patches, reach_model_from_options, write_target_outputs
 
+    check_distinct({"--out": out, "--table": table, "--summary": summary},
+                   {"--now": now, "--future": futures, "--habitat": habitat, "--start": start, "--candidates": candidates,
+                    "--cost": cost, "--scenarios": scenario_table, "--study": study})
     for p in (out, table, summary):
         check_writable(p, overwrite)
     if not budget_km2 > 0:
@@ -128,99 +125,15 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
                 raise InputError(f"{flag}: the reach model comes from the study run with --study; leave {flag} out")
         model = _from_study(study, run_dir)
     else:
-        model = _from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
+        model = reach_model_from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
                               mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years)
-    grid, grid_name = model.now, model.now_name
-    if candidate_classes is None:
-        cand = open_layer(candidates)
-    else:
-        from envelope.reachable_gain import candidates_from_classes
-
-        codes = open_layer(candidates, categorical=True)
-        cand = codes.copy(data=candidates_from_classes(codes, candidate_classes,
-                                                       name=f"--candidates {candidates}").astype(np.float32))
-    check_same_grid(grid, cand, ref_name=grid_name, other_name=f"--candidates {candidates}")
-    cost_layer = None
-    if cost:
-        cost_layer = open_layer(cost)
-        check_same_grid(grid, cost_layer, ref_name=grid_name, other_name=f"--cost {cost}")
-    quality_value = _quality(quality, grid, grid_name)
-
-    t0 = time.perf_counter()
     with Console(stderr=True).status("choosing patches (deterministic reach runs)"):
-        futures = model.futures.get(None, model.futures)  # one --future path, or {path name: horizons}
-        result = target_restoration(grid, futures, model.habitat, model.start, cand,
-                                    budget_km2=budget_km2, threshold=model.threshold, settings=model.settings,
-                                    cost=cost_layer, budget_cost=budget_cost, quality=quality_value,
-                                    objective=objective, **model.timing(),
-                                    random_draws=random_draws, seed=seed, max_evaluations=max_evaluations,
-                                    max_patch_km2=max_patch_km2)
-    result.summary["seconds"] = round(time.perf_counter() - t0, 3)
-    result.summary["start"] = model.start_info
-    result.summary["inputs"] = {**model.inputs, "candidates": candidates, "candidate_classes": candidate_classes,
-                                "cost": cost,
-                                "quality": None if isinstance(quality_value, float) else quality}
+        result = choose_patches(model, candidates, candidate_classes=candidate_classes, cost=cost, quality=quality,
+                                budget_km2=budget_km2, budget_cost=budget_cost, objective=objective,
+                                random_draws=random_draws, seed=seed, max_evaluations=max_evaluations,
+                                max_patch_km2=max_patch_km2)
     written = write_target_outputs(result, out, table, summary, overwrite=overwrite, tags={"software": "envelope"})
     _print(result, written)
-
-
-def _quality(text, grid, grid_name):
-    """--quality: a number in (0, 1], or a raster on the grid (checked per candidate cell later)."""
-    from pathlib import Path
-
-    from envelope.errors import InputError
-    from envelope.grids import check_same_grid
-    from envelope.io.rasters import open_layer
-
-    try:
-        value = float(text)
-    except ValueError:
-        if not Path(text).is_file():
-            raise InputError(f"--quality {text!r}: expected a number in (0, 1] or a quality raster, "
-                             "and there is no such file") from None
-        layer = open_layer(text)
-        check_same_grid(grid, layer, ref_name=grid_name, other_name=f"--quality {text}")
-        return layer
-    if not (0 < value <= 1):
-        raise InputError(f"--quality must lie in (0, 1], got {text}")
-    return value
-
-
-def _from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
-                  mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years):
-    """The reach model from the command line: one climate path (--future/--years) or a suitability table."""
-    from envelope.errors import InputError
-    from envelope.io.tables import suitability_paths
-    from envelope.pipelines.inputs import build_reach_inputs
-    from envelope.reach import DispersalSettings
-
-    for flag, value in (("--now", now), ("--habitat", habitat), ("--start", start),
-                        ("--mean-distance-km", mean_distance_km)):
-        if value is None:
-            raise InputError(f"{flag} is required (or give --study and --run-dir)")
-    if scenario_table and (futures or years):
-        raise InputError("--scenarios replaces --future/--years; give one or the other")
-    if scenario_table:
-        paths = suitability_paths(scenario_table)
-    elif futures:
-        years = years or []
-        if len(years) != len(futures):
-            raise InputError(f"--years gives {len(years)} year(s) for {len(futures)} --future map(s); "
-                             "give one per map")
-        paths = {None: list(zip(years, futures))}
-    else:
-        raise InputError("give the future climate: --future with --years, --scenarios, or --study with --run-dir")
-    mean_km, mean_range = mean_distance_km
-    if mean_range is not None:
-        raise InputError("--mean-distance-km: target runs the deterministic model; give one distance, not LOW:HIGH")
-    settings = DispersalSettings(kernel=kernel, mean_distance_km=mean_km, shape=shape)
-    model = build_reach_inputs(
-        now, paths, habitat, start, settings=settings, classes=classes, align_habitat=align_habitat,
-        threshold=threshold, now_year=now_year, step_years=step_years, rate=rate,
-        persistence_years=persistence_years,
-        path_names=lambda name, p: f"--future {p}" if name is None else f"--scenarios {scenario_table}: {p}")
-    model.inputs["scenarios"] = scenario_table
-    return model
 
 
 def _from_study(study_file, run_dir):

@@ -10,12 +10,15 @@ from envelope.errors import InputError
 from envelope.io.atomic import atomic_output
 
 __all__ = ["SCENARIO_COLUMNS", "SUITABILITY_TABLE_COLUMNS", "SUITABILITY_TABLE_NAME", "Scenario", "group_scenarios",
-           "read_class_table", "read_scenarios", "suitability_paths", "write_suitability_table"]
+           "read_class_table", "read_model_table", "read_scenarios", "suitability_paths", "write_suitability_table"]
 
 SCENARIO_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path")
 SUITABILITY_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path", "mess_path",
                              "novel_share")
 SUITABILITY_TABLE_NAME = "suitability_table.csv"
+# The delta method's model table: one row per scenario and monthly variable.
+MODEL_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "variable", "historical", "future")
+MODEL_TABLE_OPTIONAL = ("model_variable",)  # NetCDF variable to read from the model files (default: `variable`)
 
 
 @dataclass(frozen=True)
@@ -230,3 +233,52 @@ def read_class_table(path) -> dict:
     if not table:
         raise InputError(f"{path}: class table has no rows")
     return table
+
+
+def read_model_table(path) -> dict[str, dict]:
+    """Read MODELS.csv: one row per scenario and monthly variable; paths relative to the table.
+
+    Returns scenario name -> {"pathway", "climate_model", "horizon", "files": {variable: (hist, fut)},
+    "model_variables": {variable: NetCDF variable name from the optional ``model_variable`` column, or None}}.
+    """
+    path = Path(path)
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            reader = csv.DictReader(fh)
+            header = [h.strip() for h in reader.fieldnames or []]
+            rows = [{(k or "").strip(): (v or "").strip() for k, v in row.items()} for row in reader]
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"{path}: cannot read the model table ({exc})") from None
+    missing = [c for c in MODEL_TABLE_COLUMNS if c not in header]
+    if missing:
+        raise InputError(f"{path}: column {missing[0]!r} missing (found {', '.join(header) or 'none'}; "
+                         f"expected {', '.join(MODEL_TABLE_COLUMNS)})")
+    if not rows:
+        raise InputError(f"{path}: no rows; expected one row per scenario and variable")
+    scenarios: dict[str, dict] = {}
+    for i, row in enumerate(rows, start=2):  # line numbers, header is line 1
+        name = row["name"]
+        if not name or any(c in name for c in "/\\"):
+            raise InputError(f"{path}: line {i} name {name!r}; expected a non-empty name without slashes")
+        try:
+            horizon = int(float(row["horizon"]))
+        except ValueError:
+            raise InputError(f"{path}: line {i} horizon {row['horizon']!r}; expected a year") from None
+        meta = {"pathway": row["pathway"], "climate_model": row["climate_model"], "horizon": horizon}
+        entry = scenarios.setdefault(name, {**meta, "files": {}, "model_variables": {}})
+        if {k: entry[k] for k in meta} != meta:
+            raise InputError(f"{path}: line {i}: scenario {name!r} has a different pathway, climate model "
+                             "or horizon than on its earlier lines")
+        var = row["variable"]
+        if var in entry["files"]:
+            raise InputError(f"{path}: line {i}: scenario {name!r} lists variable {var!r} twice")
+        files = []
+        for col in ("historical", "future"):
+            p = Path(row[col])
+            p = p if p.is_absolute() else path.parent / p
+            if not p.is_file():
+                raise InputError(f"{path}: line {i} {col} file {p} not found")
+            files.append(p)
+        entry["files"][var] = tuple(files)
+        entry["model_variables"][var] = row.get("model_variable") or None
+    return scenarios

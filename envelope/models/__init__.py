@@ -2,27 +2,36 @@
 
 from __future__ import annotations
 
-import numpy as np
+import importlib
 
 from envelope.errors import InputError
-from envelope.models.ensemble import SkillWeightedEnsemble
-from envelope.models.percentile import PercentileEnvelope
-from envelope.models.pointprocess import PointProcessModel
-from envelope.models.trees import BoostedTrees, DownsampledForest
 
 __all__ = [
-    "METHODS", "BoostedTrees", "DownsampledForest", "PercentileEnvelope", "PointProcessModel",
+    "METHODS", "METHOD_NAMES", "BoostedTrees", "DownsampledForest", "PercentileEnvelope", "PointProcessModel",
     "SkillWeightedEnsemble", "make_estimator", "response_curves",
 ]
 
-# method name (as given on the command line / in a study file) -> estimator class
-METHODS = {
-    "pointprocess": PointProcessModel,
-    "envelope": PercentileEnvelope,
-    "brt": BoostedTrees,
-    "forest": DownsampledForest,
-    "ensemble": SkillWeightedEnsemble,
+# The registry: method name (as given on the command line / in a study file) -> estimator class.
+# Classes are imported when first used, so that the command line and the study validator can
+# read the names without importing scikit-learn.
+_REGISTRY = {
+    "pointprocess": ("envelope.models.pointprocess", "PointProcessModel"),
+    "envelope": ("envelope.models.percentile", "PercentileEnvelope"),
+    "brt": ("envelope.models.trees", "BoostedTrees"),
+    "forest": ("envelope.models.trees", "DownsampledForest"),
+    "ensemble": ("envelope.models.ensemble", "SkillWeightedEnsemble"),
 }
+#: The one list of method names: CLI choices, the study validator and the messages read it.
+METHOD_NAMES = tuple(_REGISTRY)
+_CLASSES = {cls: module for module, cls in _REGISTRY.values()}
+
+
+def __getattr__(name):
+    if name == "METHODS":
+        return {method: __getattr__(cls) for method, (_, cls) in _REGISTRY.items()}
+    if name in _CLASSES:
+        return getattr(importlib.import_module(_CLASSES[name]), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 def make_estimator(method: str, **params):
@@ -35,9 +44,9 @@ def make_estimator(method: str, **params):
     >>> make_estimator("pointprocess", C=5.0)
     PointProcessModel(C=5.0)
     """
-    if method not in METHODS:
-        raise InputError(f"method: got {method!r}; expected one of {', '.join(METHODS)}")
-    cls = METHODS[method]
+    if method not in METHOD_NAMES:
+        raise InputError(f"method: got {method!r}; expected one of {', '.join(METHOD_NAMES)}")
+    cls = __getattr__(_REGISTRY[method][1])
     allowed = cls().get_params(deep=False)
     unknown = [p for p in params if p not in allowed]
     if unknown:
@@ -72,6 +81,8 @@ def response_curves(estimator, X_reference, feature_names, n_points: int = 50) -
     new and robust method for plotting predicted responses from species distribution
     models. Ecological Modelling 186: 280–289.
     """
+    import numpy as np
+
     X = np.asarray(X_reference, dtype=np.float64)
     names = [str(n) for n in feature_names]
     if X.ndim != 2 or X.shape[1] != len(names):

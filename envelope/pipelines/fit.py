@@ -259,7 +259,9 @@ def build_estimator(method: str, seed: int = 0):
                    ("brt", build_estimator("brt", seed)),
                    ("forest", build_estimator("forest", seed))]
         return make_estimator("ensemble", members=members)
-    raise InputError(f"--method: got {method!r}; expected pointprocess, envelope, brt, forest or ensemble")
+    from envelope.models import METHOD_NAMES
+
+    raise InputError(f"--method: got {method!r}; expected one of {', '.join(METHOD_NAMES)}")
 
 
 def _group_params(method: str, folds) -> dict:
@@ -311,3 +313,21 @@ def fit_options_from_study(study, method: str) -> FitOptions:
                       blocks_km=m.blocks_km, folds=m.folds, cv=m.cv, threshold_rule=m.threshold_rule, seed=m.seed,
                       max_uncertainty_m=r.max_uncertainty_m, record_years=r.years, thin_km=r.thin_km or None,
                       x_column=r.x_column, y_column=r.y_column, crs=r.crs)
+
+
+def fit_files(records_path, climate, *, options: FitOptions | None = None, bias=None, progress=None) -> FitResult:
+    """:func:`fit_model` on files: the records, the climate grid file(s) and an optional bias raster.
+
+    The bias raster must be on the climate grid (the message names ``--bias`` and the first
+    difference).
+    """
+    from envelope.grids import check_same_grid
+    from envelope.io.rasters import open_climate, open_layer
+
+    climate = list(climate) if isinstance(climate, (list, tuple)) else [climate]
+    stack = open_climate(climate)
+    bias_layer = None
+    if bias:
+        bias_layer = check_same_grid(stack, open_layer(bias), ref_name="climate", other_name=f"--bias {bias}")
+    return fit_model(records_path, stack, options=options, bias=bias_layer, climate_paths=climate, bias_path=bias,
+                     progress=progress)

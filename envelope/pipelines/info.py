@@ -1,4 +1,4 @@
-"""Describe a grid file: CRS, shape, resolution, bounds, variables, nodata share and true valid area."""
+"""Describe a file: a grid (CRS, shape, variables, nodata share, true valid area) or a model file (its manifest)."""
 
 from __future__ import annotations
 
@@ -66,3 +66,10 @@ def describe_grid(path) -> dict:
         "nodata_share": float(share_any),
         "valid_area_km2": float(valid_area),
     }
+
+
+def describe_model(path) -> dict:
+    """What a model file holds, from its manifest only (:func:`envelope.io.modelfile.model_summary`)."""
+    from envelope.io.modelfile import model_summary, read_manifest
+
+    return model_summary(read_manifest(path))

@@ -167,7 +167,7 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
         Climate path name -> ``[(year, suitability raster path), ...]``.
     habitat, classes, align_habitat : see :func:`load_habitat`
     start : path of a records table or an occupancy raster (:func:`load_start`)
-    settings : envelope.reach.DispersalSettings
+    settings : envelope.reach.DispersalSettings, or a dict of its fields
     threshold : float, optional
         Overrides the rasters' ``threshold`` tags (:func:`resolve_threshold`).
     start_options : dict, optional
@@ -182,6 +182,10 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
     from envelope.grids import check_same_grid
     from envelope.io.rasters import open_layer, read_tags
 
+    from envelope.reach import DispersalSettings
+
+    if isinstance(settings, dict):
+        settings = DispersalSettings(**settings)
     now_name = now_name or f"--now {now}"
     label = path_names or (lambda _name, p: f"--future {p}")
     now_layer = open_layer(now) if now_layer is None else now_layer

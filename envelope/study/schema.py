@@ -11,6 +11,7 @@ from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
 from envelope.errors import InputError
+from envelope.models import METHOD_NAMES
 from envelope.kernels.dispersal import KERNEL_KINDS
 from envelope.kernels.thresholds import THRESHOLD_RULES
 from envelope.ensemble import DEFAULT_AGREEMENT
@@ -19,16 +20,9 @@ from envelope.io.tables import SCENARIO_COLUMNS, Scenario, read_scenarios
 __all__ = [
     "ClimateSection", "ComputeSection", "DispersalSection", "HabitatSection", "ModelSection",
     "OutputsSection", "RecordsSection", "ScenarioSection", "Study", "StudySection",
-    "load_study", "read_scenario_table", "METHOD_NAMES", "OUTPUT_FORMATS",
+    "load_study", "OUTPUT_FORMATS",
 ]
 
-#: The scenario-table reader shared by the study file, the CLI and other commands
-#: (one implementation, in :mod:`envelope.scenarios`).
-read_scenario_table = read_scenarios
-
-#: Method names accepted in ``model.methods`` (the keys of :data:`envelope.models.METHODS`;
-#: kept as a tuple here so loading a study file does not import scikit-learn).
-METHOD_NAMES = ("pointprocess", "envelope", "brt", "forest", "ensemble")
 OUTPUT_FORMATS = ("tif", "nc")
 CV_SCHEMES = ("block", "random")
 
@@ -451,7 +445,7 @@ def _scenarios(c: _Checker, doc, now_year) -> tuple[ScenarioSection, list]:
     if has_table:
         table = c.file("scenarios.table", t["table"], what="a scenario table")
         try:
-            scenarios = read_scenario_table(table)
+            scenarios = read_scenarios(table)
         except InputError as exc:
             c.fail("scenarios.table", str(exc))
     else:

@@ -9,7 +9,8 @@ import pytest
 from envelope.study.demo import demo_dir
 from envelope.errors import InputError
 from envelope.io.tables import Scenario
-from envelope.study.schema import load_study, read_scenario_table
+from envelope.io.tables import read_scenarios
+from envelope.study.schema import load_study
 
 DEMO = demo_dir()
 STUDY = DEMO.parent / "study.toml"  # the demo study file sits beside the demo folder
@@ -217,7 +218,7 @@ def test_bad_scenario_csv_names_key_and_csv(folder, csv, pattern):
     with pytest.raises(InputError, match=r"study.toml: scenarios.table: .*" + pattern):
         load_study(write(folder, MINIMAL))
     with pytest.raises(InputError, match=pattern):  # the shared reader says the same on its own
-        read_scenario_table(folder / "scenarios.csv")
+        read_scenarios(folder / "scenarios.csv")
 
 
 def test_duplicate_inline_scenario_names(folder):
@@ -248,10 +249,17 @@ def test_to_dict_is_json_ready_and_stable(tmp_path):
     assert {k for k in first if first[k] != changed[k]} == {"dispersal"}
 
 
-def test_method_names_match_the_model_registry():
-    from envelope.models import METHODS
-    from envelope.study.schema import METHOD_NAMES
+def test_method_names_come_from_the_model_registry():
+    import subprocess
+    import sys
 
-    # Common practice, no source: the study file's list (kept free of scikit-learn imports)
-    # must not drift from the registry that builds the estimators.
+    from envelope.cli.fit import fit
+    from envelope.models import METHOD_NAMES, METHODS
+
+    # Common practice, no source: one list of names, the registry's, feeds the CLI choices and
+    # the study validator; reading it imports no estimator (no scikit-learn on `--help`).
     assert METHOD_NAMES == tuple(METHODS)
+    method = next(p for p in fit.params if p.name == "method")
+    assert tuple(method.type.choices) == METHOD_NAMES
+    code = "import sys, envelope.models as m; m.METHOD_NAMES; print('sklearn' in sys.modules)"
+    assert subprocess.run([sys.executable, "-c", code], capture_output=True, text=True).stdout.strip() == "False"

@@ -1,0 +1,194 @@
+"""Climate-building pipelines: bioclimatic variables from monthly files, and scenario grids by the delta method."""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+from envelope.bioclim import bioclim as compute_bioclim
+from envelope.bioclim import check_monthly, check_monthly_grids
+from envelope.delta import delta as delta_method
+from envelope.errors import InputError
+from envelope.io.atomic import atomic_outputs, check_writable
+from envelope.io.monthly import PRECIPITATION, TEMPERATURE, gridded_variables, kind_of_units, open_monthly, write_monthly
+from envelope.io.tables import SCENARIO_COLUMNS, read_model_table
+from envelope.io.writing import write_raster
+
+__all__ = ["MONTHLY_TABLE_COLUMNS", "VARIABLE_METHODS", "delta_batch", "delta_single", "method_for_units", "write_bioclim"]
+
+# Method per monthly variable of the batch form (Hay, Wilby & Leavesley 2000).
+VARIABLE_METHODS = {"tmin": "additive", "tmax": "additive", "tmean": "additive", "prec": "ratio"}
+_UNITS = {"tmin": "temperature", "tmax": "temperature", "tmean": "temperature", "prec": "precipitation"}
+MONTHLY_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "variable", "path")
+
+
+
+def write_bioclim(paths: dict, out, *, variables=None, gdd_base=5.0, wrap=True, ddof=0, cv_plus_one=False,
+                  overwrite=False):
+    """Open the monthly files in ``paths`` (tmin, tmax, prec[, tmean]), check them, write BIO layers to ``out``.
+
+    Returns the lazy result that was written (for reporting).
+    """
+
+    check_writable(out, overwrite)
+    arrays = {role: open_monthly(p, name=role, units=PRECIPITATION if role == "prec" else TEMPERATURE)
+              for role, p in paths.items() if p is not None}
+    names = {role: str(p) for role, p in paths.items() if p is not None}
+    check_monthly_grids({names[r]: a for r, a in arrays.items()})
+    check_monthly(arrays["tmin"], arrays["tmax"], arrays["prec"], arrays.get("tmean"), names=names)
+    stack = compute_bioclim(arrays["tmin"], arrays["tmax"], arrays["prec"], arrays.get("tmean"),
+                            variables=variables, wrap=wrap, ddof=int(ddof), cv_plus_one=cv_plus_one,
+                            gdd_base=gdd_base)
+    tags = {key: str(value) for key, value in stack.attrs.items()}
+    tags["long_names"] = dict(zip(map(str, stack["variable"].values), map(str, stack["long_name"].values)))
+    tags.update({f"input_{role}": str(p) for role, p in names.items()})
+    write_raster(stack, out, overwrite=overwrite, tags=tags)
+    return stack
+
+
+def method_for_units(method, baseline, path):
+    if method:
+        return method
+    kind = kind_of_units(baseline.attrs.get("units", ""))
+    if kind == TEMPERATURE:
+        return "additive"
+    if kind == PRECIPITATION:
+        return "ratio"
+    raise InputError(f"{path}: units {baseline.attrs.get('units', '')!r} do not say temperature or "
+                     "precipitation; add --method additive (temperature) or --method ratio (precipitation)")
+
+
+def delta_single(baseline_path, hist_path, fut_path, out, *, model_variable=None, method=None, ratio_floor=1.0,
+                 max_ratio=None, overwrite=False) -> dict:
+    """Delta method for one baseline variable: write the future 12-month stack to ``out``; returns what was written."""
+
+    check_writable(out, overwrite)
+    baseline = open_monthly(baseline_path, name="baseline")
+    method = method_for_units(method, baseline, baseline_path)
+    preferred = Path(baseline_path).stem
+    variables = {role: _model_variable(p, model_variable, preferred, "add --variable NAME to pick one")
+                 for role, p in (("historical", hist_path), ("future", fut_path))}
+    future = _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables)
+    write_monthly(future, out, overwrite=overwrite, tags=_tags(future, baseline_path, hist_path, fut_path))
+    return {"method": method, "out": str(out)}
+
+
+def _model_variable(path, requested, preferred, hint):
+    """The NetCDF variable to read from a model file: as requested, the only one, or the one called ``preferred``.
+
+    None lets :func:`envelope.io.monthly.open_monthly` decide (a GeoTIFF, or a single
+    gridded variable); a requested name is checked by ``open_monthly`` itself.
+    """
+
+    if requested:
+        return requested
+    names = gridded_variables(path)
+    if names is None or len(names) == 1:
+        return None
+    if preferred in names:
+        return preferred
+    raise InputError(f"{path}: {len(names)} gridded variables ({', '.join(names) or 'none'}) and none "
+                     f"called {preferred!r}; {hint}")
+
+
+def _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables=None):
+
+    variables = variables or {}
+    hist = open_monthly(hist_path, name="historical", variable=variables.get("historical"))
+    fut = open_monthly(fut_path, name="future", variable=variables.get("future"))
+    return delta_method(baseline, hist, fut, method=method, ratio_floor=ratio_floor, max_ratio=max_ratio,
+                        names={"baseline": str(baseline_path), "historical": str(hist_path),
+                               "future": str(fut_path)})
+
+
+def _tags(future, baseline_path, hist_path, fut_path):
+    tags = {k: str(v) for k, v in future.attrs.items() if k != "source"}
+    tags.update({"baseline": str(baseline_path), "model_historical": str(hist_path),
+                 "model_future": str(fut_path)})
+    return tags
+
+
+def delta_batch(table, baseline_paths: dict, out_dir, *, ratio_floor=1.0, max_ratio=None, with_bioclim=False,
+                conventions=None, overwrite=False) -> dict:
+    """Delta method over a model table (:func:`envelope.io.tables.read_model_table`), all outputs or none.
+
+    Writes ``out_dir/<name>/<variable>.tif`` and ``out_dir/monthly.csv``; with ``with_bioclim``
+    also ``out_dir/<name>/bioclim.tif`` and the scenario table ``out_dir/scenarios.csv``.
+    """
+    conventions = conventions or {}
+
+    out_dir = Path(out_dir)
+    if not out_dir.is_dir():
+        raise InputError(f"--out-dir {out_dir}: folder does not exist")
+    scenarios = read_model_table(table)
+    baselines = {var: open_monthly(p, name=var, units=_UNITS.get(var)) for var, p in baseline_paths.items()}
+    for name, sc in scenarios.items():
+        absent = sorted(set(sc["files"]) - set(baselines))
+        if absent:
+            raise InputError(f"{table}: scenario {name!r} has variable {absent[0]!r} but no --baseline {absent[0]}=PATH")
+        if with_bioclim:
+            need = sorted({"tmin", "tmax", "prec"} - set(sc["files"]))
+            if need:
+                raise InputError(f"{table}: scenario {name!r} lacks variable {need[0]!r}, needed by --bioclim")
+    if with_bioclim:
+        _check_bioclim_baselines(baselines, baseline_paths)
+
+    # Build every output lazily first, so any bad input stops the run before a file is written.
+    jobs, monthly_rows, scenario_rows = [], [], []
+    for name, sc in scenarios.items():
+        futures = {}
+        for var, (hist_path, fut_path) in sc["files"].items():
+            method = VARIABLE_METHODS.get(var) or method_for_units(None, baselines[var], baseline_paths[var])
+            requested = sc["model_variables"].get(var)
+            hint = f"add a model_variable column to {table} to pick one"
+            variables = {role: _model_variable(p, requested, var, hint)
+                         for role, p in (("historical", hist_path), ("future", fut_path))}
+            futures[var] = _future(baselines[var], baseline_paths[var], hist_path, fut_path, method,
+                                   ratio_floor, max_ratio, variables)
+            rel = Path(name) / f"{var}.tif"
+            jobs.append(("monthly", futures[var], rel,
+                         _tags(futures[var], baseline_paths[var], hist_path, fut_path)))
+            monthly_rows.append([name, sc["pathway"], sc["climate_model"], sc["horizon"], var, rel.as_posix()])
+        if with_bioclim:
+            stack = compute_bioclim(futures["tmin"], futures["tmax"], futures["prec"], futures.get("tmean"),
+                                    **conventions)
+            rel = Path(name) / "bioclim.tif"
+            jobs.append(("bioclim", stack, rel, {k: str(v) for k, v in stack.attrs.items()}))
+            scenario_rows.append([name, sc["pathway"], sc["climate_model"], sc["horizon"], rel.as_posix()])
+    for name in scenarios:
+        (out_dir / name).mkdir(exist_ok=True)
+
+    targets = [out_dir / rel for _, _, rel, _ in jobs] + [out_dir / "monthly.csv"]
+    if with_bioclim:
+        targets.append(out_dir / "scenarios.csv")
+    # all outputs appear together or not at all (temporary siblings renamed at the end)
+    with atomic_outputs(targets, overwrite) as tmps:
+        for (kind, da, _, tags), tmp in zip(jobs, tmps):
+            if kind == "monthly":
+                write_monthly(da, tmp, overwrite=True, tags=tags)
+            else:
+                write_raster(da, tmp, overwrite=True, tags=tags)
+        _write_csv(tmps[len(jobs)], MONTHLY_TABLE_COLUMNS, monthly_rows)
+        if with_bioclim:
+            _write_csv(tmps[len(jobs) + 1], SCENARIO_COLUMNS, scenario_rows)
+    return {"n_scenarios": len(scenarios), "out_dir": str(out_dir),
+            "scenario_table": str(out_dir / "scenarios.csv") if with_bioclim else None}
+
+
+def _check_bioclim_baselines(arrays, paths):
+    """The baselines are the user's observations: check them as `envelope bioclim` does."""
+
+    missing = [v for v in ("tmin", "tmax", "prec") if v not in arrays]
+    if missing:
+        raise InputError(f"--bioclim needs --baseline {missing[0]}=PATH")
+    roles = [v for v in ("tmin", "tmax", "prec", "tmean") if v in arrays]
+    check_monthly_grids({str(paths[v]): arrays[v] for v in roles})
+    check_monthly(arrays["tmin"], arrays["tmax"], arrays["prec"], arrays.get("tmean"),
+                  names={v: str(paths[v]) for v in roles})
+
+
+def _write_csv(path, columns, rows):
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(columns)
+        writer.writerows(rows)
