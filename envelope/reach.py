@@ -11,7 +11,7 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.kernels import dispersal
-from envelope.kernels.spread import SpreadOperator
+from envelope.kernels.spread import DEFAULT_PRESSURE_FLOOR, SpreadOperator
 from envelope.kernels.transient import ClimatePath, run_transient
 
 log = logging.getLogger(__name__)
@@ -37,7 +37,9 @@ class DispersalSettings:
     mean_distance_km: float = 1.0
     shape: float | None = None
     mean_distance_range_km: tuple | None = None  # (low, high): per-replicate draws, stochastic mode only
-    tail_tolerance: float = 1e-6
+    # None: truncate where the tail mass falls to the float64 pressure floor (1e-12), or at
+    # the domain, whichever comes first (:func:`kernels_for_grid`)
+    tail_tolerance: float | None = None
 
     def __post_init__(self):
         if self.kernel not in KERNELS:
@@ -61,9 +63,33 @@ class ReachResult:
     front: dict = field(default_factory=dict)  # GeoJSON FeatureCollection
 
 
-def build_operator(grid: xr.DataArray, settings: DispersalSettings, mean_km: float | None = None,
-                   geographic: bool = True) -> SpreadOperator:
-    """Discretise the kernel on ``grid`` and build its spread operator.
+#: Largest kernel quadrant (cells) discretised for a domain-sized support; beyond it the
+#: support is capped (memory and quadrature time) and the truncated tail mass says so.
+MAX_KERNEL_QUADRANT_CELLS = 50_000_000
+
+
+def kernel_tail_tolerance(settings: DispersalSettings) -> float:
+    """Tail mass at which the kernel is cut: the settings' value, or the float64 pressure floor.
+
+    A kernel cut where its tail mass equals the pressure floor changes no cell's pressure by
+    more than the floor (occupancy is at most 1 everywhere), the level below which the spread
+    step drops pressure anyway.
+    """
+    if settings.tail_tolerance is None:
+        return float(DEFAULT_PRESSURE_FLOOR[np.dtype(np.float64)])
+    return float(settings.tail_tolerance)
+
+
+def kernels_for_grid(grid: xr.DataArray, settings: DispersalSettings, mean_km: float | None = None,
+                     geographic: bool = True):
+    """Discretise the kernel on ``grid``; returns (kernel or latitude bands, truncated tail mass).
+
+    The support is the disc where the tail mass reaches :func:`kernel_tail_tolerance`, clipped
+    to the domain: at most ny - 1 rows and nx - 1 columns from the source, the farthest any
+    two cells of the grid lie apart. For the 2Dt kernel the domain is usually the bound. The
+    weights are not renormalised: the mass beyond the support (the returned tail mass, the
+    largest over latitude bands) is lost like any other mass leaving the grid; with a
+    domain-sized support it lies beyond the grid from every cell.
 
     On geographic grids the E–W size of a cell shrinks with latitude; rows are grouped into
     latitude bands within which it varies by under 5 %, one kernel per band
@@ -73,20 +99,29 @@ def build_operator(grid: xr.DataArray, settings: DispersalSettings, mean_km: flo
     mean = settings.mean_distance_km if mean_km is None else mean_km
     ny, nx = grid.sizes["y"], grid.sizes["x"]
     transform = grid.rio.transform()
-    # the kernel never needs to be larger than the grid itself
-    cap = max(ny, nx)
+    tol = kernel_tail_tolerance(settings)
+    support = (ny - 1, nx - 1)
+    # memory guard: a quadrant of ny x nx cells is the most a domain-sized kernel needs
+    cap = None if ny * nx <= MAX_KERNEL_QUADRANT_CELLS else int(math.isqrt(MAX_KERNEL_QUADRANT_CELLS)) - 1
     if geographic:
-        kernels = dispersal.latitude_band_kernels(
+        kernels, tails = dispersal.latitude_band_kernels(
             settings.kernel, mean, settings.shape, lat_centres_deg=np.asarray(grid["y"].values),
-            dlon_deg=abs(transform.a), dlat_deg=abs(transform.e), tail_tolerance=settings.tail_tolerance,
-            max_radius_cells=cap)
-    else:
-        unit = grid.rio.crs.linear_units_factor[1] if grid.rio.crs is not None else 1.0
-        kernels = dispersal.discretise_kernel(
-            settings.kernel, mean, settings.shape, cell_dx_km=abs(transform.a) * unit / 1000.0,
-            cell_dy_km=abs(transform.e) * unit / 1000.0, tail_tolerance=settings.tail_tolerance,
-            max_radius_cells=cap)
-    return SpreadOperator((ny, nx), kernels)
+            dlon_deg=abs(transform.a), dlat_deg=abs(transform.e), tail_tolerance=tol, max_radius_cells=cap,
+            normalise=False, support_cells=support, return_tail_mass=True)
+        return kernels, float(max(tails))
+    unit = grid.rio.crs.linear_units_factor[1] if grid.rio.crs is not None else 1.0
+    kernel, tail = dispersal.discretise_kernel(
+        settings.kernel, mean, settings.shape, cell_dx_km=abs(transform.a) * unit / 1000.0,
+        cell_dy_km=abs(transform.e) * unit / 1000.0, tail_tolerance=tol, max_radius_cells=cap,
+        normalise=False, support_cells=support, return_tail_mass=True)
+    return kernel, float(tail)
+
+
+def build_operator(grid: xr.DataArray, settings: DispersalSettings, mean_km: float | None = None,
+                   geographic: bool = True) -> SpreadOperator:
+    """Discretise the kernel on ``grid`` (:func:`kernels_for_grid`) and build its spread operator."""
+    kernels, _ = kernels_for_grid(grid, settings, mean_km, geographic)
+    return SpreadOperator((grid.sizes["y"], grid.sizes["x"]), kernels)
 
 
 def reach_classes(now_suitable, future_suitable, habitat, reached, valid) -> np.ndarray:
@@ -192,9 +227,12 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         lo, hi = settings.mean_distance_range_km
         draw = np.random.default_rng(np.random.SeedSequence(seed).spawn(replicates + 1)[-1])
         means = draw.uniform(lo, hi, size=replicates)
-        operators = [build_operator(now, settings, m, geographic) for m in means]
+        built = [kernels_for_grid(now, settings, m, geographic) for m in means]
+        operators = [SpreadOperator(now_arr.shape, k) for k, _ in built]
+        tail_mass = max(t for _, t in built)
     else:
-        operators = build_operator(now, settings, None, geographic)
+        kernels, tail_mass = kernels_for_grid(now, settings, None, geographic)
+        operators = SpreadOperator(now_arr.shape, kernels)
 
     climate = ClimatePath([now_year] + years, maps)
     persistence_steps = int(math.ceil(persistence_years / step_years - 1e-9)) if persistence_years > 0 else 0
@@ -223,12 +261,15 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     gained_total = gained_reached + gained_unreached + gained_no_habitat
     lats, lons = cell_lonlat(now)
     start_occ = start_arr >= 0.5
-    # The front is measured on expected occupancy (area x occupancy weights); the starting
-    # edge uses the start cells whose climate is suitable today, so records the model cannot
-    # hold (outside its climatic range) do not show up as a retreat of the front.
+    # The leading edge is measured on expected occupancy (area x occupancy weights); the
+    # starting edge and front use the start cells whose climate is suitable today, so records
+    # the model cannot hold (outside its climatic range) do not show up as a retreat.
     held = start_occ & now_suit
-    edges = edge_shift_summary(lats, areas * start_arr, held if held.any() else start_occ & valid,
-                               valid & (result.final > 1e-6), weights_after=areas * result.final)
+    held = held if held.any() else start_occ & valid
+    edges = edge_shift_summary(lats, areas * start_arr, held, valid & (result.final > 1e-6),
+                               weights_after=areas * result.final)
+    front_move = front_advance_summary(lats, np.where(held, start_arr, 0.0), result.final, valid,
+                                       north=edges["poleward"] != "south")
     duration = end_year - now_year
     summary = {
         "area_km2": {
@@ -240,9 +281,13 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         },
         "reached_share_of_gain": (gained_reached / gained_total) if gained_total > 0 else None,
         "occupied_km2": {"start": area(start_occ & valid), "horizon": float((result.final * areas)[valid].sum())},
-        "front_advance_km": edges["leading_edge_shift_km"],
-        "spread_rate_km_per_decade": (edges["leading_edge_shift_km"] / duration * 10.0
-                                      if edges["leading_edge_shift_km"] is not None else None),
+        "front_advance_km": front_move["front_advance_km"],
+        "spread_rate_km_per_decade": (front_move["front_advance_km"] / duration * 10.0
+                                      if front_move["front_advance_km"] is not None else None),
+        "front_level": front_move["front_level"],
+        "front_columns_used": front_move["front_columns_used"],
+        "front_columns_total": front_move["front_columns_total"],
+        "leading_edge_shift_km": edges["leading_edge_shift_km"],
         "poleward": edges["poleward"],
         "edge_percentile": edges["percentile"],
         "start_year": now_year,
@@ -252,6 +297,9 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         "mean_distance_km": settings.mean_distance_km,
         "mean_distance_range_km": list(settings.mean_distance_range_km) if settings.mean_distance_range_km else None,
         "shape": settings.shape,
+        "kernel_tail_tolerance": kernel_tail_tolerance(settings),
+        "kernel_tail_mass_truncated": tail_mass,
+        "pressure_floor": float(DEFAULT_PRESSURE_FLOOR[np.dtype(np.float64)]),
         "step_years": step_years,
         "rate": rate,
         "persistence_years": persistence_years,
@@ -305,6 +353,28 @@ def edge_shift_summary(lat, area, before, after, percentile: float = 95.0, weigh
     shift = meridian_arc_km(lat0, lat1)
     return {"leading_edge_shift_km": shift if north else -shift, "poleward": "north" if north else "south",
             "percentile": percentile, "edge_lat_start": lat0, "edge_lat_horizon": lat1}
+
+
+def front_advance_summary(lat, before, after, valid, *, north: bool = True, level: float = 0.5) -> dict:
+    """Poleward advance (km along the meridian) of the expansion front, the ``level`` occupancy contour.
+
+    Each cell's position is its meridian arc from the equator (WGS84), negated when poleward
+    is south. In every grid column the front is the farthest poleward crossing of ``level``,
+    interpolated between cell centres (:func:`envelope.kernels.front.column_front_positions`);
+    the advance is the median over the columns that have a front at both times of the
+    poleward shift between ``before`` and ``after``. Columns whose front lies at the grid's
+    poleward edge or against cells without data are skipped.
+    """
+    from envelope.kernels.change import meridian_distance_m
+    from envelope.kernels.front import front_shift
+
+    position = meridian_distance_m(np.asarray(lat, dtype=np.float64)) / 1000.0
+    if not north:
+        position = -position
+    moved = front_shift(np.asarray(before, dtype=np.float64), np.asarray(after, dtype=np.float64), position,
+                        level=level, valid=valid)
+    return {"front_advance_km": moved.shift_km if moved.n_columns else None, "front_level": level,
+            "front_columns_used": moved.n_columns, "front_columns_total": moved.n_columns_total}
 
 
 def cell_lonlat(grid: xr.DataArray):

@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import special
+from scipy import integrate, special
 
 from envelope.errors import InputError
 
@@ -16,6 +16,7 @@ __all__ = [
     "kernel_density",
     "kernel_survival",
     "truncation_radius_km",
+    "rectangle_tail_mass",
     "sample_distances",
     "integrate_cells",
     "discretise_kernel",
@@ -331,7 +332,7 @@ def integrate_cells(kind, mean_km, shape=None, *, x0, x1, y0, y1):
 
 
 def discretise_kernel(kind, mean_km, shape=None, *, cell_dx_km, cell_dy_km, tail_tolerance=1e-6,
-                      max_radius_cells=None, normalise=True):
+                      max_radius_cells=None, normalise=True, support_cells=None, return_tail_mass=False):
     """Discretise a dispersal kernel onto grid cells by integrating it over each cell.
 
     Parameters
@@ -354,11 +355,23 @@ def discretise_kernel(kind, mean_km, shape=None, *, cell_dx_km, cell_dy_km, tail
     normalise : bool, default=True
         Divide by the captured mass so the weights sum to 1 (the truncated tail mass is
         redistributed proportionally).
+    support_cells : (int, int), optional
+        (largest half-height, largest half-width) in cells: a per-axis cap on the support
+        that, unlike ``max_radius_cells``, leaves the disc alone (the support is the disc
+        clipped to the rectangle). ``(ny - 1, nx - 1)`` caps it at the domain: no two cells
+        of an ny x nx grid are farther apart, so a kernel clipped there is exact on that grid
+        apart from the mass it sends beyond the grid from every cell.
+    return_tail_mass : bool, default=False
+        Also return the analytic kernel mass beyond the support actually used (outside the
+        kept cells, before any renormalisation).
 
     Returns
     -------
     ndarray, shape (2*hy + 1, 2*hx + 1), float64
         Weights with the source cell at the centre; rows are the y (row) axis.
+    float
+        Only with ``return_tail_mass``: the truncated tail mass, :func:`rectangle_tail_mass`
+        of the kept rectangle plus the mass of the cells zeroed inside it.
 
     References
     ----------
@@ -387,6 +400,11 @@ def discretise_kernel(kind, mean_km, shape=None, *, cell_dx_km, cell_dy_km, tail
         if hx > cap or hy > cap:
             hx, hy = min(hx, cap), min(hy, cap)
             radius = min(radius, (hx + 0.5) * dx, (hy + 0.5) * dy)
+    if support_cells is not None:
+        cap_y, cap_x = (int(v) for v in support_cells)
+        if cap_y < 0 or cap_x < 0:
+            raise InputError(f"support_cells must be two sizes >= 0, got {support_cells!r}")
+        hx, hy = min(hx, cap_x), min(hy, cap_y)
     if (hx + 1) * (hy + 1) > 50_000_000:
         raise InputError(
             f"dispersal kernel would span {2 * hx + 1} x {2 * hy + 1} cells; "
@@ -402,12 +420,63 @@ def discretise_kernel(kind, mean_km, shape=None, *, cell_dx_km, cell_dy_km, tail
             kind, a, b, (i - 0.5) * dx, (i + 0.5) * dx, (j - 0.5) * dy, (j + 0.5) * dy)
     # Zero the cells lying wholly beyond the truncation radius (nearest point > radius).
     near = np.hypot(np.maximum(i - 0.5, 0.0) * dx, np.maximum(np.arange(hy + 1) - 0.5, 0.0)[:, None] * dy)
-    quadrant[near > radius] = 0.0
+    beyond = near > radius
+    if return_tail_mass:
+        # Each quadrant cell off an axis stands for 4 cells, on one axis for 2, the source for 1.
+        copies = (np.where(np.arange(hy + 1) == 0, 1, 2)[:, None] * np.where(i == 0, 1, 2)[None, :])
+        tail = _rectangle_tail(kind, a, b, (hx + 0.5) * dx, (hy + 0.5) * dy) + float(
+            np.sum(quadrant[beyond] * copies[beyond]))
+    quadrant[beyond] = 0.0
     top = np.concatenate([quadrant[:0:-1], quadrant], axis=0)
     weights = np.concatenate([top[:, :0:-1], top], axis=1)
     if normalise:
         weights /= weights.sum()
-    return weights
+    return (weights, tail) if return_tail_mass else weights
+
+
+def _rectangle_tail(kind, a, b, half_x, half_y):
+    # P(|X| > half_x or |Y| > half_y) = (2/pi) int_0^{pi/2} S(rho(theta)) d theta, rho the distance
+    # from the centre to the rectangle's edge in direction theta (polar form, as in
+    # _integrate_rectangles); split where rho switches from the vertical to the horizontal edge.
+    corner = math.atan2(half_y, half_x)
+    opts = {"epsabs": 0.0, "epsrel": 1e-10, "limit": 200}
+    right, _ = integrate.quad(lambda t: float(_survival(kind, half_x / math.cos(t), a, b)), 0.0, corner, **opts)
+    top, _ = integrate.quad(lambda t: float(_survival(kind, half_y / math.sin(t), a, b)), corner,
+                            0.5 * math.pi, **opts)
+    return min(1.0, max(0.0, 2.0 / math.pi * (right + top)))
+
+
+def rectangle_tail_mass(kind, mean_km, shape=None, *, half_width_km, half_height_km):
+    """Kernel mass outside the source-centred rectangle [-W, W] x [-H, H] (km).
+
+    The polar form of the mass of a region containing the source, (1/2 pi) times the contour
+    integral of the survival function P(distance > r(theta)), by adaptive quadrature
+    (``scipy.integrate.quad``, relative accuracy 1e-10) on the two pieces of the quarter turn.
+
+    Parameters
+    ----------
+    kind : {"exponential", "gaussian", "2dt"}
+    mean_km : float
+    shape : float, optional
+    half_width_km, half_height_km : float
+        W and H, > 0.
+
+    Returns
+    -------
+    float
+        P(|x| > W or |y| > H) for a displacement (x, y) drawn from the kernel.
+
+    References
+    ----------
+    Nathan et al. (2012), see :func:`kernel_scale`; for the Gaussian the value is
+    1 - erf(W/a) erf(H/a) (independent axes with SD a/sqrt 2).
+    """
+    kind, a, b = _params(kind, mean_km, shape)
+    w, h = float(half_width_km), float(half_height_km)
+    for name, v in (("half_width_km", w), ("half_height_km", h)):
+        if not (math.isfinite(v) and v > 0):
+            raise InputError(f"{name} must be > 0, got {v!r}")
+    return _rectangle_tail(kind, a, b, w, h)
 
 
 # ------------------------------------------------------------------ geographic grids
@@ -436,7 +505,8 @@ def cell_size_km(lat_deg, dlon_deg, dlat_deg):
 
 
 def latitude_band_kernels(kind, mean_km, shape=None, *, lat_centres_deg, dlon_deg, dlat_deg,
-                          band_tolerance=0.05, tail_tolerance=1e-6, max_radius_cells=None):
+                          band_tolerance=0.05, tail_tolerance=1e-6, max_radius_cells=None, normalise=True,
+                          support_cells=None, return_tail_mass=False):
     """One discretised kernel per band of grid rows on a geographic (longitude/latitude) grid.
 
     Rows are grouped, in order, into bands within which the E-W cell size varies by less
@@ -453,12 +523,16 @@ def latitude_band_kernels(kind, mean_km, shape=None, *, lat_centres_deg, dlon_de
     dlon_deg, dlat_deg : float
         Cell width and height in degrees.
     band_tolerance : float, default=0.05
-    tail_tolerance, max_radius_cells : see :func:`discretise_kernel`.
+    tail_tolerance, max_radius_cells, normalise, support_cells : see :func:`discretise_kernel`.
+    return_tail_mass : bool, default=False
+        Also return each band's truncated tail mass (see :func:`discretise_kernel`).
 
     Returns
     -------
     list of (int, int, ndarray)
         (row_start, row_stop, kernel) covering rows 0..ny contiguously.
+    list of float
+        Only with ``return_tail_mass``: the tail mass of each band's kernel, in band order.
 
     References
     ----------
@@ -483,11 +557,13 @@ def latitude_band_kernels(kind, mean_km, shape=None, *, lat_centres_deg, dlon_de
         bands.append((start, row))
         start, lo, hi = row, dx[row], dx[row]
     bands.append((start, lats.size))
-    out = []
+    out, tails = [], []
     for r0, r1 in bands:
         mid = 0.5 * (lats[r0] + lats[r1 - 1])
         bdx, bdy = cell_size_km(mid, dlon_deg, dlat_deg)
-        kernel = discretise_kernel(kind, mean_km, shape, cell_dx_km=float(bdx), cell_dy_km=float(bdy),
-                                   tail_tolerance=tail_tolerance, max_radius_cells=max_radius_cells)
+        kernel, tail = discretise_kernel(kind, mean_km, shape, cell_dx_km=float(bdx), cell_dy_km=float(bdy),
+                                         tail_tolerance=tail_tolerance, max_radius_cells=max_radius_cells,
+                                         normalise=normalise, support_cells=support_cells, return_tail_mass=True)
         out.append((r0, r1, kernel))
-    return out
+        tails.append(tail)
+    return (out, tails) if return_tail_mass else out

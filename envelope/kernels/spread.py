@@ -46,8 +46,9 @@ class SpreadOperator:
 
     The operator is built once for a grid shape and a discretised kernel; it precomputes the
     kernel's real FFT on a zero-padded shape (``scipy.fft.next_fast_len``) so each step costs
-    one forward and one inverse FFT. The padding makes the convolution linear, not
-    circular: propagules leaving the domain are lost (absorbing edge).
+    one forward and one inverse FFT. The padding (grid plus one kernel half-width per axis,
+    enough for the cropped output to be free of wrap-around) makes the convolution linear on
+    the grid, not circular: propagules leaving the domain are lost (absorbing edge).
 
     Model (per step t -> t+1; see docs/dispersal.md):
 
@@ -130,8 +131,13 @@ class SpreadOperator:
         ny, nx = self.shape
         hy, hx = k.shape[0] // 2, k.shape[1] // 2
         i0, i1 = max(0, r0 - hy), min(ny, r1 + hy)  # rows that can send propagules to the band
-        padded = (scipy.fft.next_fast_len(i1 - i0 + k.shape[0] - 1, real=True),
-                  scipy.fft.next_fast_len(nx + k.shape[1] - 1, real=True))
+        # A circular convolution of period P equals the linear one on the cropped output
+        # (full indices h .. h + n - 1) when P >= n + h: the wrapped-around part of the full
+        # result (indices n + h .. n + 2h - 1 and below h) then lands outside the crop. The
+        # kernel itself must fit: P >= 2h + 1. For a kernel as large as the domain (h = n - 1)
+        # this is 2n - 1 per axis rather than the 3n - 2 of a full linear convolution.
+        padded = (scipy.fft.next_fast_len(max(i1 - i0 + hy, k.shape[0]), real=True),
+                  scipy.fft.next_fast_len(max(nx + hx, k.shape[1]), real=True))
         kernel_hat = scipy.fft.rfft2(k.astype(self.dtype), s=padded, workers=self.workers)
         # Full linear convolution index m maps to output row i = m - hy + i0.
         crop = (slice(r0 - i0 + hy, r1 - i0 + hy), slice(hx, hx + nx))

@@ -42,7 +42,8 @@ def test_reach_writes_classes_summary_front_arrival(inputs, tmp_path):
     summary = json.loads((out / "reach.json").read_text())
     for key in ("gained_reached", "gained_unreached", "gained_no_habitat", "lost", "stable"):
         assert key in summary["area_km2"]
-    for key in ("reached_share_of_gain", "front_advance_km", "spread_rate_km_per_decade"):
+    for key in ("reached_share_of_gain", "front_advance_km", "spread_rate_km_per_decade", "front_columns_used",
+                "leading_edge_shift_km", "kernel_tail_mass_truncated"):
         assert key in summary
     # Definition: the grid's rows span 7-10° N, so three 1° bands, equator to pole
     frag = summary["fragmentation_by_latitude"]

@@ -5,7 +5,7 @@ import math
 import numpy as np
 import pytest
 from pyproj import Geod
-from scipy import integrate
+from scipy import integrate, special
 
 from envelope.errors import InputError
 from envelope.kernels.dispersal import (
@@ -17,6 +17,7 @@ from envelope.kernels.dispersal import (
     kernel_scale,
     kernel_survival,
     latitude_band_kernels,
+    rectangle_tail_mass,
     sample_distances,
     truncation_radius_km,
 )
@@ -147,6 +148,81 @@ def test_max_radius_cells_caps_the_kernel():
     assert w[0, 0] == 0.0  # corner lies beyond the capped (disc) radius
 
 
+@pytest.mark.parametrize("w,h", [(3.0, 3.0), (5.0, 2.0), (12.0, 40.0)])
+def test_rectangle_tail_mass_of_the_gaussian_is_one_minus_the_product_of_erfs(w, h):
+    # Analytic: the Gaussian kernel has independent axes with SD a/sqrt 2, so
+    # P(|x| <= W and |y| <= H) = erf(W/a) erf(H/a); written as erfc terms to keep tiny tails exact.
+    mean = 4.0
+    a = kernel_scale("gaussian", mean)
+    ew, eh = special.erfc(w / a), special.erfc(h / a)
+    ref = ew + eh - ew * eh
+    assert rectangle_tail_mass("gaussian", mean, half_width_km=w, half_height_km=h) == pytest.approx(ref, rel=1e-9)
+
+
+@pytest.mark.parametrize("kind,shape", [("exponential", None), ("2dt", 3.0), ("2dt", 1.7)])
+def test_rectangle_tail_mass_against_double_integral(kind, shape):
+    # Source: scipy.integrate.dblquad of the density over the rectangle (1 minus it; in polar
+    # coordinates, a quarter of it by symmetry, so the exponential's cusp at r = 0 is harmless),
+    # and the bounds S(diagonal) <= tail <= S(short half-side) from the discs inside and around it.
+    mean, w, h = 3.0, 4.0, 6.5
+
+    def edge(t):  # distance from the centre to the rectangle's edge in direction t
+        return min(w / math.cos(t), h / math.sin(t)) if 0 < t < math.pi / 2 else (w if t <= 0 else h)
+
+    quarter, _ = integrate.dblquad(lambda r, t: r * float(kernel_density(kind, r, mean, shape)),
+                                   0.0, math.pi / 2, 0.0, edge, epsabs=1e-12, epsrel=1e-9)
+    inside = 4.0 * quarter
+    got = rectangle_tail_mass(kind, mean, shape, half_width_km=w, half_height_km=h)
+    assert got == pytest.approx(1.0 - inside, rel=1e-6)
+    assert kernel_survival(kind, math.hypot(w, h), mean, shape) < got < kernel_survival(kind, w, mean, shape)
+
+
+@pytest.mark.parametrize("kind,shape,tol", [("exponential", None, 1e-6), ("gaussian", None, 1e-9), ("2dt", 3.0, 1e-4)])
+def test_discretised_tail_mass_is_the_mass_left_out(kind, shape, tol):
+    # Source: the cell integrals (checked against dblquad above): weights before normalisation and
+    # the reported tail mass add up to 1, and the tail is at most the tolerance (cells straddling
+    # the disc's edge are kept whole, so the kept cells cover the disc; REFERENCES item 7).
+    w, tail = discretise_kernel(kind, 5.0, shape, cell_dx_km=1.0, cell_dy_km=1.3, tail_tolerance=tol,
+                                normalise=False, return_tail_mass=True)
+    assert w.sum() + tail == pytest.approx(1.0, abs=1e-12)
+    assert 0.0 < tail <= tol
+    plain = discretise_kernel(kind, 5.0, shape, cell_dx_km=1.0, cell_dy_km=1.3, tail_tolerance=tol, normalise=False)
+    np.testing.assert_array_equal(plain, w)
+
+
+def test_support_cells_clip_the_disc_to_the_domain():
+    # Analytic: a support of (ny - 1, nx - 1) cells is a rectangle of half-sides (nx - 1/2) dx and
+    # (ny - 1/2) dy when the disc is larger; its tail mass is rectangle_tail_mass of those sides.
+    ny, nx, dx, dy = 12, 30, 1.0, 1.5
+    w, tail = discretise_kernel("2dt", 4.0, 3.0, cell_dx_km=dx, cell_dy_km=dy, tail_tolerance=1e-12,
+                                normalise=False, support_cells=(ny - 1, nx - 1), return_tail_mass=True)
+    assert w.shape == (2 * ny - 1, 2 * nx - 1)
+    assert np.all(w > 0)  # no disc cut inside the rectangle
+    ref = rectangle_tail_mass("2dt", 4.0, 3.0, half_width_km=(nx - 0.5) * dx, half_height_km=(ny - 0.5) * dy)
+    assert tail == pytest.approx(ref, rel=1e-10)
+    assert w.sum() + tail == pytest.approx(1.0, abs=1e-12)
+    # A disc smaller than the rectangle is left alone.
+    small = discretise_kernel("exponential", 2.0, cell_dx_km=dx, cell_dy_km=dy, support_cells=(ny - 1, nx - 1))
+    np.testing.assert_array_equal(small, discretise_kernel("exponential", 2.0, cell_dx_km=dx, cell_dy_km=dy))
+    with pytest.raises(InputError, match="support_cells"):
+        discretise_kernel("exponential", 2.0, cell_dx_km=dx, cell_dy_km=dy, support_cells=(-1, 3))
+
+
+def test_latitude_bands_report_each_band_tail_mass():
+    # Source: discretise_kernel with each band's cell sizes (cell_size_km at the band's middle).
+    lats = 70.0 - 0.5 * (np.arange(40) + 0.5)
+    bands, tails = latitude_band_kernels("2dt", 20.0, 3.0, lat_centres_deg=lats, dlon_deg=0.5, dlat_deg=0.5,
+                                         tail_tolerance=1e-12, normalise=False, support_cells=(39, 29),
+                                         return_tail_mass=True)
+    assert len(tails) == len(bands) > 1
+    for (r0, r1, kernel), tail in zip(bands, tails):
+        mid = 0.5 * (lats[r0] + lats[r1 - 1])
+        bdx, bdy = cell_size_km(mid, 0.5, 0.5)
+        ref = rectangle_tail_mass("2dt", 20.0, 3.0, half_width_km=29.5 * float(bdx), half_height_km=39.5 * float(bdy))
+        assert kernel.shape == (79, 59)
+        assert tail == pytest.approx(ref, rel=1e-10)
+
+
 @pytest.mark.parametrize("lat", [0.0, 30.0, 59.5, 80.0, -45.0])
 def test_cell_size_matches_pyproj_geodesics(lat):
     # Source: pyproj.Geod(ellps="WGS84"): a meridian arc is a geodesic; a short E-W hop along
@@ -192,6 +268,7 @@ def test_latitude_bands_partition_rows_and_respect_tolerance():
     (lambda: discretise_kernel("gaussian", 2.0, cell_dx_km=1, cell_dy_km=1, tail_tolerance=0.2), r"tail_tolerance"),
     (lambda: discretise_kernel("gaussian", 2.0, cell_dx_km=0, cell_dy_km=1), r"cell_dx_km must be > 0"),
     (lambda: kernel_density("gaussian", -1.0, 2.0), r"r \(distance, km\) must be >= 0"),
+    (lambda: rectangle_tail_mass("gaussian", 2.0, half_width_km=0.0, half_height_km=1.0), r"half_width_km must be > 0"),
     (lambda: latitude_band_kernels("gaussian", 2.0, lat_centres_deg=[90.0], dlon_deg=1, dlat_deg=1),
      r"lat_centres_deg"),
 ])
