@@ -90,6 +90,7 @@ def test_minimal_study_fills_defaults(folder):
     # Common practice, no source: the defaults documented in docs/study-file.md.
     assert study.model.methods == ("pointprocess",) and study.model.folds == 5
     assert study.model.threshold_rule == "max-sss"
+    assert study.model.bias is None and study.model.bias_method == "auto"
     assert study.scenario_set.agreement == pytest.approx(2 / 3)
     assert study.outputs.format == "tif" and study.outputs.reach is True
     assert study.compute.scheduler is None
@@ -144,6 +145,12 @@ def test_reach_off_makes_habitat_and_dispersal_optional(folder):
     ("[habitat]", "[model]\nthreshold_rule = 1.5\n\n[habitat]", r"model.threshold_rule: .*number in \[0, 1\], got 1.5"),
     ("[habitat]", "[model]\nthreshold_rule = 'max-ss'\n\n[habitat]",
      r"model.threshold_rule: .*got 'max-ss' \(did you mean 'max-sss'\?\)"),
+    ("[habitat]", "[model]\nbias_method = 'weighted'\n\n[habitat]",
+     r"model.bias_method: 'weighted' given without model.bias"),
+    ("[habitat]", "[model]\nbias = 'now.tif'\nbias_method = 'covariates'\n\n[habitat]",
+     r"model.bias_method: expected one of 'auto', 'covariate', 'weighted', got 'covariates' \(did you mean 'covariate'\?\)"),
+    ("[habitat]", "[model]\nmethods = ['pointprocess', 'brt']\nbias = 'now.tif'\nbias_method = 'covariate'\n\n[habitat]",
+     r"model.bias_method: 'covariate' works with the point-process model only, but methods include 'brt'"),
     ("[habitat]", "[outputs]\nformat = 'png'\n\n[habitat]", r"outputs.format: expected one of 'tif', 'nc', got 'png'"),
     ("[habitat]", "[outputs]\nmess = 1\n\n[habitat]", r"outputs.mess: expected true or false, got 1 \(int\)"),
     ('baseline = "now.tif"', 'baseline = "now.tif"\nnow_year = 2060',
@@ -255,3 +262,19 @@ def test_method_names_match_the_model_registry():
     # Common practice, no source: the study file's list (kept free of scikit-learn imports)
     # must not drift from the registry that builds the estimators.
     assert METHOD_NAMES == tuple(METHODS)
+
+
+def test_bias_methods_match_the_background_module():
+    from envelope import background, study
+
+    # Common practice, no source: the study file's lists (kept free of heavy imports) must not drift
+    # from the ones the fit uses.
+    assert study.BIAS_METHODS == background.BIAS_METHODS
+    assert study.COVARIATE_METHODS == background.COVARIATE_METHODS
+
+
+def test_bias_method_key_is_read(folder):
+    text = edited("[habitat]", "[model]\nbias = 'now.tif'\nbias_method = 'weighted'\n\n[habitat]")
+    study = load_study(write(folder, text))
+    assert study.model.bias == folder / "now.tif" and study.model.bias_method == "weighted"
+    assert study.to_dict()["model"]["bias_method"] == "weighted"
