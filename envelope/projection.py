@@ -39,14 +39,21 @@ def training_range(metadata: dict) -> dict:
 
 
 def pointprocess_table(estimator) -> AdditiveTable | None:
-    """The exact fast-path table of a fitted PointProcessModel, else None."""
+    """The exact fast-path table of a fitted PointProcessModel, else None.
+
+    A model fitted with recording effort as a covariate predicts at its common reference
+    effort: the constant ``effort_coef_ * log(effort_reference_)`` (``effort_term_``) is
+    part of the table's constant, exactly as in the model's own linear predictor.
+    """
     from envelope.models import PointProcessModel
 
     if type(estimator) is not PointProcessModel:
         return None
     ex = estimator.expander_
+    # getattr: model files written before the effort term existed have none
+    effort_term = getattr(estimator, "effort_term_", 0.0)
     return compile_pointprocess(ex.mean_, ex.scale_, ex.knots_, ex.classes_used_, estimator.coef_,
-                                estimator.intercept_ + estimator.offset_)
+                                estimator.intercept_ + effort_term + estimator.offset_)
 
 
 def _as_cells(block: np.ndarray) -> tuple[np.ndarray, tuple]:

@@ -299,3 +299,27 @@ def test_novel_share_tag_equals_area_sum_of_written_mess(files):
     assert 0 < expected < 1
     assert read_tags(tmp / "s.tif")["novel_share"] == pytest.approx(expected, rel=1e-12)
     assert res["novel_share"] == pytest.approx(expected, rel=1e-12)
+
+
+def test_effort_covariate_model_projects_at_its_reference_effort(tmp_path):
+    # Source: the estimator's own predict_proba (which predicts at effort_reference_), on the exact table
+    # path in memory and from a saved model file; the table's constant carries effort_coef_ * log(reference).
+    from envelope.projection import pointprocess_table
+
+    X, y = _training(seed=4)
+    rng = np.random.default_rng(5)
+    effort = np.exp(0.5 * X[:, 0] + rng.normal(size=y.size))
+    model = PointProcessModel(classes=("linear", "quadratic", "hinge"), n_knots=5, C=20.0).fit(X, y, effort=effort)
+    assert model.effort_term_ != 0.0 and model.effort_reference_ == pytest.approx(effort.max())
+    plain_constant = model.intercept_ + model.offset_
+    assert pointprocess_table(model).constant == pytest.approx(plain_constant + model.effort_term_)
+    grid = _grid(np.random.default_rng(6).normal(0, 1.2, (3, 8, 10)))
+    bounds = dict(zip(NAMES, zip(X.min(0), X.max(0))))
+    rows = _clamped_rows(grid, X)
+    want = model.predict_proba(rows)[:, 1]
+    got = project_suitability(model, grid, NAMES, bounds).values.ravel()
+    np.testing.assert_allclose(got, want, atol=1e-6)  # float32 output
+    save_model(tmp_path / "effort.envm", model, _metadata(X))
+    write_raster(grid, tmp_path / "clim.tif")
+    project_file(tmp_path / "effort.envm", tmp_path / "clim.tif", tmp_path / "s.tif")
+    np.testing.assert_allclose(open_layer(tmp_path / "s.tif").values.ravel(), want, atol=1e-6)

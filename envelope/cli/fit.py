@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from envelope.models import METHOD_NAMES
+from envelope.models import BIAS_METHODS, METHOD_NAMES
 
 from envelope.cli.options import (climate_opt, overwrite_opt, positive_float, record_years_opt, record_years_value,
                                   seed_opt, variables_opt)
@@ -35,9 +35,14 @@ def _rule(ctx, param, value):
 @click.option("--method", type=click.Choice(METHOD_NAMES),
               default="pointprocess", show_default=True, help="Model family.")
 @click.option("--background", "background", type=click.IntRange(min=100), default=10_000, show_default=True,
-              help="Number of random background cells.")
+              help="Background points, drawn in proportion to true cell area (repeats count as weights).")
 @click.option("--bias", type=click.Path(exists=True, dir_okay=False), default=None,
-              help="Sampling-effort raster: background drawn in proportion to it (same grid as the climate).")
+              help="Recording-effort raster on the climate grid, used as --bias-method says.")
+@click.option("--bias-method", type=click.Choice(BIAS_METHODS), default="auto",
+              show_default=True,
+              help="With --bias: 'covariate' = log effort as a model term held at the highest effort for "
+                   "prediction (pointprocess only); 'weighted' = background drawn in proportion to area x "
+                   "effort; 'auto' = covariate for pointprocess, weighted for the other methods.")
 @variables_opt
 @click.option("--blocks-km", type=float, callback=positive_float, default=None,
               help="Side of the square CV blocks in km (default: derived from the predictors' spatial autocorrelation).")
@@ -52,15 +57,16 @@ def _rule(ctx, param, value):
               help="Spatially thin records to this minimum distance.")
 @seed_opt
 @overwrite_opt
-def fit(presences, climate, out, summary, method, background, bias, variables, blocks_km, folds, cv,
+def fit(presences, climate, out, summary, method, background, bias, bias_method, variables, blocks_km, folds, cv,
         threshold_rule, max_uncertainty_m, record_years, thin_km, seed, overwrite):
     """Fit and cross-validate a presence/background model, and save it.
 
     Cleans the records against the baseline climate (every dropped record is counted by
-    reason), draws background cells, evaluates the model with spatial block
-    cross-validation (AUC, TSS, kappa, Boyce index, 10th-percentile omission), fits the
-    final model on all data, chooses the threshold, and writes the model file, a fit
-    summary JSON and a per-fold CSV.
+    reason), draws background points in proportion to true cell area (a quadrature of the
+    study area; with --bias, recording effort is corrected for as --bias-method says),
+    evaluates the model with spatial block cross-validation (AUC, TSS, kappa, Boyce index,
+    10th-percentile omission), fits the final model on all data, chooses the threshold,
+    and writes the model file, a fit summary JSON and a per-fold CSV.
 
     \b
     Examples:
@@ -69,6 +75,8 @@ def fit(presences, climate, out, summary, method, background, bias, variables, b
             --method brt --blocks-km 50 --folds 5 --out brt.envm --summary brt.json
       $ envelope fit --presences records.csv --climate baseline.nc --variables bio1,bio5,bio12 \\
             --bias effort.tif --threshold-rule p10 --seed 7 --out model.envm
+      $ envelope fit --presences records.csv --climate baseline.tif --bias effort.tif \\
+            --bias-method weighted --out weighted.envm
     """
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -82,7 +90,7 @@ def fit(presences, climate, out, summary, method, background, bias, variables, b
     options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
                          folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed,
                          max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
-                         thin_km=thin_km)
+                         thin_km=thin_km, bias_method=bias_method)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True) as bar:
         tasks = {}
@@ -124,6 +132,13 @@ def print_fit_summary(summary: dict, paths: dict) -> None:
     thr = summary["threshold"]
     console.print(f"threshold {thr['value']:.4f} ({thr['rule']}); {summary['n_presences']} presences, "
                   f"{summary['n_background']} background")
+    bg = summary.get("background") or {}
+    if bg:
+        line = f"background: {bg['draw']}; {bg['n_cells']} distinct cells; bias correction {bg['bias_correction']}"
+        effort = bg.get("effort")
+        if effort and effort.get("coef") is not None:
+            line += f" (log-effort slope {effort['coef']:.3f}, predicted at effort {effort['reference']:g})"
+        console.print(line)
     for note in summary.get("notes", []):
         console.print(f"[yellow]note:[/] {note}")
     console.print(f"model: {paths['model']}\nsummary: {paths['summary']}\nfolds: {paths['folds']}")

@@ -7,7 +7,7 @@ import importlib
 from envelope.errors import InputError
 
 __all__ = [
-    "METHODS", "METHOD_NAMES", "BoostedTrees", "DownsampledForest", "PercentileEnvelope", "PointProcessModel",
+    "BIAS_METHODS", "COVARIATE_METHODS", "METHODS", "METHOD_NAMES", "BoostedTrees", "DownsampledForest", "PercentileEnvelope", "PointProcessModel",
     "SkillWeightedEnsemble", "make_estimator", "response_curves",
 ]
 
@@ -23,6 +23,10 @@ _REGISTRY = {
 }
 #: The one list of method names: CLI choices, the study validator and the messages read it.
 METHOD_NAMES = tuple(_REGISTRY)
+#: How a bias (recording-effort) layer is used in a fit; "auto" picks per model family.
+BIAS_METHODS = ("auto", "covariate", "weighted")
+#: Model families whose linear predictor can hold log effort as a covariate.
+COVARIATE_METHODS = ("pointprocess",)
 _CLASSES = {cls: module for module, cls in _REGISTRY.values()}
 
 

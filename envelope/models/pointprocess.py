@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import logsumexp
+from scipy.special import expit, logsumexp
 from sklearn.base import BaseEstimator
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import roc_auc_score
@@ -19,6 +19,11 @@ from envelope.models.base import PresenceBackgroundClassifier
 BACKGROUND_WEIGHT_FACTOR = 100.0
 DEFAULT_CS = np.logspace(0, 3, 7)  # 1 ... 1000, on the per-presence scale of C
 _LOG_LN2 = np.log(np.log(2.0))     # eta at which 1 - exp(-exp(eta)) = 0.5
+# The log-effort column is standardised and multiplied by this before the penalised solve,
+# so its penalty is 100 times weaker than a climate feature's (the device liblinear's
+# intercept_scaling uses for the intercept); the intercept and the effort slope are then
+# solved again without any penalty for the fitted climate slopes.
+EFFORT_SCALING = 100.0
 
 
 class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
@@ -49,6 +54,17 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     weights, which keeps values comparable across fits. For the unpenalised IPP,
     ``exp(eta) = lambda(x) / n_p`` exactly (the IPP score equation makes the
     background-mean intensity equal ``n_p``).
+
+    **Recording effort as a covariate** (model-based bias correction; Warton, Renner &
+    Ramp 2013; Fithian et al. 2015). With ``fit(..., effort=e)`` the intensity of the
+    *records* is modelled as ``exp(intercept + f(x) . beta + gamma * log(e))``: log effort
+    enters the linear predictor as one linear, unpenalised term (never expanded into
+    quadratic, hinge or product features). For prediction effort is fixed at one common
+    value, ``effort_reference_`` (``effort_reference="max"``: the highest effort among the
+    training rows, i.e. the pattern expected if every cell were recorded as intensively as
+    the best-recorded one), so maps show the species' response to climate without the
+    observers' pattern. The cloglog suitability does not depend on that choice (the
+    offset below rescales to the background mean); ``log_intensity`` does.
 
     ``predict`` returns 1 where suitability >= 0.5 (relative intensity >= ln 2); maps should
     use a threshold rule instead. ``decision_function`` is ``eta - log(ln 2)``, positive
@@ -90,6 +106,10 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     tol : float, default=1e-4
     random_state : int or None, default=None
         Seed of the random folds (``C="cv"`` without groups) and of saga/liblinear.
+    effort_reference : "max" or float, default="max"
+        Recording effort at which predictions are made when the model was fitted with
+        ``effort``: ``"max"`` = the largest effort among the training rows, or a positive
+        number on the effort layer's own scale.
 
     Attributes
     ----------
@@ -110,6 +130,14 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         ``{"C": [...], "mean_auc": [...], "fold_auc": [[...], ...]}`` for ``C="cv"``.
     feature_names_out_ : ndarray of str
     classes_ : ndarray, ``[0, 1]``
+    effort_coef_ : float or None
+        Slope of log recording effort (None when fitted without ``effort``); 1 means records
+        proportional to effort.
+    effort_reference_ : float or None
+        The effort prediction is made at (see ``effort_reference``).
+    effort_term_ : float
+        ``effort_coef_ * log(effort_reference_)`` (0 without effort), part of the linear
+        predictor of every prediction.
 
     References
     ----------
@@ -119,6 +147,11 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     models for species distribution modeling in ecology. Biometrics 69: 274–281.
     Phillips, S.J., Anderson, R.P., Dudík, M., Schapire, R.E. & Blair, M.E. (2017) Opening
     the black box: an open-source release of Maxent. Ecography 40: 887–893.
+    Warton, D.I., Renner, I.W. & Ramp, D. (2013) Model-based control of observer bias for
+    the analysis of presence-only data in ecology. PLoS ONE 8: e79168.
+    Fithian, W., Elith, J., Hastie, T. & Keith, D.A. (2015) Bias correction in species
+    distribution models: pooling survey and collection data for multiple species. Methods
+    in Ecology and Evolution 6: 424–438.
 
     Examples
     --------
@@ -133,7 +166,7 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
 
     def __init__(self, *, classes="auto", n_knots=10, standardize=True, penalty="l1",
                  l1_ratio=0.5, C=10.0, Cs=None, n_folds=5, background_weight="auto",
-                 solver="auto", max_iter=1000, tol=1e-4, random_state=None):
+                 solver="auto", max_iter=1000, tol=1e-4, random_state=None, effort_reference="max"):
         self.classes = classes
         self.n_knots = n_knots
         self.standardize = standardize
@@ -147,6 +180,7 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         self.max_iter = max_iter
         self.tol = tol
         self.random_state = random_state
+        self.effort_reference = effort_reference
 
     # -- fitting ---------------------------------------------------------------------
 
@@ -165,6 +199,9 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         bw = self.background_weight
         if not (bw == "auto" or (not isinstance(bw, str) and float(bw) > 0)):
             raise InputError(f"background_weight: got {bw!r}; expected 'auto' or a positive number")
+        ref = self.effort_reference
+        if not (ref == "max" or (not isinstance(ref, (str, bool)) and np.isfinite(float(ref)) and float(ref) > 0)):
+            raise InputError(f"effort_reference: got {ref!r}; expected 'max' or a positive number")
 
     def _weights(self, y, w):
         n_presence = w[y == 1].sum()
@@ -203,15 +240,35 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
             coef, intercept = _newton_polish(F, y, weights, coef, intercept)
         return coef, intercept, int(np.max(model.n_iter_))
 
-    def _fit_once(self, X, y, w, C):
+    def _fit_once(self, X, y, w, C, log_effort=None):
+        """One fit; ``log_effort`` (or None) enters as an unpenalised linear term.
+
+        Returns (expander, F, weights, bw, coef, intercept, n_iter, effort_coef); the
+        intercept is on the raw log-effort scale (``lp = intercept + F @ coef + effort_coef
+        * log_effort``), effort_coef is None without effort.
+        """
         expander = FeatureExpander(classes=self.classes, n_knots=self.n_knots,
                                    standardize=self.standardize).fit(X, y, sample_weight=w)
         F = expander.transform(X)
         weights, bw, n_presence = self._weights(y, w)
-        coef, intercept, n_iter = self._solve(F, y, weights, n_presence, C)
-        return expander, F, weights, bw, coef, intercept, n_iter
+        if log_effort is None:
+            coef, intercept, n_iter = self._solve(F, y, weights, n_presence, C)
+            return expander, F, weights, bw, coef, intercept, n_iter, None
+        centre = float(np.average(log_effort, weights=w))
+        spread = float(np.sqrt(np.average((log_effort - centre) ** 2, weights=w)))
+        if not spread > 0:
+            # constant effort cannot be told from the intercept: no effort term
+            coef, intercept, n_iter = self._solve(F, y, weights, n_presence, C)
+            return expander, F, weights, bw, coef, intercept, n_iter, 0.0
+        column = (log_effort - centre) * (EFFORT_SCALING / spread)
+        coef_all, intercept, n_iter = self._solve(np.column_stack([F, column]), y, weights, n_presence, C)
+        coef = coef_all[:-1]
+        effort_coef = float(coef_all[-1] * EFFORT_SCALING / spread)
+        intercept, effort_coef = _free_terms_given_slopes(F @ coef, log_effort, y, weights,
+                                                          intercept - effort_coef * centre, effort_coef)
+        return expander, F, weights, bw, coef, intercept, n_iter, effort_coef
 
-    def fit(self, X, y, sample_weight=None, groups=None):
+    def fit(self, X, y, sample_weight=None, groups=None, effort=None):
         """Fit to presences (y = 1) and background points (y = 0).
 
         Parameters
@@ -224,6 +281,10 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
             Multiplies the presence/background weights (e.g. bias correction).
         groups : array-like of shape (n_samples,), optional
             Fold ids (spatial blocks) for ``C="cv"``.
+        effort : array-like of shape (n_samples,), optional
+            Recording effort (> 0) at every presence and background point. Its log enters
+            the linear predictor as one unpenalised linear term, and predictions are made
+            at ``effort_reference`` (model-based bias correction, see the class notes).
 
         Returns
         -------
@@ -231,23 +292,31 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         """
         self._check_params()
         X, y, w = self._validate_fit_input(X, y, sample_weight)
+        log_effort = _log_effort(effort, y.shape[0])
         if self.C == "cv":
-            self.C_, self.cv_results_ = self._choose_C(X, y, w, groups)
+            self.C_, self.cv_results_ = self._choose_C(X, y, w, groups, log_effort)
         else:
             self.C_, self.cv_results_ = float(self.C), None
         (self.expander_, F, weights, bw, self.coef_, self.intercept_,
-         self.n_iter_) = self._fit_once(X, y, w, self.C_)
+         self.n_iter_, self.effort_coef_) = self._fit_once(X, y, w, self.C_, log_effort)
+        self.effort_reference_ = None
+        self.effort_term_ = 0.0
+        if log_effort is not None:
+            used = w > 0
+            self.effort_reference_ = (float(np.exp(log_effort[used].max())) if self.effort_reference == "max"
+                                      else float(self.effort_reference))
+            self.effort_term_ = float(self.effort_coef_ * np.log(self.effort_reference_))
         self.background_weight_ = bw
         self.total_background_weight_ = float(weights[y == 0].sum())
         self.feature_names_out_ = self.expander_.get_feature_names_out(
             getattr(self, "feature_names_in_", None))
-        lp_background = self.intercept_ + F[y == 0] @ self.coef_
+        lp_background = self.intercept_ + self.effort_term_ + F[y == 0] @ self.coef_
         wb = weights[y == 0]
         # offset_ = -log(weighted mean of exp(lp) over background), in log space for safety
         self.offset_ = float(-(logsumexp(lp_background, b=wb) - np.log(wb.sum())))
         return self
 
-    def _choose_C(self, X, y, w, groups):
+    def _choose_C(self, X, y, w, groups, log_effort=None):
         Cs = DEFAULT_CS if self.Cs is None else np.asarray(self.Cs, dtype=float)
         if Cs.ndim != 1 or Cs.size == 0 or not (Cs > 0).all():
             raise InputError(f"Cs: got {self.Cs!r}; expected a list of positive numbers")
@@ -271,8 +340,12 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
                 continue  # AUC needs both kinds of row in the held-out fold
             row = []
             for C in Cs:
-                expander, _, _, _, coef, intercept, _ = self._fit_once(X[train], y[train], w[train], C)
+                # held-out rows are scored by the model of the records, effort term included
+                expander, _, _, _, coef, intercept, _, effort_coef = self._fit_once(
+                    X[train], y[train], w[train], C, None if log_effort is None else log_effort[train])
                 lp = intercept + expander.transform(X[test]) @ coef
+                if effort_coef:
+                    lp = lp + effort_coef * log_effort[test]
                 row.append(roc_auc_score(y[test], lp))
             fold_auc.append(row)
         if not fold_auc:
@@ -286,13 +359,24 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
 
     # -- prediction ------------------------------------------------------------------
 
-    def linear_predictor(self, X):
-        """``intercept_ + features(X) @ coef_``, shape (n_samples,)."""
+    def linear_predictor(self, X, effort=None):
+        """``intercept_ + effort_term_ + features(X) @ coef_``, shape (n_samples,).
+
+        ``effort`` (n_samples,), for a model fitted with effort: use
+        ``effort_coef_ * log(effort)`` instead of ``effort_term_`` (the model of the records
+        as observed, rather than at the common reference effort).
+        """
         X = self._validate_input(X)
-        return self._linear_predictor(X)
+        lp = self._linear_predictor(X)
+        if effort is not None:
+            if getattr(self, "effort_coef_", None) is None:
+                raise InputError("effort: given, but the model was fitted without effort")
+            lp = lp - self.effort_term_ + self.effort_coef_ * _log_effort(effort, X.shape[0])
+        return lp
 
     def _linear_predictor(self, X):
-        return self.intercept_ + self.expander_.transform(X) @ self.coef_
+        # getattr: model files written before the effort term existed have none
+        return self.intercept_ + getattr(self, "effort_term_", 0.0) + self.expander_.transform(X) @ self.coef_
 
     def log_intensity(self, X):
         """IPP log-intensity per unit of background region: linear predictor + log(total background weight).
@@ -313,6 +397,47 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         """``eta - log(ln 2)``: positive exactly where suitability > 0.5."""
         X = self._validate_input(X)
         return self._eta(X) - _LOG_LN2
+
+
+def _log_effort(effort, n):
+    """log of ``effort`` (n,), or None; InputError unless every value is finite and > 0."""
+    if effort is None:
+        return None
+    e = np.asarray(effort, dtype=np.float64).ravel()
+    if e.shape[0] != n:
+        raise InputError(f"effort: got {e.shape[0]} values; expected {n} (one per row)")
+    bad = ~(np.isfinite(e) & (e > 0))
+    if bad.any():
+        raise InputError(f"effort: {int(bad.sum())} values are not positive finite numbers; expected "
+                         "recording effort > 0 at every presence and background point")
+    return np.log(e)
+
+
+def _free_terms_given_slopes(lp0, u, y, weights, intercept, slope, n_iter=50):
+    """Unpenalised intercept and slope of ``u`` for fixed other slopes (Newton on two parameters).
+
+    Maximises the weighted logistic log-likelihood of ``intercept + slope * u + lp0``; the
+    objective is convex. The start is kept if Newton fails to improve on it.
+    """
+    A = np.column_stack([np.ones(u.shape[0]), u])
+    start = theta = np.array([intercept, slope], dtype=np.float64)
+    for _ in range(n_iter):
+        p = expit(lp0 + A @ theta)
+        grad = A.T @ (weights * (p - y))
+        hess = (A * (weights * p * (1.0 - p))[:, None]).T @ A
+        try:
+            step = np.linalg.solve(hess, grad)
+        except np.linalg.LinAlgError:
+            break
+        if not np.all(np.isfinite(step)):
+            break
+        theta = theta - step
+        if np.max(np.abs(step)) < 1e-12:
+            break
+    if not np.all(np.isfinite(theta)) or (_weighted_nll(lp0 + A @ theta, y, weights)
+                                          > _weighted_nll(lp0 + A @ start, y, weights)):
+        theta = start
+    return float(theta[0]), float(theta[1])
 
 
 def _intercept_given_slopes(lp0, y, weights, start, n_iter=50):

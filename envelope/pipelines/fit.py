@@ -78,6 +78,7 @@ class FitOptions:
     crs: str | None = None
     background_buffer_km: float | None = None
     permutation_repeats: int = 3
+    bias_method: str = "auto"           # with a bias layer: "covariate", "weighted" or "auto" (see background.py)
 
 
 def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, mask=None,
@@ -92,7 +93,8 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         Baseline climate stack (opened with :func:`envelope.io.rasters.open_climate`).
     options : FitOptions
     bias, mask : DataArray (y, x), optional
-        Sampling-effort raster for the background draw; area the background may come from.
+        Recording-effort raster, used as ``options.bias_method`` says
+        (:func:`envelope.background.resolve_bias_method`); area the background may come from.
     climate_paths : sequence of path-like
         The files behind ``climate``, for provenance checksums.
     bias_path : path-like, optional
@@ -108,7 +110,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     Fithian & Hastie (2013); Roberts et al. (2017); Liu et al. (2005, 2013); see docs/methods.md.
     """
     import envelope.evaluation as evaluation
-    from envelope.background import sample_background
+    from envelope.background import draw_background, drop_unrecorded, resolve_bias_method
     from envelope.io.records import read_occurrences
     from envelope.kernels.mess import reference_from_training
     from envelope.kernels.thresholds import choose_threshold
@@ -128,6 +130,12 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     table = read_occurrences(records_path, x_column=opt.x_column, y_column=opt.y_column, crs=opt.crs)
     records = clean_occurrences(table, climate, crs=opt.crs, max_uncertainty_m=opt.max_uncertainty_m,
                                 record_years=opt.record_years, thin_km=opt.thin_km)
+    bias_method = resolve_bias_method(opt.bias_method, opt.method, bias is not None)
+    if bias_method == "covariate":
+        records, unrecorded = drop_unrecorded(records, bias, climate)
+        if unrecorded:
+            notes.append(f"{unrecorded} records lie in cells without recording effort (bias 0 or NaN) "
+                         "and were left out of the covariate bias correction")
     n_pres = len(records.table)
     if n_pres < MIN_RECORDS:
         raise InputError(f"{records_path}: only {n_pres} usable records after cleaning "
@@ -140,16 +148,22 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     report("records", 1, 1)
 
     X_pres = values_at(climate, records.table["row"].to_numpy(), records.table["col"].to_numpy())
-    background = sample_background(climate, opt.background, seed=opt.seed, bias=bias, mask=mask,
-                                   buffer_km=opt.background_buffer_km, records=records, with_values=False)
+    drawn = draw_background(climate, opt.background, seed=opt.seed, bias=bias, bias_method=bias_method, mask=mask,
+                            buffer_km=opt.background_buffer_km, records=records)
+    background = drawn.table
     X_bg = values_at(climate, background["row"].to_numpy(), background["col"].to_numpy())
-    if len(background) < opt.background:
-        notes.append(f"only {len(background)} background cells available (asked for {opt.background})")
+    if drawn.info["n_draws"] is None:
+        notes.append(f"only {len(background)} background cells available (asked for {opt.background}); "
+                     f"every one is used once, weighted by {drawn.info['probability']}")
     check_variables(np.vstack([X_pres, X_bg]), names)
     report("background", 1, 1)
 
     X = np.vstack([X_pres, X_bg])
     y = np.r_[np.ones(len(X_pres), dtype=int), np.zeros(len(X_bg), dtype=int)]
+    # quadrature weights of the background (draw counts); effort as a covariate when chosen
+    sample_weight = np.r_[np.ones(len(X_pres)), background["weight"].to_numpy()]
+    effort = None if drawn.effort is None else np.r_[drawn.effort_at(records.table["row"], records.table["col"]),
+                                                    drawn.effort]
     px = np.r_[records.table["x"].to_numpy(), background["x"].to_numpy()]
     py = np.r_[records.table["y"].to_numpy(), background["y"].to_numpy()]
     crs = climate.rio.crs
@@ -174,13 +188,13 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     def make():
         return build_estimator(opt.method, opt.seed)
 
+    fit_params = {**_group_params(opt.method, folds), **({} if effort is None else {"effort": effort})}
     per_fold, cv = evaluation.cross_validate(
-        make, X, y, folds, threshold_rule=opt.threshold_rule,
-        fit_params=_group_params(opt.method, folds),
-        progress=lambda k: report("cross-validation", k + 1, opt.folds))
+        make, X, y, folds, sample_weight=sample_weight, threshold_rule=opt.threshold_rule,
+        fit_params=fit_params, progress=lambda k: report("cross-validation", k + 1, opt.folds))
 
     estimator = make()
-    estimator.fit(X, y, **_group_params(opt.method, folds))
+    estimator.fit(X, y, sample_weight=sample_weight, **fit_params)
     report("final fit", 1, 1)
     scores = estimator.predict_proba(X)[:, 1]
     threshold, rule = choose_threshold(opt.threshold_rule, scores[y == 1], scores[y == 0])
@@ -208,8 +222,12 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         inputs[str(bias_path)] = file_sha256(bias_path)
     cv_block = {"scheme": opt.cv, "n_folds": opt.folds, "block_km": block_km,
                 "block_size_rule": block_info, **json_ready(cv)}
+    background_info, background_notes = drawn.describe(estimator, X_bg, names, collinear_r=COLLINEAR_R)
+    notes.extend(background_notes)
     transform = climate.rio.transform()
     metadata = {
+        "bias_correction": drawn.bias_correction,
+        "background": background_info,
         "variables": variables_meta,
         "threshold": {"value": float(threshold), "rule": rule},
         "cv": cv_block,
@@ -223,6 +241,8 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     summary = {
         "n_presences": int(n_pres),
         "n_background": int(len(X_bg)),
+        "bias_correction": drawn.bias_correction,
+        "background": background_info,
         "method": opt.method,
         "variables": names,
         "threshold": {"value": float(threshold), "rule": rule},
@@ -311,6 +331,7 @@ def fit_options_from_study(study, method: str) -> FitOptions:
     return FitOptions(method=method, background=m.background,
                       variables=list(study.climate.variables) if study.climate.variables else None,
                       blocks_km=m.blocks_km, folds=m.folds, cv=m.cv, threshold_rule=m.threshold_rule, seed=m.seed,
+                      bias_method=m.bias_method,
                       max_uncertainty_m=r.max_uncertainty_m, record_years=r.years, thin_km=r.thin_km or None,
                       x_column=r.x_column, y_column=r.y_column, crs=r.crs)
 

@@ -11,7 +11,7 @@ from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
 from envelope.errors import InputError
-from envelope.models import METHOD_NAMES
+from envelope.models import BIAS_METHODS, COVARIATE_METHODS, METHOD_NAMES
 from envelope.kernels.dispersal import KERNEL_KINDS
 from envelope.kernels.thresholds import THRESHOLD_RULES
 from envelope.ensemble import DEFAULT_AGREEMENT
@@ -73,6 +73,7 @@ class ModelSection:
     methods: tuple[str, ...] = ("pointprocess",)
     background: int = 10_000
     bias: Path | None = None
+    bias_method: str = "auto"
     blocks_km: float | None = None
     folds: int = 5
     cv: str = "block"
@@ -322,7 +323,7 @@ _TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispers
 _STUDY = ("name", "question", "species")
 _RECORDS = ("path", "x_column", "y_column", "crs", "max_uncertainty_m", "years", "thin_km")
 _CLIMATE = ("baseline", "variables", "now_year")
-_MODEL = ("methods", "background", "bias", "blocks_km", "folds", "cv", "threshold_rule", "seed")
+_MODEL = ("methods", "background", "bias", "bias_method", "blocks_km", "folds", "cv", "threshold_rule", "seed")
 _SCENARIOS = ("table", "grid", "agreement")
 _HABITAT = ("path", "classes", "align")
 _DISPERSAL = ("kernel", "mean_distance_km", "shape", "step_years", "rate", "persistence_years",
@@ -396,6 +397,16 @@ def _model(c: _Checker, doc) -> ModelSection:
     methods = c.string_list("model.methods", t.get("methods", ["pointprocess"]), choices=METHOD_NAMES)
     bias = t.get("bias")
     bias = None if bias is None else c.file("model.bias", bias, what="a bias (effort) layer")
+    bias_method = c.string("model.bias_method", t.get("bias_method", "auto"), choices=BIAS_METHODS)
+    if bias_method != "auto" and bias is None:
+        c.fail("model.bias_method", f"{bias_method!r} given without model.bias; expected a bias (effort) layer "
+                                    "to correct for, or no bias_method")
+    if bias_method == "covariate":
+        others = [m for m in methods if m not in COVARIATE_METHODS]
+        if others:
+            c.fail("model.bias_method", f"'covariate' works with the point-process model only, but methods include "
+                                        f"{others[0]!r}; expected 'auto' (covariate for pointprocess, weighted "
+                                        "for the others) or 'weighted'")
     blocks = t.get("blocks_km")
     blocks = None if blocks is None else float(c.number("model.blocks_km", blocks, gt=0))
     rule = t.get("threshold_rule", "max-sss")
@@ -410,6 +421,7 @@ def _model(c: _Checker, doc) -> ModelSection:
         methods=methods,
         background=c.number("model.background", t.get("background", 10_000), integer=True, ge=100),
         bias=bias,
+        bias_method=bias_method,
         blocks_km=blocks,
         folds=c.number("model.folds", t.get("folds", 5), integer=True, ge=2, le=20),
         cv=c.string("model.cv", t.get("cv", "block"), choices=CV_SCHEMES),

@@ -21,7 +21,13 @@ def test_fit_writes_model_summary_and_folds(tmp_path):
     summary = json.loads((tmp_path / "fit.json").read_text())
     for key in ("n_presences", "n_background", "method", "variables", "threshold", "cv"):
         assert key in summary
-    assert summary["method"] == "envelope" and summary["n_background"] == 1000
+    assert summary["method"] == "envelope"
+    # Common practice, no source: 1000 draws with replacement per unit area; repeats are weights
+    bg = summary["background"]
+    assert summary["bias_correction"] == bg["bias_correction"] == "none" and bg["per_area"] is True
+    assert bg["n_draws"] == 1000 and bg["weight_sum"] == 1000
+    assert summary["n_background"] == bg["n_cells"] <= 1000
+    assert "background: 1000 draws with replacement" in " ".join(result.output.split())
     assert "duplicate cell" in result.output  # the record-cleaning table
 
     again = CliRunner().invoke(cli, BASE + ["--out", str(out)])
@@ -52,6 +58,46 @@ def test_presences_without_usable_rows(tmp_path):
     assert result.exit_code == 2
     assert "bad.csv" in result.output
     assert not (tmp_path / "m.envm").exists()
+
+
+@pytest.mark.parametrize("extra, phrase", [
+    (["--bias-method", "weighted"], "needs a bias"),
+    (["--bias", str(DEMO / "effort.tif"), "--bias-method", "covariate"], "point-process model only"),
+    (["--bias-method", "both"], "'both' is not one of"),
+])
+def test_bad_bias_method_exit_2(tmp_path, extra, phrase):
+    # Common practice, no source: one-line errors naming the problem, nothing written
+    result = CliRunner().invoke(cli, BASE + ["--out", str(tmp_path / "m.envm")] + extra)
+    assert result.exit_code == 2
+    assert phrase in result.output
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_bias_method_default_is_covariate_for_pointprocess(tmp_path):
+    # Common practice, no source: --bias with the point-process model takes log effort as a covariate by
+    # default, and the model file and summary say so (Warton, Renner & Ramp 2013 model-based correction).
+    from envelope.io.modelfile import load_model
+
+    out = tmp_path / "m.envm"
+    args = ["fit", "--presences", str(DEMO / "presences.csv"), "--climate", str(DEMO / "baseline.tif"),
+            "--variables", "bio5,bio6,bio12", "--background", "1000", "--folds", "3", "--blocks-km", "60",
+            "--bias", str(DEMO / "effort.tif"), "--out", str(out)]
+    result = CliRunner().invoke(cli, args)
+    assert result.exit_code == 0, result.output
+    summary = json.loads(out.with_name("m.fit.json").read_text())
+    assert summary["bias_correction"] == "covariate"
+    effort = summary["background"]["effort"]
+    assert effort["coef"] > 0 and effort["reference_rule"] == "max"
+    estimator, metadata = load_model(out)
+    assert metadata["bias_correction"] == "covariate"
+    assert estimator.effort_coef_ == pytest.approx(effort["coef"]) and estimator.effort_term_ != 0.0
+    assert "bias correction covariate (log-effort slope" in " ".join(result.output.split())
+
+    weighted = CliRunner().invoke(cli, args[:-1] + [str(tmp_path / "w.envm"), "--bias-method", "weighted"])
+    assert weighted.exit_code == 0, weighted.output
+    summary = json.loads((tmp_path / "w.fit.json").read_text())
+    assert summary["bias_correction"] == "weighted-background" and "effort" not in summary["background"]
+    assert "area x bias" in summary["background"]["probability"].replace("true cell ", "")
 
 
 def test_bias_file_recorded_in_provenance(tmp_path):

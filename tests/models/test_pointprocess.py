@@ -131,3 +131,91 @@ def test_l1_fit_converges_at_benchmark_size():
         m = PointProcessModel(random_state=0).fit(np.r_[P, B], np.r_[np.ones(1000), np.zeros(10000)])
     assert m.n_iter_ < m.max_iter
     assert np.isfinite(m.coef_).all() and np.isfinite(m.intercept_)
+
+
+def _effort_data(seed=0, n_background=2000):
+    """Records of intensity exp(1.2 x) thinned by effort exp(0.8 x + z): log effort correlated with x."""
+    rng = np.random.default_rng(seed)
+    x_bg = rng.normal(size=n_background)
+    z_bg = rng.normal(size=n_background)
+    log_e_bg = 0.8 * x_bg + z_bg
+    p = np.exp(1.2 * x_bg + log_e_bg)
+    pick = rng.choice(n_background, 300, p=p / p.sum())
+    X = np.r_[x_bg[pick], x_bg][:, None]
+    y = np.r_[np.ones(300), np.zeros(n_background)]
+    effort = np.exp(np.r_[log_e_bg[pick], log_e_bg])
+    return X, y, effort
+
+
+def test_effort_covariate_matches_poisson_glm():
+    # Source: statsmodels Poisson GLM with Berman-Turner quadrature weights (as for REFERENCES.md item 9),
+    # with log effort as a second column (Warton, Renner & Ramp 2013 model the records' intensity as
+    # exp(alpha + beta x + gamma log effort)); at W = 1e6 the weighted logistic fit matches it.
+    X, y, effort = _effort_data()
+    n_b = int((y == 0).sum())
+    w = np.where(y == 1, 1e-8, 1.0 / n_b)
+    A = np.column_stack([np.ones(y.size), X[:, 0], np.log(effort)])
+    glm = sm.GLM(y / w, A, family=sm.families.Poisson(), var_weights=w).fit(tol=1e-12)
+    _, beta, gamma = glm.params
+    m = PointProcessModel(classes=("linear",), standardize=False, C=np.inf,
+                          background_weight=1e6 * 300 / n_b).fit(X, y, effort=effort)
+    assert m.coef_[0] == pytest.approx(beta, abs=1e-4)
+    assert m.effort_coef_ == pytest.approx(gamma, abs=1e-4)
+    # Analytic: the simulation's truth is beta = 1.2 and gamma = 1 (records proportional to effort)
+    assert beta == pytest.approx(1.2, abs=0.25) and gamma == pytest.approx(1.0, abs=0.25)
+    # effort is one linear term: never expanded, never among the climate features
+    assert m.coef_.shape == (1,) and list(m.feature_names_out_) == ["x0"]
+
+
+def test_effort_slope_is_not_penalised():
+    # Analytic: the intercept and the effort slope are unpenalised, so at the fitted climate slopes their
+    # score equations (the gradient of the weighted log-likelihood) are zero, even under a strong L1
+    # penalty that shrinks the climate slopes (L1 via liblinear, and elastic net via saga).
+    X, y, effort = _effort_data(seed=1)
+    for kw in ({"penalty": "l1", "C": 2.0}, {"penalty": "elasticnet", "C": 2.0}):
+        m = PointProcessModel(classes=("linear", "quadratic", "hinge"), n_knots=4, random_state=0, **kw)
+        m.fit(X, y, effort=effort)
+        lp = m.linear_predictor(X, effort=effort)
+        weights = np.where(y == 1, 1.0, m.background_weight_)
+        resid = weights * (1.0 / (1.0 + np.exp(-lp)) - y)
+        scale = weights.sum()
+        assert abs(resid.sum()) / scale < 1e-8
+        assert abs(resid @ np.log(effort)) / scale < 1e-8
+        if kw["penalty"] == "l1":
+            assert (m.coef_ == 0).any()  # the penalty is active on the climate features
+
+
+def test_effort_reference_sets_log_intensity_not_suitability():
+    # Analytic: prediction at a common effort e_ref adds gamma * log(e_ref) to the linear predictor; the
+    # cloglog suitability is rescaled to the background mean by the offset, so it does not depend on e_ref.
+    X, y, effort = _effort_data(seed=2)
+    at_max = PointProcessModel(classes=("linear",), C=np.inf).fit(X, y, effort=effort)
+    at_two = PointProcessModel(classes=("linear",), C=np.inf, effort_reference=2.0).fit(X, y, effort=effort)
+    assert at_max.effort_reference_ == pytest.approx(effort.max())
+    assert at_two.effort_reference_ == 2.0
+    grid = np.linspace(-2, 2, 9)[:, None]
+    np.testing.assert_allclose(at_max.predict_proba(grid), at_two.predict_proba(grid), rtol=1e-10)
+    gamma = at_max.effort_coef_
+    np.testing.assert_allclose(at_max.log_intensity(grid) - at_two.log_intensity(grid),
+                               gamma * (np.log(effort.max()) - np.log(2.0)), rtol=1e-8)
+    # the records' own model: effort as observed instead of the reference
+    lp_observed = at_max.linear_predictor(X[:3], effort=effort[:3])
+    np.testing.assert_allclose(lp_observed - at_max.linear_predictor(X[:3]),
+                               gamma * (np.log(effort[:3]) - np.log(effort.max())), rtol=1e-8)
+
+
+def test_effort_errors_name_the_parameter():
+    # Common practice, no source
+    X, y, effort = _effort_data()
+    bad = effort.copy()
+    bad[[0, 5]] = [0.0, np.nan]
+    with pytest.raises(InputError, match="effort: 2 values are not positive finite numbers"):
+        PointProcessModel(C=np.inf).fit(X, y, effort=bad)
+    with pytest.raises(InputError, match="effort: got 3 values; expected 2300"):
+        PointProcessModel(C=np.inf).fit(X, y, effort=effort[:3])
+    with pytest.raises(InputError, match="effort_reference: got 'min'"):
+        PointProcessModel(effort_reference="min").fit(X, y, effort=effort)
+    plain = PointProcessModel(classes=("linear",), C=np.inf).fit(X, y)
+    assert plain.effort_coef_ is None and plain.effort_term_ == 0.0
+    with pytest.raises(InputError, match="effort: given, but the model was fitted without effort"):
+        plain.linear_predictor(X[:2], effort=effort[:2])

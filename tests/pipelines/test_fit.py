@@ -109,3 +109,49 @@ def test_fewer_than_fifteen_records_warns(tmp_path, stack):
     result = fit_model(p, stack, options=FitOptions(method="envelope", background=500, folds=2, blocks_km=150,
                                                     permutation_repeats=1))
     assert any("fewer than 15" in n for n in result.summary["notes"])
+
+
+def test_bias_method_needs_a_bias_layer_and_a_linear_model(stack):
+    # Common practice, no source: one-line errors naming the option's parameter
+    from envelope.io.rasters import open_layer
+
+    bias = open_layer(DEMO / "effort.tif")
+    with pytest.raises(InputError, match="bias_method: 'weighted' needs a bias"):
+        fit_model(DEMO / "presences.csv", stack, options=FitOptions(bias_method="weighted"))
+    with pytest.raises(InputError, match="bias_method: 'covariate' works with the point-process model only"):
+        fit_model(DEMO / "presences.csv", stack, options=FitOptions(method="brt", bias_method="covariate"), bias=bias)
+
+
+def test_bias_layer_counts_when_every_cell_is_background(tmp_path, stack):
+    # Common practice, no source: with more background asked for than there are valid cells (a window of
+    # 6 400 demo cells here), every cell is taken once and weighted by area x effort, so the bias layer
+    # still changes the model (issue 13: before this change the maps with and without it were identical).
+    from envelope.io.rasters import open_layer
+
+    bias = open_layer(DEMO / "effort.tif")
+    window = (slice(80, 160), slice(80, 160))
+    mask = np.zeros((250, 250))
+    mask[window] = 1.0
+    sub = stack.isel(y=window[0], x=window[1])
+    rec = pd.read_csv(DEMO / "presences.csv")
+    lon = pd.to_numeric(rec["decimalLongitude"], errors="coerce")
+    lat = pd.to_numeric(rec["decimalLatitude"], errors="coerce")
+    inside = lon.between(float(sub["x"].min()), float(sub["x"].max())) & lat.between(float(sub["y"].min()),
+                                                                                     float(sub["y"].max()))
+    path = tmp_path / "window.csv"
+    rec[inside].to_csv(path, index=False)
+    opts = dict(method="forest", variables=["bio5", "bio6", "bio12"], background=8000, folds=3, blocks_km=40,
+                permutation_repeats=1)
+    plain = fit_model(path, stack, options=FitOptions(**opts), mask=mask)
+    weighted = fit_model(path, stack, options=FitOptions(**opts, bias_method="weighted"), bias=bias, mask=mask)
+    for result in (plain, weighted):
+        bg = result.summary["background"]
+        assert bg["n_draws"] is None and bg["n_cells"] == result.summary["n_background"] == 6400
+        assert bg["weight_sum"] == pytest.approx(6400)
+    assert plain.summary["bias_correction"] == "none"
+    assert weighted.summary["bias_correction"] == "weighted-background"
+    assert weighted.summary["background"]["weight_max"] > 5 * plain.summary["background"]["weight_max"]
+    X = values_at(sub.sel(variable=opts["variables"]), np.arange(80).repeat(80), np.tile(np.arange(80), 80))
+    s_plain = plain.estimator.predict_proba(X)[:, 1]
+    s_weighted = weighted.estimator.predict_proba(X)[:, 1]
+    assert np.abs(s_plain - s_weighted).mean() > 0.02

@@ -91,6 +91,7 @@ def test_minimal_study_fills_defaults(folder):
     # Common practice, no source: the defaults documented in docs/study-file.md.
     assert study.model.methods == ("pointprocess",) and study.model.folds == 5
     assert study.model.threshold_rule == "max-sss"
+    assert study.model.bias is None and study.model.bias_method == "auto"
     assert study.scenario_set.agreement == pytest.approx(2 / 3)
     assert study.outputs.format == "tif" and study.outputs.reach is True
     assert study.compute.scheduler is None
@@ -145,6 +146,12 @@ def test_reach_off_makes_habitat_and_dispersal_optional(folder):
     ("[habitat]", "[model]\nthreshold_rule = 1.5\n\n[habitat]", r"model.threshold_rule: .*number in \[0, 1\], got 1.5"),
     ("[habitat]", "[model]\nthreshold_rule = 'max-ss'\n\n[habitat]",
      r"model.threshold_rule: .*got 'max-ss' \(did you mean 'max-sss'\?\)"),
+    ("[habitat]", "[model]\nbias_method = 'weighted'\n\n[habitat]",
+     r"model.bias_method: 'weighted' given without model.bias"),
+    ("[habitat]", "[model]\nbias = 'now.tif'\nbias_method = 'covariates'\n\n[habitat]",
+     r"model.bias_method: expected one of 'auto', 'covariate', 'weighted', got 'covariates' \(did you mean 'covariate'\?\)"),
+    ("[habitat]", "[model]\nmethods = ['pointprocess', 'brt']\nbias = 'now.tif'\nbias_method = 'covariate'\n\n[habitat]",
+     r"model.bias_method: 'covariate' works with the point-process model only, but methods include 'brt'"),
     ("[habitat]", "[outputs]\nformat = 'png'\n\n[habitat]", r"outputs.format: expected one of 'tif', 'nc', got 'png'"),
     ("[habitat]", "[outputs]\nmess = 1\n\n[habitat]", r"outputs.mess: expected true or false, got 1 \(int\)"),
     ('baseline = "now.tif"', 'baseline = "now.tif"\nnow_year = 2060',
@@ -263,3 +270,10 @@ def test_method_names_come_from_the_model_registry():
     assert tuple(method.type.choices) == METHOD_NAMES
     code = "import sys, envelope.models as m; m.METHOD_NAMES; print('sklearn' in sys.modules)"
     assert subprocess.run([sys.executable, "-c", code], capture_output=True, text=True).stdout.strip() == "False"
+
+
+def test_bias_method_key_is_read(folder):
+    text = edited("[habitat]", "[model]\nbias = 'now.tif'\nbias_method = 'weighted'\n\n[habitat]")
+    study = load_study(write(folder, text))
+    assert study.model.bias == folder / "now.tif" and study.model.bias_method == "weighted"
+    assert study.to_dict()["model"]["bias_method"] == "weighted"
