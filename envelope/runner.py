@@ -143,6 +143,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
                               variables=list(study.climate.variables) if study.climate.variables else None,
                               block_km=study.model.blocks_km, n_folds=study.model.folds, cv_scheme=study.model.cv,
                               threshold_rule=study.model.threshold_rule, seed=study.model.seed,
+                              features=study.model.features,
                               max_uncertainty_m=r.max_uncertainty_m, years=r.years, thin_km=r.thin_km or None,
                               x_column=r.x_column, y_column=r.y_column, records_crs=r.crs)
             result = fit_model(r.path, stack, options=opts, bias=bias, climate_paths=baseline,

@@ -29,6 +29,9 @@ read_scenario_table = read_scenarios
 #: kept as a tuple here so loading a study file does not import scikit-learn).
 METHOD_NAMES = ("pointprocess", "envelope", "brt", "forest", "ensemble")
 OUTPUT_FORMATS = ("tif", "nc")
+#: Feature classes accepted in ``model.features`` (envelope.features.FEATURE_CLASSES, kept
+#: here so loading a study file does not import scikit-learn).
+FEATURE_CLASS_NAMES = ("linear", "quadratic", "product", "hinge")
 CV_SCHEMES = ("block", "random")
 
 # scheme://host:port, host a name, an IPv4 address or a bracketed IPv6 address; this is the
@@ -83,6 +86,7 @@ class ModelSection:
     cv: str = "block"
     threshold_rule: str | float = "max-sss"
     seed: int = 0
+    features: str | tuple[str, ...] = "cv"
 
 
 @dataclass(frozen=True)
@@ -327,7 +331,7 @@ _TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispers
 _STUDY = ("name", "question", "species")
 _RECORDS = ("path", "x_column", "y_column", "crs", "max_uncertainty_m", "years", "thin_km")
 _CLIMATE = ("baseline", "variables", "now_year")
-_MODEL = ("methods", "background", "bias", "blocks_km", "folds", "cv", "threshold_rule", "seed")
+_MODEL = ("methods", "background", "bias", "blocks_km", "folds", "cv", "threshold_rule", "seed", "features")
 _SCENARIOS = ("table", "grid", "agreement")
 _HABITAT = ("path", "classes", "align")
 _DISPERSAL = ("kernel", "mean_distance_km", "shape", "step_years", "rate", "persistence_years",
@@ -411,6 +415,12 @@ def _model(c: _Checker, doc) -> ModelSection:
         if isinstance(rule, bool) or not isinstance(rule, (int, float)) or not 0 <= rule <= 1:
             c.bad("model.threshold_rule", expected, rule)
         rule = float(rule)
+    features = t.get("features", "cv")
+    if isinstance(features, str):
+        c.string("model.features", features, choices=("cv",))
+    else:
+        features = c.string_list("model.features", features, choices=FEATURE_CLASS_NAMES)
+        features = tuple(f for f in FEATURE_CLASS_NAMES if f in features)
     return ModelSection(
         methods=methods,
         background=c.number("model.background", t.get("background", 10_000), integer=True, ge=100),
@@ -420,6 +430,7 @@ def _model(c: _Checker, doc) -> ModelSection:
         cv=c.string("model.cv", t.get("cv", "block"), choices=CV_SCHEMES),
         threshold_rule=rule,
         seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0),
+        features=features,
     )
 
 

@@ -89,7 +89,7 @@ def test_minimal_study_fills_defaults(folder):
     study = load_study(write(folder, MINIMAL))
     # Common practice, no source: the defaults documented in docs/study-file.md.
     assert study.model.methods == ("pointprocess",) and study.model.folds == 5
-    assert study.model.threshold_rule == "max-sss"
+    assert study.model.threshold_rule == "max-sss" and study.model.features == "cv"
     assert study.scenario_set.agreement == pytest.approx(2 / 3)
     assert study.outputs.format == "tif" and study.outputs.reach is True
     assert study.compute.scheduler is None
@@ -144,6 +144,9 @@ def test_reach_off_makes_habitat_and_dispersal_optional(folder):
     ("[habitat]", "[model]\nthreshold_rule = 1.5\n\n[habitat]", r"model.threshold_rule: .*number in \[0, 1\], got 1.5"),
     ("[habitat]", "[model]\nthreshold_rule = 'max-ss'\n\n[habitat]",
      r"model.threshold_rule: .*got 'max-ss' \(did you mean 'max-sss'\?\)"),
+    ("[habitat]", "[model]\nfeatures = 'lqh'\n\n[habitat]", r"model.features: expected one of 'cv', got 'lqh'"),
+    ("[habitat]", "[model]\nfeatures = ['linear', 'cubic']\n\n[habitat]",
+     r"model.features\[2\]: expected one of 'linear', 'quadratic', 'product', 'hinge'"),
     ("[habitat]", "[outputs]\nformat = 'png'\n\n[habitat]", r"outputs.format: expected one of 'tif', 'nc', got 'png'"),
     ("[habitat]", "[outputs]\nmess = 1\n\n[habitat]", r"outputs.mess: expected true or false, got 1 \(int\)"),
     ('baseline = "now.tif"', 'baseline = "now.tif"\nnow_year = 2060',
@@ -255,3 +258,18 @@ def test_method_names_match_the_model_registry():
     # Common practice, no source: the study file's list (kept free of scikit-learn imports)
     # must not drift from the registry that builds the estimators.
     assert METHOD_NAMES == tuple(METHODS)
+
+
+def test_model_features_key(folder):
+    # Common practice, no source: fixed classes are read in the canonical column order
+    study = load_study(write(folder, edited("[habitat]", "[model]\nfeatures = ['hinge', 'linear']\n\n[habitat]")))
+    assert study.model.features == ("linear", "hinge")
+    assert study.to_dict()["model"]["features"] == ["linear", "hinge"]
+
+
+def test_feature_class_names_match_the_expander():
+    from envelope.features import FEATURE_CLASSES
+    from envelope.study import FEATURE_CLASS_NAMES
+
+    # Common practice, no source: the study file's list (kept free of scikit-learn imports) must not drift
+    assert FEATURE_CLASS_NAMES == FEATURE_CLASSES

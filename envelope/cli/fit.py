@@ -22,6 +22,17 @@ def _rule(ctx, param, value):
     return number
 
 
+def _features(ctx, param, value):
+    from envelope.errors import InputError
+    from envelope.features import parse_feature_classes
+
+    try:
+        return parse_feature_classes(value, where="--features")
+    except InputError as exc:
+        raise click.BadParameter(f"{value!r}: expected cv or comma-separated classes from linear, quadratic, "
+                                 "product, hinge", ctx=ctx, param=param) from exc
+
+
 def _years(ctx, param, value):
     if value is None:
         return None
@@ -53,6 +64,10 @@ def _years(ctx, param, value):
 @click.option("--folds", type=click.IntRange(min=2, max=20), default=5, show_default=True, help="Number of CV folds.")
 @click.option("--cv", "cv_scheme", type=click.Choice(["block", "random"]), default="block", show_default=True,
               help="Spatial block CV, or random K-fold for comparison.")
+@click.option("--features", callback=_features, default="cv", show_default=True, metavar="cv|CLASS,...",
+              help="Feature classes of the point-process model: cv (choose linear,quadratic / +hinge / "
+                   "+product by the spatial CV, one-standard-error rule) or a fixed list, e.g. "
+                   "linear,quadratic,hinge. Other methods ignore it.")
 @click.option("--threshold-rule", callback=_rule, default="max-sss", show_default=True,
               help="max-sss, p10, min-presence, or a fixed number in 0..1.")
 @click.option("--max-uncertainty-m", type=float, default=None, help="Drop records less precise than this.")
@@ -62,13 +77,14 @@ def _years(ctx, param, value):
 @seed_opt
 @overwrite_opt
 def fit(presences, climate, out, summary, method, n_background, bias, variables, blocks_km, folds, cv_scheme,
-        threshold_rule, max_uncertainty_m, years, thin_km, seed, overwrite):
+        features, threshold_rule, max_uncertainty_m, years, thin_km, seed, overwrite):
     """Fit and cross-validate a presence/background model, and save it.
 
     Cleans the records against the baseline climate (every dropped record is counted by
     reason), draws background cells, evaluates the model with spatial block
     cross-validation (AUC, TSS, kappa, Boyce index, 10th-percentile omission), fits the
-    final model on all data, chooses the threshold, and writes the model file, a fit
+    final model on all data (the point-process model chooses its penalty and feature
+    classes by the same spatial folds), chooses the threshold, and writes the model file, a fit
     summary JSON and a per-fold CSV.
 
     \b
@@ -78,6 +94,8 @@ def fit(presences, climate, out, summary, method, n_background, bias, variables,
             --method brt --blocks-km 50 --folds 5 --out brt.envm --summary brt.json
       $ envelope fit --presences records.csv --climate baseline.nc --variables bio1,bio5,bio12 \\
             --bias effort.tif --threshold-rule p10 --seed 7 --out model.envm
+      $ envelope fit --presences records.csv --climate baseline.tif --features linear,quadratic \\
+            --out smooth.envm
     """
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -95,7 +113,7 @@ def fit(presences, climate, out, summary, method, n_background, bias, variables,
 
         check_same_grid(stack, bias_layer, ref_name="climate", other_name=f"--bias {bias}")
     options = FitOptions(method=method, n_background=n_background, variables=variables, block_km=blocks_km,
-                         n_folds=folds, cv_scheme=cv_scheme, threshold_rule=threshold_rule, seed=seed,
+                         n_folds=folds, cv_scheme=cv_scheme, threshold_rule=threshold_rule, seed=seed, features=features,
                          max_uncertainty_m=max_uncertainty_m, years=years, thin_km=thin_km)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True) as bar:
@@ -136,6 +154,17 @@ def print_fit_summary(summary: dict, paths: dict) -> None:
         mean, sd = cv.get(f"{key}_mean"), cv.get(f"{key}_sd")
         s.add_row(label, "–" if mean is None else f"{mean:.3f}", "–" if sd is None else f"{sd:.3f}")
     console.print(s)
+    fc = summary.get("feature_classes")
+    if fc:
+        how = "one-standard-error rule over the spatial CV" if fc["rule"] == "one-standard-error" else fc["rule"]
+        parts, previous = [], []
+        for r in fc.get("scores", []):
+            added = [c for c in r["classes"] if c not in previous]
+            label = ",".join(added) if not previous else "+" + ",".join(added)
+            parts.append(f"{label} {r['mean_auc']:.3f} ± {r['se']:.3f}")
+            previous = r["classes"]
+        console.print(f"features: {', '.join(fc['chosen'])} ({how})"
+                      + (f"; CV AUC {'; '.join(parts)}" if parts else ""))
     thr = summary["threshold"]
     console.print(f"threshold {thr['value']:.4f} ({thr['rule']}); {summary['n_presences']} presences, "
                   f"{summary['n_background']} background")

@@ -105,7 +105,8 @@ def save_model(path, estimator, metadata: dict, *, overwrite: bool = False) -> P
         and must match the estimator's input; other keys the fit pipeline uses:
         ``mess_reference``, ``threshold`` (``{"value", "rule"}``), ``cv`` (``{"scheme",
         "n_folds", "metrics": {name: {"mean", "sd"}}}``), ``provenance`` (``{"inputs":
-        {file: sha256}, "seed"}``).
+        {file: sha256}, "seed"}``), ``feature_classes`` (``{"chosen", "rule", "criterion",
+        "scores"}``).
 
     Returns
     -------
@@ -237,7 +238,11 @@ def load_model(path):
 
 
 def model_summary(manifest: dict) -> dict:
-    """Plain summary of a manifest for `envelope inspect` (method, variables, threshold, CV, provenance)."""
+    """Plain summary of a manifest for `envelope inspect` (method, variables, threshold, CV, features, provenance).
+
+    ``feature_classes`` is the metadata's record of the point-process feature classes
+    (chosen set, rule, per-set CV scores), or None in files written before it was kept.
+    """
     meta = manifest.get("metadata", {})
     return {
         "file_format": f"{manifest.get('format')} v{manifest.get('format_version')}",
@@ -249,6 +254,7 @@ def model_summary(manifest: dict) -> dict:
         "variables": meta.get("variables", []),
         "threshold": meta.get("threshold"),
         "cv": meta.get("cv"),
+        "feature_classes": meta.get("feature_classes"),
         "provenance": meta.get("provenance"),
     }
 
