@@ -49,6 +49,10 @@ def _rule(ctx, param, value):
 @click.option("--folds", type=click.IntRange(min=2, max=20), default=5, show_default=True, help="Number of CV folds.")
 @click.option("--cv", "cv", type=click.Choice(["block", "random"]), default="block", show_default=True,
               help="Spatial block CV, or random K-fold for comparison.")
+@click.option("--features", default="cv", show_default=True, metavar="cv|CLASS,...",
+              help="Feature classes of the point-process model: cv (choose linear,quadratic / +hinge / "
+                   "+product by the spatial CV, one-standard-error rule) or a fixed list, e.g. "
+                   "linear,quadratic,hinge. Other methods ignore it.")
 @click.option("--threshold-rule", callback=_rule, default="max-sss", show_default=True,
               help="max-sss, p10, min-presence, or a fixed number in 0..1.")
 @click.option("--max-uncertainty-m", type=float, default=None, help="Drop records less precise than this.")
@@ -58,15 +62,16 @@ def _rule(ctx, param, value):
 @seed_opt
 @overwrite_opt
 def fit(presences, climate, out, summary, method, background, bias, bias_method, variables, blocks_km, folds, cv,
-        threshold_rule, max_uncertainty_m, record_years, thin_km, seed, overwrite):
+        features, threshold_rule, max_uncertainty_m, record_years, thin_km, seed, overwrite):
     """Fit and cross-validate a presence/background model, and save it.
 
     Cleans the records against the baseline climate (every dropped record is counted by
     reason), draws background points in proportion to true cell area (a quadrature of the
     study area; with --bias, recording effort is corrected for as --bias-method says),
     evaluates the model with spatial block cross-validation (AUC, TSS, kappa, Boyce index,
-    10th-percentile omission), fits the final model on all data, chooses the threshold,
-    and writes the model file, a fit summary JSON and a per-fold CSV.
+    10th-percentile omission), fits the final model on all data (the point-process model
+    chooses its penalty and feature classes by the same spatial folds), chooses the
+    threshold, and writes the model file, a fit summary JSON and a per-fold CSV.
 
     \b
     Examples:
@@ -77,6 +82,8 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
             --bias effort.tif --threshold-rule p10 --seed 7 --out model.envm
       $ envelope fit --presences records.csv --climate baseline.tif --bias effort.tif \\
             --bias-method weighted --out weighted.envm
+      $ envelope fit --presences records.csv --climate baseline.tif --features linear,quadratic \\
+            --out smooth.envm
     """
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -88,7 +95,7 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
     check_writable(out, overwrite)
     console = Console(stderr=True)
     options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
-                         folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed,
+                         folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed, features=features,
                          max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
                          thin_km=thin_km, bias_method=bias_method)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
@@ -129,6 +136,17 @@ def print_fit_summary(summary: dict, paths: dict) -> None:
         mean, sd = cv.get(f"{key}_mean"), cv.get(f"{key}_sd")
         s.add_row(label, "–" if mean is None else f"{mean:.3f}", "–" if sd is None else f"{sd:.3f}")
     console.print(s)
+    fc = summary.get("feature_classes")
+    if fc:
+        how = "one-standard-error rule over the spatial CV" if fc["rule"] == "one-standard-error" else fc["rule"]
+        parts, previous = [], []
+        for r in fc.get("scores", []):
+            added = [c for c in r["classes"] if c not in previous]
+            label = ",".join(added) if not previous else "+" + ",".join(added)
+            parts.append(f"{label} {r['mean_auc']:.3f} ± {r['se']:.3f}")
+            previous = r["classes"]
+        console.print(f"features: {', '.join(fc['chosen'])} ({how})"
+                      + (f"; CV AUC {'; '.join(parts)}" if parts else ""))
     thr = summary["threshold"]
     console.print(f"threshold {thr['value']:.4f} ({thr['rule']}); {summary['n_presences']} presences, "
                   f"{summary['n_background']} background")

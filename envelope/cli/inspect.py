@@ -16,7 +16,8 @@ def inspect(model_file, as_json):
     """Print what a model file holds.
 
     Shows the method, the variables with their units and training range, the threshold
-    and its rule, the cross-validation summary and the provenance (input checksums,
+    and its rule, the cross-validation summary, the feature classes of a point-process
+    model (and how they were chosen) and the provenance (input checksums,
     seed, software versions). Only the JSON manifest is read, so inspecting a file
     never runs code from it.
 
@@ -62,7 +63,7 @@ def _text_lines(path, s: dict):
     if isinstance(cv, dict):
         head = ", ".join(f"{k} {cv[k]}" for k in ("scheme", "n_folds") if k in cv)
         yield f"Cross-validation  {head or '-'}"
-        # envelope/fitting.py writes flat keys (auc_mean, auc_sd, ...); older manifests a nested "metrics"
+        # envelope/pipelines/fit.py writes flat keys (auc_mean, auc_sd, ...); older manifests a nested "metrics"
         for key, label in _CV_METRICS:
             if f"{key}_mean" in cv or f"{key}_sd" in cv:
                 yield f"  {label:<16} {_fmt(cv.get(f'{key}_mean'))} ± {_fmt(cv.get(f'{key}_sd'))}"
@@ -73,6 +74,7 @@ def _text_lines(path, s: dict):
                 yield f"  {name:<16} {_fmt(m)}"
     else:
         yield "Cross-validation  -"
+    yield from _feature_lines(s.get("feature_classes"), s["method"])
     prov = s["provenance"]
     software = dict(s["software"] or {})
     yield "Provenance"
@@ -86,6 +88,27 @@ def _text_lines(path, s: dict):
             elif k != "inputs":
                 yield f"  {k}: {_fmt(v)}"
     yield "  software: " + (", ".join(f"{k} {v}" for k, v in software.items()) or "-")
+
+
+def _feature_lines(fc, method):
+    if not isinstance(fc, dict):
+        if method in ("pointprocess", "ensemble"):
+            yield "Features     not recorded (model file from an earlier version)"
+        return
+    chosen = ", ".join(fc.get("chosen") or []) or "-"
+    member = f" (member {fc['member']})" if fc.get("member") else ""
+    rule = fc.get("rule")
+    how = {"one-standard-error": "chosen by cross-validation, one-standard-error rule",
+           "given": "given"}.get(rule, rule or "-")
+    yield f"Features     {chosen}{member} ({how})"
+    scores = fc.get("scores") or []
+    if scores:
+        width = max(len(", ".join(r.get("classes") or [])) for r in scores)
+        for r in scores:
+            names = ", ".join(r.get("classes") or [])
+            mark = "  <- chosen" if r.get("classes") == fc.get("chosen") else ""
+            yield (f"  {names:<{width}}  AUC {_fmt(r.get('mean_auc'))} ± {_fmt(r.get('se'))}"
+                   f"  C {_fmt(r.get('C'))}{mark}")
 
 
 _CV_METRICS = (("auc", "AUC"), ("tss", "TSS"), ("kappa", "kappa"), ("boyce", "Boyce"),

@@ -88,7 +88,8 @@ def save_model(path, estimator, metadata: dict, *, overwrite: bool = False) -> P
         and must match the estimator's input; other keys the fit pipeline uses:
         ``mess_reference``, ``threshold`` (``{"value", "rule"}``), ``cv`` (``{"scheme",
         "n_folds", "metrics": {name: {"mean", "sd"}}}``), ``provenance`` (``{"inputs":
-        {file: sha256}, "seed"}``).
+        {file: sha256}, "seed"}``), ``feature_classes`` (``{"chosen", "rule", "criterion",
+        "scores"}``).
 
     Returns
     -------
@@ -182,6 +183,31 @@ def read_manifest(path) -> dict:
         return _parse_manifest(_read_member(zf, MANIFEST_NAME, path), path)
 
 
+# Modules whose classes moved: model files written before the move name the old module in
+# their skops schema. The names are rewritten (after the checksum check, before the type
+# check), so such files load with the same allow-list; nothing else in the payload changes.
+MOVED_MODULES = {"envelope.features": "envelope.models.features"}
+
+
+def _with_moved_modules(payload: bytes) -> bytes:
+    """The skops payload with :data:`MOVED_MODULES` renamed in its schema (unchanged if none occur)."""
+    import io
+
+    with zipfile.ZipFile(io.BytesIO(payload)) as src:
+        schema = src.read("schema.json").decode("utf-8")
+        renamed = schema
+        for old, new in MOVED_MODULES.items():
+            renamed = renamed.replace(f'"__module__": "{old}"', f'"__module__": "{new}"')
+        if renamed == schema:
+            return payload
+        out = io.BytesIO()
+        with zipfile.ZipFile(out, "w") as dst:
+            for item in src.infolist():
+                data = renamed.encode("utf-8") if item.filename == "schema.json" else src.read(item)
+                dst.writestr(item, data)
+    return out.getvalue()
+
+
 def load_model(path):
     """Open a model file safely: returns ``(estimator, metadata)``.
 
@@ -201,6 +227,7 @@ def load_model(path):
         raise ModelError(f"{path}: estimator checksum does not match the manifest; the file was "
                          "altered or damaged")
     try:
+        payload = _with_moved_modules(payload)
         untrusted = sio.get_untrusted_types(data=payload)
     except Exception as exc:
         raise ModelError(f"{path}: estimator payload is not a skops file ({type(exc).__name__}: {exc})") from None
@@ -220,7 +247,11 @@ def load_model(path):
 
 
 def model_summary(manifest: dict) -> dict:
-    """Plain summary of a manifest for `envelope inspect` (method, variables, threshold, CV, provenance)."""
+    """Plain summary of a manifest for `envelope inspect` (method, variables, threshold, CV, features, provenance).
+
+    ``feature_classes`` is the metadata's record of the point-process feature classes
+    (chosen set, rule, per-set CV scores), or None in files written before it was kept.
+    """
     meta = manifest.get("metadata", {})
     return {
         "file_format": f"{manifest.get('format')} v{manifest.get('format_version')}",
@@ -232,6 +263,7 @@ def model_summary(manifest: dict) -> dict:
         "variables": meta.get("variables", []),
         "threshold": meta.get("threshold"),
         "cv": meta.get("cv"),
+        "feature_classes": meta.get("feature_classes"),
         "provenance": meta.get("provenance"),
     }
 

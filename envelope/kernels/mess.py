@@ -34,7 +34,8 @@ class MessReference:
     percentiles : ndarray, shape (len(percentile_levels), n_variables)
         ``numpy.percentile`` (linear) of the full reference, for describing the model.
     n_source : int
-        Number of complete reference rows before any thinning.
+        Number of complete reference rows (distinct cells when cell ids were given) before
+        any thinning.
     """
 
     values: np.ndarray
@@ -116,20 +117,26 @@ class CountingTable:
     positions: np.ndarray    # 0.0 .. m-1
 
 
-def reference_from_training(X_ref, *, max_values: int = MAX_REFERENCE_VALUES) -> MessReference:
+def reference_from_training(X_ref, *, max_values: int = MAX_REFERENCE_VALUES, cells=None) -> MessReference:
     """Summarise the training climate (background + presences) as a MESS reference.
 
-    Rows with any NaN are dropped. Design choice: MESS needs the share of reference values
-    below a point (f below), so the model file keeps the sorted reference itself rather than
-    a few quantiles. Up to ``max_values`` rows it keeps every value, so :func:`mess` is exact;
-    above that it keeps ``max_values`` evenly spaced order statistics (ranks
-    ``round(linspace(0, n − 1, max_values))``, including the exact minimum and maximum), and
-    f is then off by at most about 100/``max_values`` percentage points.
+    With ``cells`` (one id per row, e.g. the grid-cell index), rows sharing an id are
+    counted once, the first of them kept: a presence cell that was also drawn as
+    background is then not counted twice. Rows with any NaN are dropped.
+
+    Design choice: MESS needs the share of reference values below a point (f below), so
+    the model file keeps the sorted reference itself rather than a few quantiles. Up to
+    ``max_values`` rows it keeps every value, so :func:`mess` is exact; above that it keeps
+    ``max_values`` evenly spaced order statistics (ranks ``round(linspace(0, n − 1,
+    max_values))``, including the exact minimum and maximum), and f is then off by at most
+    about 100/``max_values`` percentage points.
 
     Parameters
     ----------
     X_ref : array_like, shape (n_records, n_variables)
     max_values : int, default=10 000
+    cells : array_like of int, shape (n_records,), optional
+        Cell id per row; duplicates after the first are dropped before anything else.
 
     References
     ----------
@@ -141,6 +148,11 @@ def reference_from_training(X_ref, *, max_values: int = MAX_REFERENCE_VALUES) ->
         X = X[:, None]
     if X.ndim != 2:
         raise InputError(f"X_ref: array of {X.ndim} dimensions; expected (records, variables)")
+    if cells is not None:
+        cells = np.asarray(cells).ravel()
+        if cells.shape[0] != X.shape[0]:
+            raise InputError(f"cells: {cells.shape[0]} cell ids for {X.shape[0]} rows; expected one per row")
+        X = X[np.sort(np.unique(cells, return_index=True)[1])]
     X = X[~np.isnan(X).any(axis=1)]
     if X.shape[0] == 0:
         raise InputError("X_ref: no complete rows (every record has a NaN); expected training "

@@ -7,8 +7,9 @@ import importlib
 from envelope.errors import InputError
 
 __all__ = [
-    "BIAS_METHODS", "COVARIATE_METHODS", "METHODS", "METHOD_NAMES", "BoostedTrees", "DownsampledForest", "PercentileEnvelope", "PointProcessModel",
-    "SkillWeightedEnsemble", "make_estimator", "response_curves",
+    "BIAS_METHODS", "COVARIATE_METHODS", "FEATURE_CLASSES", "METHODS", "METHOD_NAMES", "BoostedTrees", "DownsampledForest",
+    "PercentileEnvelope", "PointProcessModel", "SkillWeightedEnsemble", "feature_classes_report", "make_estimator",
+    "response_curves",
 ]
 
 # The registry: method name (as given on the command line / in a study file) -> estimator class.
@@ -27,6 +28,8 @@ METHOD_NAMES = tuple(_REGISTRY)
 BIAS_METHODS = ("auto", "covariate", "weighted")
 #: Model families whose linear predictor can hold log effort as a covariate.
 COVARIATE_METHODS = ("pointprocess",)
+#: Feature classes of the point-process model (envelope.models.features.FeatureExpander).
+FEATURE_CLASSES = ("linear", "quadratic", "product", "hinge")
 _CLASSES = {cls: module for module, cls in _REGISTRY.values()}
 
 
@@ -57,6 +60,31 @@ def make_estimator(method: str, **params):
         raise InputError(f"method {method!r}: unknown parameter {unknown[0]!r} "
                          f"(expected one of {', '.join(allowed) or 'none'})")
     return cls(**params)
+
+
+def feature_classes_report(estimator) -> dict | None:
+    """How a fitted model's feature classes were chosen, for the fit summary and the model file.
+
+    For a :class:`PointProcessModel` its ``feature_selection_`` (``chosen``, ``rule``,
+    ``criterion``, ``scores``; see there); for an ensemble the same for its point-process
+    member, with ``member`` naming it; None for models without feature classes. Models
+    fitted before the classes were chosen by cross-validation report ``chosen`` with
+    ``rule = "not recorded"``.
+    """
+    SkillWeightedEnsemble, PointProcessModel = __getattr__("SkillWeightedEnsemble"), __getattr__("PointProcessModel")
+    if isinstance(estimator, SkillWeightedEnsemble):
+        for name, member in getattr(estimator, "members_", []):
+            report = feature_classes_report(member)
+            if report is not None:
+                return {"member": name, **report}
+        return None
+    if not isinstance(estimator, PointProcessModel) or not hasattr(estimator, "expander_"):
+        return None
+    selection = getattr(estimator, "feature_selection_", None)
+    if selection is None:
+        return {"chosen": list(estimator.expander_.classes_used_), "rule": "not recorded",
+                "criterion": None, "scores": []}
+    return {k: (list(v) if isinstance(v, tuple) else v) for k, v in selection.items()}
 
 
 def response_curves(estimator, X_reference, feature_names, n_points: int = 50) -> dict:

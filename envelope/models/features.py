@@ -7,32 +7,12 @@ from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import _check_sample_weight, check_is_fitted, validate_data
 
 from envelope.errors import InputError
-
-FEATURE_CLASSES = ("linear", "quadratic", "product", "hinge")
-
-# Sample-size rule for classes="auto" (our own rule of thumb, no source): every feature
-# class multiplies the number of coefficients (p linear, p quadratic, 2·p·k hinge,
-# p(p-1)/2 product), and the variance of a penalised fit grows with coefficients per
-# presence. Below ~30 presences we keep smooth low-variance shapes (linear + quadratic,
-# 2p coefficients); from 30 the data can support piecewise-linear hinge shapes; only from
-# 100 presences are pairwise interactions (the class that grows fastest with p) allowed.
-AUTO_HINGE_FROM = 30    # Common practice, no source: bias/variance rule of thumb
-AUTO_PRODUCT_FROM = 100  # Common practice, no source: bias/variance rule of thumb
+from envelope.models import FEATURE_CLASSES
 
 
-def auto_feature_classes(n_presence: float) -> tuple[str, ...]:
-    """Feature classes chosen by ``classes="auto"`` for ``n_presence`` presences.
-
-    linear + quadratic below 30 presences, + hinge from 30, + product from 100 (a
-    bias/variance rule of thumb: richer classes only when there are enough presences to
-    estimate their extra coefficients).
-    """
-    classes = ["linear", "quadratic"]
-    if n_presence >= AUTO_HINGE_FROM:
-        classes.append("hinge")
-    if n_presence >= AUTO_PRODUCT_FROM:
-        classes.append("product")
-    return tuple(c for c in FEATURE_CLASSES if c in classes)
+#: Classes used when none are given (the point-process model can instead choose them by
+#: cross-validation, ``PointProcessModel(classes="cv")``).
+DEFAULT_CLASSES = ("linear", "quadratic", "hinge")
 
 
 def weighted_quantiles(values: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> np.ndarray:
@@ -70,11 +50,9 @@ class FeatureExpander(TransformerMixin, BaseEstimator):
 
     Parameters
     ----------
-    classes : "auto" or sequence of {"linear", "quadratic", "product", "hinge"}, default="auto"
-        Feature classes. ``"auto"`` picks them from the number of presences (rows with
-        ``y == 1``; all rows when ``y`` is not given): linear + quadratic below 30,
-        + hinge from 30, + product from 100 (our bias/variance rule of thumb, see
-        :func:`auto_feature_classes`).
+    classes : sequence of {"linear", "quadratic", "product", "hinge"}, default=("linear", "quadratic", "hinge")
+        Feature classes (a single name is one class). The point-process model chooses
+        among sets of them by cross-validation (``PointProcessModel(classes="cv")``).
     n_knots : int, default=10
         Knots per variable for hinge features (duplicate quantiles are merged).
     standardize : bool, default=True
@@ -106,23 +84,20 @@ class FeatureExpander(TransformerMixin, BaseEstimator):
     [0.0, 1.0, 4.0, 9.0]
     """
 
-    def __init__(self, *, classes="auto", n_knots=10, standardize=True):
+    def __init__(self, *, classes=DEFAULT_CLASSES, n_knots=10, standardize=True):
         self.classes = classes
         self.n_knots = n_knots
         self.standardize = standardize
 
-    def _resolve_classes(self, n_presence: float) -> tuple[str, ...]:
-        if isinstance(self.classes, str):
-            if self.classes == "auto":
-                return auto_feature_classes(n_presence)
-            requested = [self.classes]
-        else:
-            requested = list(self.classes)
+    def _resolve_classes(self) -> tuple[str, ...]:
+        requested = [self.classes] if isinstance(self.classes, str) else list(self.classes)
         unknown = [c for c in requested if c not in FEATURE_CLASSES]
         if unknown or not requested:
+            hint = (" (the presence-count rule 'auto' was removed; the point-process model chooses "
+                    "classes by cross-validation with classes='cv')" if "auto" in requested else "")
             raise InputError(
-                f"feature classes: got {requested!r}; expected 'auto' or a non-empty list of "
-                f"{', '.join(FEATURE_CLASSES)}"
+                f"feature classes: got {requested!r}; expected a non-empty list of "
+                f"{', '.join(FEATURE_CLASSES)}{hint}"
             )
         return tuple(c for c in FEATURE_CLASSES if c in requested)
 
@@ -133,7 +108,7 @@ class FeatureExpander(TransformerMixin, BaseEstimator):
         ----------
         X : array-like of shape (n_samples, n_variables)
         y : array-like of shape (n_samples,), optional
-            1 = presence, 0 = background; only used to count presences for ``"auto"``.
+            Ignored (accepted for pipeline compatibility).
         sample_weight : array-like of shape (n_samples,), optional
             Frequency weights for the mean, standard deviation and knot quantiles.
 
@@ -143,12 +118,7 @@ class FeatureExpander(TransformerMixin, BaseEstimator):
         """
         X = validate_data(self, X, dtype=np.float64)
         w = _check_sample_weight(sample_weight, X, dtype=np.float64)
-        if y is not None:
-            y = np.asarray(y)
-            n_presence = float(w[y == 1].sum())
-        else:
-            n_presence = float(w.sum())
-        self.classes_used_ = self._resolve_classes(n_presence)
+        self.classes_used_ = self._resolve_classes()
         if not (isinstance(self.n_knots, (int, np.integer)) and self.n_knots >= 1):
             raise InputError(f"n_knots: got {self.n_knots!r}; expected a whole number >= 1")
         if self.standardize:
@@ -164,10 +134,11 @@ class FeatureExpander(TransformerMixin, BaseEstimator):
         if "hinge" in self.classes_used_:
             probs = np.arange(1, self.n_knots + 1) / (self.n_knots + 1)
             Z = (X - mean) / sd
+            Zw = Z[w > 0]  # rows of weight 0 count as absent, as in the quantiles
             for j in range(X.shape[1]):
                 k = np.unique(weighted_quantiles(Z[:, j], w, probs))
                 # a knot at the maximum (or minimum) gives an all-zero hinge: drop it
-                k = k[(k > Z[:, j].min()) & (k < Z[:, j].max())]
+                k = k[(k > Zw[:, j].min()) & (k < Zw[:, j].max())]
                 knots.append(k)
         else:
             knots = [np.empty(0) for _ in range(X.shape[1])]
@@ -234,3 +205,32 @@ class FeatureExpander(TransformerMixin, BaseEstimator):
         if not blocks:
             return np.empty((Z.shape[0], 0))
         return np.hstack(blocks)
+
+
+def parse_feature_classes(value, *, where: str = "features"):
+    """``"cv"`` or a tuple of feature classes from a comma-separated string or a list.
+
+    ``"cv"`` (choose by cross-validation) is returned as is; otherwise every name must be one
+    of :data:`FEATURE_CLASSES`, given once, and the result is in that canonical order.
+    ``where`` names the option or key in the error message.
+
+    Examples
+    --------
+    >>> parse_feature_classes("hinge, linear,quadratic")
+    ('linear', 'quadratic', 'hinge')
+    """
+    if isinstance(value, str):
+        if value.strip().lower() == "cv":
+            return "cv"
+        names = [v.strip().lower() for v in value.split(",")]
+    elif isinstance(value, (list, tuple)) and all(isinstance(v, str) for v in value):
+        names = [v.strip().lower() for v in value]
+    else:
+        raise InputError(f"{where}: got {value!r}; expected 'cv' or a list of {', '.join(FEATURE_CLASSES)}")
+    unknown = [n for n in names if n not in FEATURE_CLASSES]
+    if unknown or not names:
+        raise InputError(f"{where}: got {value!r}; expected 'cv' or comma-separated names from "
+                         f"{', '.join(FEATURE_CLASSES)}")
+    if len(set(names)) < len(names):
+        raise InputError(f"{where}: got {value!r}; a class is named twice")
+    return tuple(c for c in FEATURE_CLASSES if c in names)

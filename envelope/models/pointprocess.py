@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import hashlib
+import threading
+from collections import OrderedDict
+
 import numpy as np
 from scipy.special import expit, logsumexp
 from sklearn.base import BaseEstimator
@@ -10,8 +14,9 @@ from sklearn.metrics import roc_auc_score
 from sklearn.model_selection import GroupKFold, StratifiedKFold
 
 from envelope.errors import InputError, ModelError
-from envelope.models.features import FeatureExpander
+from envelope.models.features import DEFAULT_CLASSES, FEATURE_CLASSES, FeatureExpander
 from envelope.models.base import PresenceBackgroundClassifier
+from envelope.models.selection import one_standard_error_choice
 
 # Multiplier of the default background weight: total background weight = 100 x presences.
 # Fithian & Hastie (2013) show the weighted fit tends to the IPP as this grows; at 100 the
@@ -24,6 +29,12 @@ _LOG_LN2 = np.log(np.log(2.0))     # eta at which 1 - exp(-exp(eta)) = 0.5
 # intercept_scaling uses for the intercept); the intercept and the effort slope are then
 # solved again without any penalty for the fitted climate slopes.
 EFFORT_SCALING = 100.0
+
+#: Candidate feature sets of ``classes="cv"``, simplest first; each adds one class to the last.
+FEATURE_SETS = (("linear", "quadratic"), ("linear", "quadratic", "hinge"),
+                ("linear", "quadratic", "product", "hinge"))
+#: What ``classes="cv"`` and ``C="cv"`` score on each held-out fold.
+CV_CRITERION = "held-out AUC of the linear predictor (presences against background), mean over folds"
 
 
 class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
@@ -72,8 +83,14 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
 
     Parameters
     ----------
-    classes : "auto" or sequence of str, default="auto"
-        Feature classes, see :class:`~envelope.models.features.FeatureExpander`.
+    classes : "cv" or sequence of str, default=("linear", "quadratic", "hinge")
+        Feature classes, see :class:`~envelope.models.features.FeatureExpander`. ``"cv"`` chooses
+        among :data:`FEATURE_SETS` (linear + quadratic; + hinge; + product) by the same
+        cross-validation as ``C="cv"`` (same folds, same score): each set gets its best C,
+        and the simplest set whose mean held-out AUC is within one standard error of the
+        best set's is kept (:func:`~envelope.models.selection.one_standard_error_choice`).
+        ``"auto"`` is read as ``"cv"`` (models saved by earlier versions used it for a
+        presence-count rule).
     n_knots : int, default=10
         Hinge knots per variable.
     standardize : bool, default=True
@@ -127,7 +144,13 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     C_ : float
         The C used for the final fit (chosen one for ``C="cv"``).
     cv_results_ : dict or None
-        ``{"C": [...], "mean_auc": [...], "fold_auc": [[...], ...]}`` for ``C="cv"``.
+        ``{"C": [...], "mean_auc": [...], "fold_auc": [[...], ...]}`` of the chosen feature
+        set for ``C="cv"`` or ``classes="cv"``, plus ``"sets"``: the same per candidate set.
+    feature_selection_ : dict
+        ``chosen`` (the classes used), ``rule`` (``"one-standard-error"`` or ``"given"``),
+        ``criterion``, and for ``classes="cv"`` ``scores``: per candidate set its
+        ``classes``, best ``C``, ``mean_auc`` and ``se`` (SD over folds / sqrt(folds)),
+        plus ``best`` and ``threshold`` (best mean AUC minus its standard error).
     feature_names_out_ : ndarray of str
     classes_ : ndarray, ``[0, 1]``
     effort_coef_ : float or None
@@ -141,6 +164,8 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
 
     References
     ----------
+    Breiman, L., Friedman, J.H., Olshen, R.A. & Stone, C.J. (1984) Classification and
+    Regression Trees. Wadsworth (the one-standard-error rule).
     Fithian, W. & Hastie, T. (2013) Finite-sample equivalence in statistical models for
     presence-only data. Annals of Applied Statistics 7: 1917–1939.
     Renner, I.W. & Warton, D.I. (2013) Equivalence of MAXENT and Poisson point process
@@ -164,7 +189,11 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     True
     """
 
-    def __init__(self, *, classes="auto", n_knots=10, standardize=True, penalty="l1",
+    # Defaults of parameters added after model files were first written: estimators loaded
+    # from such files lack the instance attribute, and get_params falls back to these.
+    effort_reference = "max"
+
+    def __init__(self, *, classes=DEFAULT_CLASSES, n_knots=10, standardize=True, penalty="l1",
                  l1_ratio=0.5, C=10.0, Cs=None, n_folds=5, background_weight="auto",
                  solver="auto", max_iter=1000, tol=1e-4, random_state=None, effort_reference="max"):
         self.classes = classes
@@ -196,6 +225,9 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
                 raise InputError(f"C: got {self.C!r}; expected a positive number, inf or 'cv'")
         elif not float(self.C) > 0:
             raise InputError(f"C: got {self.C!r}; expected a positive number, inf or 'cv'")
+        if isinstance(self.classes, str) and self.classes not in ("cv", "auto", *FEATURE_CLASSES):
+            raise InputError(f"classes: got {self.classes!r}; expected 'cv' or a list of "
+                             f"{', '.join(FEATURE_CLASSES)}")
         bw = self.background_weight
         if not (bw == "auto" or (not isinstance(bw, str) and float(bw) > 0)):
             raise InputError(f"background_weight: got {bw!r}; expected 'auto' or a positive number")
@@ -240,33 +272,38 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
             coef, intercept = _newton_polish(F, y, weights, coef, intercept)
         return coef, intercept, int(np.max(model.n_iter_))
 
-    def _fit_once(self, X, y, w, C, log_effort=None):
+    def _fit_once(self, X, y, w, C, log_effort=None, classes=None):
         """One fit; ``log_effort`` (or None) enters as an unpenalised linear term.
 
         Returns (expander, F, weights, bw, coef, intercept, n_iter, effort_coef); the
         intercept is on the raw log-effort scale (``lp = intercept + F @ coef + effort_coef
         * log_effort``), effort_coef is None without effort.
         """
-        expander = FeatureExpander(classes=self.classes, n_knots=self.n_knots,
+        expander = FeatureExpander(classes=self.classes if classes is None else classes, n_knots=self.n_knots,
                                    standardize=self.standardize).fit(X, y, sample_weight=w)
         F = expander.transform(X)
         weights, bw, n_presence = self._weights(y, w)
+        coef, intercept, n_iter, effort_coef = self._solve_with_effort(F, y, w, weights, n_presence, C, log_effort)
+        return expander, F, weights, bw, coef, intercept, n_iter, effort_coef
+
+    def _solve_with_effort(self, F, y, w, weights, n_presence, C, log_effort):
+        """``(coef, intercept, n_iter, effort_coef)`` of one penalised solve; effort (if any) unpenalised."""
         if log_effort is None:
             coef, intercept, n_iter = self._solve(F, y, weights, n_presence, C)
-            return expander, F, weights, bw, coef, intercept, n_iter, None
+            return coef, intercept, n_iter, None
         centre = float(np.average(log_effort, weights=w))
         spread = float(np.sqrt(np.average((log_effort - centre) ** 2, weights=w)))
         if not spread > 0:
             # constant effort cannot be told from the intercept: no effort term
             coef, intercept, n_iter = self._solve(F, y, weights, n_presence, C)
-            return expander, F, weights, bw, coef, intercept, n_iter, 0.0
+            return coef, intercept, n_iter, 0.0
         column = (log_effort - centre) * (EFFORT_SCALING / spread)
         coef_all, intercept, n_iter = self._solve(np.column_stack([F, column]), y, weights, n_presence, C)
         coef = coef_all[:-1]
         effort_coef = float(coef_all[-1] * EFFORT_SCALING / spread)
         intercept, effort_coef = _free_terms_given_slopes(F @ coef, log_effort, y, weights,
                                                           intercept - effort_coef * centre, effort_coef)
-        return expander, F, weights, bw, coef, intercept, n_iter, effort_coef
+        return coef, intercept, n_iter, effort_coef
 
     def fit(self, X, y, sample_weight=None, groups=None, effort=None):
         """Fit to presences (y = 1) and background points (y = 0).
@@ -280,7 +317,7 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         sample_weight : array-like of shape (n_samples,), optional
             Multiplies the presence/background weights (e.g. bias correction).
         groups : array-like of shape (n_samples,), optional
-            Fold ids (spatial blocks) for ``C="cv"``.
+            Fold ids (spatial blocks) for ``C="cv"`` and ``classes="cv"``.
         effort : array-like of shape (n_samples,), optional
             Recording effort (> 0) at every presence and background point. Its log enters
             the linear predictor as one unpenalised linear term, and predictions are made
@@ -293,12 +330,17 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         self._check_params()
         X, y, w = self._validate_fit_input(X, y, sample_weight)
         log_effort = _log_effort(effort, y.shape[0])
-        if self.C == "cv":
-            self.C_, self.cv_results_ = self._choose_C(X, y, w, groups, log_effort)
+        select = isinstance(self.classes, str) and self.classes in ("cv", "auto")
+        classes = None
+        if self.C == "cv" or select:
+            classes, self.C_, self.cv_results_, self.feature_selection_ = self._choose_C(X, y, w, groups, log_effort)
         else:
             self.C_, self.cv_results_ = float(self.C), None
         (self.expander_, F, weights, bw, self.coef_, self.intercept_,
-         self.n_iter_, self.effort_coef_) = self._fit_once(X, y, w, self.C_, log_effort)
+         self.n_iter_, self.effort_coef_) = self._fit_once(X, y, w, self.C_, log_effort, classes)
+        if not select:
+            self.feature_selection_ = {"chosen": list(self.expander_.classes_used_), "rule": "given",
+                                       "criterion": None, "scores": []}
         self.effort_reference_ = None
         self.effort_term_ = 0.0
         if log_effort is not None:
@@ -317,45 +359,69 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
         return self
 
     def _choose_C(self, X, y, w, groups, log_effort=None):
-        Cs = DEFAULT_CS if self.Cs is None else np.asarray(self.Cs, dtype=float)
-        if Cs.ndim != 1 or Cs.size == 0 or not (Cs > 0).all():
-            raise InputError(f"Cs: got {self.Cs!r}; expected a list of positive numbers")
+        """Cross-validate every (feature set, C) pair on the same folds; return the choice.
+
+        Returns ``(classes, C, cv_results, feature_selection)``; ``classes`` is None when
+        the classes were given. Each fold fits the path of every candidate set once
+        (features built once per set and fold and reused for every C; :func:`fold_path`
+        also reuses a path across nested folds). Each set keeps its best C (ties: the
+        smallest, i.e. the strongest penalty); with several candidate sets the
+        one-standard-error rule picks the set.
+        """
+        select = isinstance(self.classes, str) and self.classes in ("cv", "auto")
+        if self.C == "cv":
+            Cs = DEFAULT_CS if self.Cs is None else np.asarray(self.Cs, dtype=float)
+            if Cs.ndim != 1 or Cs.size == 0 or not (Cs > 0).all():
+                raise InputError(f"Cs: got {self.Cs!r}; expected a list of positive numbers")
+        else:
+            Cs = np.array([float(self.C)])
+        sets = FEATURE_SETS if select else (self.classes,)
         if groups is not None:
             groups = np.asarray(groups)
             if groups.shape[0] != y.shape[0]:
                 raise InputError(f"groups: got {groups.shape[0]} fold ids; expected {y.shape[0]} (one per row)")
             n_groups = np.unique(groups).size
             if n_groups < 2:
-                raise InputError("groups: only one fold id; expected at least 2 for C='cv'")
+                raise InputError("groups: only one fold id; expected at least 2 for C='cv' or classes='cv'")
             splits = GroupKFold(n_splits=min(self.n_folds, n_groups)).split(X, y, groups)
         else:
             n_splits = int(min(self.n_folds, np.bincount(y).min()))
             if n_splits < 2:
-                raise InputError("C='cv' needs at least 2 presences and 2 background points")
+                raise InputError("C='cv' and classes='cv' need at least 2 presences and 2 background points")
             splits = StratifiedKFold(n_splits=n_splits, shuffle=True,
                                      random_state=self.random_state).split(X, y)
-        fold_auc = []
+        fold_auc = []  # [fold][set][C]
         for train, test in splits:
             if np.unique(y[test]).size < 2 or np.unique(y[train]).size < 2:
                 continue  # AUC needs both kinds of row in the held-out fold
-            row = []
-            for C in Cs:
-                # held-out rows are scored by the model of the records, effort term included
-                expander, _, _, _, coef, intercept, _, effort_coef = self._fit_once(
-                    X[train], y[train], w[train], C, None if log_effort is None else log_effort[train])
-                lp = intercept + expander.transform(X[test]) @ coef
-                if effort_coef:
-                    lp = lp + effort_coef * log_effort[test]
-                row.append(roc_auc_score(y[test], lp))
-            fold_auc.append(row)
+            # held-out rows are scored by the model of the records, effort term included
+            path = fold_path(self, X[train], y[train], w[train], sets, Cs,
+                             None if log_effort is None else log_effort[train])
+            fold_auc.append([[roc_auc_score(y[test], _held_out_lp(expander, fit, X[test], log_effort, test))
+                              for fit in fits] for expander, fits in path])
         if not fold_auc:
             raise ModelError("C='cv': no fold holds both presences and background; give more groups")
-        mean_auc = np.mean(fold_auc, axis=0)
+        auc = np.asarray(fold_auc, dtype=np.float64)  # (fold, set, C)
+        mean_auc = auc.mean(axis=0)
         # ties go to the smallest C (strongest penalty, simplest model)
         order = np.argsort(Cs, kind="stable")
-        best = int(order[np.flatnonzero(mean_auc[order] >= mean_auc.max() - 1e-12)[0]])
-        return float(Cs[best]), {"C": Cs.tolist(), "mean_auc": mean_auc.tolist(),
-                                 "fold_auc": [list(map(float, r)) for r in fold_auc]}
+        best_c = [int(order[np.flatnonzero(m[order] >= m.max() - 1e-12)[0]]) for m in mean_auc]
+        names = [list(expander.classes_used_) for expander, _ in path]
+        results = {"C": Cs.tolist(), "sets": [{"classes": names[j], "mean_auc": mean_auc[j].tolist(),
+                                               "fold_auc": auc[:, j, :].tolist()} for j in range(len(sets))]}
+        if not select:
+            results.update(mean_auc=mean_auc[0].tolist(), fold_auc=auc[:, 0, :].tolist())
+            return None, float(Cs[best_c[0]]), results, {"chosen": names[0], "rule": "given",
+                                                         "criterion": None, "scores": []}
+        choice = one_standard_error_choice([auc[:, j, c] for j, c in enumerate(best_c)])
+        i = choice["chosen"]
+        results.update(mean_auc=mean_auc[i].tolist(), fold_auc=auc[:, i, :].tolist())
+        selection = {"chosen": names[i], "rule": "one-standard-error", "criterion": CV_CRITERION,
+                     "n_folds": int(auc.shape[0]), "best": names[choice["best"]],
+                     "threshold": choice["threshold"],
+                     "scores": [{"classes": names[j], "C": float(Cs[best_c[j]]), "mean_auc": choice["mean"][j],
+                                 "se": choice["se"][j]} for j in range(len(sets))]}
+        return tuple(names[i]), float(Cs[best_c[i]]), results, selection
 
     # -- prediction ------------------------------------------------------------------
 
@@ -492,3 +558,77 @@ def _newton_polish(F, y, weights, coef, intercept, n_iter=20):
 
 def _weighted_nll(eta, y, weights):
     return float(np.sum(weights * (np.logaddexp(0.0, eta) - y * eta)))
+
+
+# -- the cross-validation path, reused across nested folds ------------------------------
+
+#: Training sets whose fitted paths are kept (least recently used dropped first).
+PATH_CACHE_SIZE = 32
+_PATH_CACHE: OrderedDict = OrderedDict()
+_PATH_CACHE_LOCK = threading.Lock()
+
+
+def _held_out_lp(expander, fit, X_test, log_effort, test):
+    """Linear predictor of held-out rows for one fitted ``(coef, intercept, effort_coef)``."""
+    coef, intercept, effort_coef = fit
+    lp = intercept + expander.transform(X_test) @ coef
+    if effort_coef:
+        lp = lp + effort_coef * log_effort[test]
+    return lp
+
+
+def fold_path(model, X, y, w, sets, Cs, log_effort=None) -> list:
+    """Fit every candidate feature set at every C on one training fold.
+
+    Returns, per set, ``(expander, [(coef, intercept, effort_coef) per C])``; ``log_effort``
+    (or None) enters each fit as the unpenalised effort term. The expander is fitted once
+    per set and its features reused for every C (liblinear has no warm start, so each C
+    is a fresh solve).
+
+    Paths are remembered by the content of the training rows (a hash of ``X``, ``y`` and
+    ``w``) and the model's settings, for the last :data:`PATH_CACHE_SIZE` training sets. In
+    nested spatial CV (outer folds around a model that tunes itself on the remaining
+    folds) the inner training set "all folds except j and k" occurs twice, once inside
+    outer fold j and once inside outer fold k, with the same rows in the same order; it is
+    then fitted once. With ``random_state=None`` nothing is remembered (the solver's
+    coordinate order is then random, so a repeat would not be the same fit).
+    """
+    key = None
+    if model.random_state is not None:
+        h = hashlib.blake2b(digest_size=20)
+        for a in (X, y, w) + (() if log_effort is None else (log_effort,)):
+            a = np.ascontiguousarray(a)
+            h.update(f"{a.dtype.str}{a.shape}".encode())
+            h.update(a.tobytes())
+        params = {k: v for k, v in model.get_params(deep=False).items() if k not in ("classes", "C", "Cs", "n_folds")}
+        h.update(repr((sorted(params.items()), [tuple(s) if not isinstance(s, str) else s for s in sets],
+                       [float(c) for c in Cs])).encode())
+        key = h.hexdigest()
+        with _PATH_CACHE_LOCK:
+            if key in _PATH_CACHE:
+                _PATH_CACHE.move_to_end(key)
+                return _PATH_CACHE[key]
+    weights, _, n_presence = model._weights(y, w)
+    path = []
+    for classes in sets:
+        expander = FeatureExpander(classes=classes, n_knots=model.n_knots,
+                                   standardize=model.standardize).fit(X, y, sample_weight=w)
+        F = expander.transform(X)
+        fits = []
+        for C in Cs:
+            coef, intercept, _, effort_coef = model._solve_with_effort(F, y, w, weights, n_presence, float(C),
+                                                                      log_effort)
+            fits.append((coef, intercept, effort_coef))
+        path.append((expander, fits))
+    if key is not None:
+        with _PATH_CACHE_LOCK:
+            _PATH_CACHE[key] = path
+            while len(_PATH_CACHE) > PATH_CACHE_SIZE:
+                _PATH_CACHE.popitem(last=False)
+    return path
+
+
+def clear_path_cache() -> None:
+    """Forget every remembered cross-validation path (see :func:`fold_path`)."""
+    with _PATH_CACHE_LOCK:
+        _PATH_CACHE.clear()

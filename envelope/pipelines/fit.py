@@ -79,6 +79,7 @@ class FitOptions:
     background_buffer_km: float | None = None
     permutation_repeats: int = 3
     bias_method: str = "auto"           # with a bias layer: "covariate", "weighted" or "auto" (see background.py)
+    features: object = "cv"             # "cv" or a tuple of feature classes (point-process model)
 
 
 def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, mask=None,
@@ -114,10 +115,13 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     from envelope.io.records import read_occurrences
     from envelope.kernels.mess import reference_from_training
     from envelope.kernels.thresholds import choose_threshold
-    from envelope.models import response_curves
+    from envelope.models import feature_classes_report, response_curves
     from envelope.records import clean_occurrences, values_at
 
     opt = options or FitOptions()
+    from envelope.models.features import parse_feature_classes
+
+    features = parse_feature_classes(opt.features, where="--features")
     notes: list[str] = []
     report = progress or (lambda stage, done, total: None)
     if opt.variables:
@@ -186,7 +190,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         raise InputError(f"cv scheme {opt.cv!r} is not known; expected 'block' or 'random'")
 
     def make():
-        return build_estimator(opt.method, opt.seed)
+        return build_estimator(opt.method, opt.seed, features=features)
 
     fit_params = {**_group_params(opt.method, folds), **({} if effort is None else {"effort": effort})}
     per_fold, cv = evaluation.cross_validate(
@@ -199,9 +203,11 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     scores = estimator.predict_proba(X)[:, 1]
     threshold, rule = choose_threshold(opt.threshold_rule, scores[y == 1], scores[y == 0])
 
-    # MESS compares against the whole training sample (presences + background), the same
-    # rows whose range bounds the clamping (Elith, Kearney & Phillips 2010)
-    reference = reference_from_training(X)
+    # MESS compares against the training sample (presences + background), the same rows whose
+    # range bounds the clamping (Elith, Kearney & Phillips 2010), each grid cell counted once
+    cells = np.r_[records.table["row"].to_numpy() * climate.sizes["x"] + records.table["col"].to_numpy(),
+                  background["row"].to_numpy() * climate.sizes["x"] + background["col"].to_numpy()]
+    reference = reference_from_training(X, cells=cells)
     ranges = {n: (float(np.nanmin(X[:, j])), float(np.nanmax(X[:, j]))) for j, n in enumerate(names)}
     pct = np.nanpercentile(X_bg, reference.percentile_levels, axis=0)
     variables_meta = [{"name": n, "units": u, "min": ranges[n][0], "max": ranges[n][1],
@@ -232,6 +238,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         "threshold": {"value": float(threshold), "rule": rule},
         "cv": cv_block,
         "mess_reference": reference.to_dict(),
+        "feature_classes": feature_classes_report(estimator),
         "grid": {"crs": crs.to_string() if crs is not None else None,
                  "resolution": [abs(transform.a), abs(transform.e)],
                  "shape": [climate.sizes["y"], climate.sizes["x"]]},
@@ -247,6 +254,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         "variables": names,
         "threshold": {"value": float(threshold), "rule": rule},
         "cv": cv_block,
+        "feature_classes": feature_classes_report(estimator),
         "records": {"read": int(records.n_read), "kept": int(n_pres), "dropped": dict(records.dropped)},
         "collinear_pairs": collinear_pairs(X_bg, names),
         "permutation_importance": importance,
@@ -259,23 +267,24 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
 
 
 
-def build_estimator(method: str, seed: int = 0):
+def build_estimator(method: str, seed: int = 0, features="cv"):
     """The estimator behind each ``--method`` name, with the pipeline's defaults.
 
-    The point-process model chooses its L1 penalty by cross-validation over the spatial
-    folds it is given (``C="cv"``); the ensemble weights the point-process model, boosted
+    The point-process model chooses its L1 penalty and, unless ``features`` names the
+    classes, its feature classes by cross-validation over the spatial folds it is given
+    (``C="cv"``, ``classes="cv"``); the ensemble weights the point-process model, boosted
     trees and the down-sampled forest by their spatially cross-validated AUC.
     """
     from envelope.models import make_estimator
 
     if method == "pointprocess":
-        return make_estimator("pointprocess", C="cv", random_state=seed)
+        return make_estimator("pointprocess", C="cv", classes=features, random_state=seed)
     if method == "envelope":
         return make_estimator("envelope")
     if method in ("brt", "forest"):
         return make_estimator(method, random_state=seed)
     if method == "ensemble":
-        members = [("pointprocess", build_estimator("pointprocess", seed)),
+        members = [("pointprocess", build_estimator("pointprocess", seed, features)),
                    ("brt", build_estimator("brt", seed)),
                    ("forest", build_estimator("forest", seed))]
         return make_estimator("ensemble", members=members)
@@ -331,7 +340,7 @@ def fit_options_from_study(study, method: str) -> FitOptions:
     return FitOptions(method=method, background=m.background,
                       variables=list(study.climate.variables) if study.climate.variables else None,
                       blocks_km=m.blocks_km, folds=m.folds, cv=m.cv, threshold_rule=m.threshold_rule, seed=m.seed,
-                      bias_method=m.bias_method,
+                      bias_method=m.bias_method, features=m.features,
                       max_uncertainty_m=r.max_uncertainty_m, record_years=r.years, thin_km=r.thin_km or None,
                       x_column=r.x_column, y_column=r.y_column, crs=r.crs)
 

@@ -11,7 +11,7 @@ from dataclasses import dataclass, fields, replace
 from pathlib import Path
 
 from envelope.errors import InputError
-from envelope.models import BIAS_METHODS, COVARIATE_METHODS, METHOD_NAMES
+from envelope.models import BIAS_METHODS, COVARIATE_METHODS, FEATURE_CLASSES, METHOD_NAMES
 from envelope.kernels.dispersal import KERNEL_KINDS
 from envelope.kernels.thresholds import THRESHOLD_RULES
 from envelope.ensemble import DEFAULT_AGREEMENT
@@ -79,6 +79,7 @@ class ModelSection:
     cv: str = "block"
     threshold_rule: str | float = "max-sss"
     seed: int = 0
+    features: str | tuple[str, ...] = "cv"
 
 
 @dataclass(frozen=True)
@@ -323,7 +324,8 @@ _TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispers
 _STUDY = ("name", "question", "species")
 _RECORDS = ("path", "x_column", "y_column", "crs", "max_uncertainty_m", "years", "thin_km")
 _CLIMATE = ("baseline", "variables", "now_year")
-_MODEL = ("methods", "background", "bias", "bias_method", "blocks_km", "folds", "cv", "threshold_rule", "seed")
+_MODEL = ("methods", "background", "bias", "bias_method", "blocks_km", "folds", "cv", "threshold_rule", "seed",
+          "features")
 _SCENARIOS = ("table", "grid", "agreement")
 _HABITAT = ("path", "classes", "align")
 _DISPERSAL = ("kernel", "mean_distance_km", "shape", "step_years", "rate", "persistence_years",
@@ -417,6 +419,12 @@ def _model(c: _Checker, doc) -> ModelSection:
         if isinstance(rule, bool) or not isinstance(rule, (int, float)) or not 0 <= rule <= 1:
             c.bad("model.threshold_rule", expected, rule)
         rule = float(rule)
+    features = t.get("features", "cv")
+    if isinstance(features, str):
+        c.string("model.features", features, choices=("cv",))
+    else:
+        features = c.string_list("model.features", features, choices=FEATURE_CLASSES)
+        features = tuple(f for f in FEATURE_CLASSES if f in features)
     return ModelSection(
         methods=methods,
         background=c.number("model.background", t.get("background", 10_000), integer=True, ge=100),
@@ -427,6 +435,7 @@ def _model(c: _Checker, doc) -> ModelSection:
         cv=c.string("model.cv", t.get("cv", "block"), choices=CV_SCHEMES),
         threshold_rule=rule,
         seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0),
+        features=features,
     )
 
 
@@ -586,7 +595,7 @@ def load_study(path) -> Study:
     -------
     Study
         Frozen settings, one dataclass per table; ``Study.scenarios`` lists the
-        :class:`envelope.scenarios.Scenario` rows; ``Study.to_dict()`` gives them as JSON.
+        :class:`envelope.io.tables.Scenario` rows; ``Study.to_dict()`` gives them as JSON.
 
     Raises
     ------

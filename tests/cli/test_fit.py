@@ -41,6 +41,7 @@ def test_fit_writes_model_summary_and_folds(tmp_path):
     (["--variables", "bio1,nope"], "'nope'"),
     (["--threshold-rule", "best"], "not a rule"),
     (["--threshold-rule", "1.5"], "0..1"),
+    (["--features", "linear,cubic"], "--features"),
 ])
 def test_bad_input_exit_2_and_no_model(tmp_path, extra, phrase):
     out = tmp_path / "m.envm"
@@ -113,3 +114,19 @@ def test_bias_file_recorded_in_provenance(tmp_path):
     inputs = read_manifest(out)["metadata"]["provenance"]["inputs"]
     # Source: hashlib (Python standard library) computes the reference digest
     assert inputs[str(bias)] == hashlib.sha256(bias.read_bytes()).hexdigest()
+
+
+def test_forced_feature_classes_reach_the_model_and_inspect(tmp_path):
+    # Common practice, no source: --features fixes the point-process classes (no CV choice among sets)
+    from envelope.io.modelfile import load_model
+
+    out = tmp_path / "m.envm"
+    args = [a if a != "envelope" else "pointprocess" for a in BASE]
+    result = CliRunner().invoke(cli, args + ["--features", "quadratic,linear", "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    assert "features: linear, quadratic (given)" in result.output
+    model, meta = load_model(out)
+    assert model.expander_.classes_used_ == ("linear", "quadratic")
+    assert meta["feature_classes"]["rule"] == "given" and meta["feature_classes"]["chosen"] == ["linear", "quadratic"]
+    shown = CliRunner().invoke(cli, ["inspect", str(out)])
+    assert "Features     linear, quadratic (given)" in shown.output

@@ -66,3 +66,26 @@ def test_text_shows_flat_cv_metrics_and_software_once(tmp_path):
     assert re.search(r"TSS\s+0\.5 ± 0\.1", result.output)
     assert result.output.count("software") == 1
     assert "gdal-test 9.9" in result.output and "scikit-learn" in result.output and "xarray" in result.output
+
+
+
+def test_text_shows_feature_classes_and_their_cv_scores(tmp_path):
+    # Common practice, no source: the chosen set, the rule and every candidate's score are shown
+    from envelope.models import PointProcessModel, feature_classes_report
+
+    rng = np.random.default_rng(0)
+    X = np.r_[rng.normal(0.5, 0.5, (40, 1)), rng.normal(0, 1, (300, 1))]
+    y = np.r_[np.ones(40), np.zeros(300)]
+    model = PointProcessModel(classes="cv", C=10.0, random_state=0).fit(X, y)
+    fc = feature_classes_report(model)
+    path = save_model(tmp_path / "pp.envm", model, {**META, "feature_classes": fc})
+    result = CliRunner().invoke(cli, ["inspect", str(path)])
+    assert result.exit_code == 0, result.output
+    chosen = ", ".join(fc["chosen"])
+    assert f"Features     {chosen} (chosen by cross-validation, one-standard-error rule)" in result.output
+    assert result.output.count("AUC ") == 3 and result.output.count("<- chosen") == 1
+    data = json.loads(CliRunner().invoke(cli, ["inspect", str(path), "--json"]).output)
+    assert data["feature_classes"]["chosen"] == fc["chosen"] and len(data["feature_classes"]["scores"]) == 3
+    # a point-process file without the record (written before it existed) says so
+    old = save_model(tmp_path / "old.envm", model, META)
+    assert "Features     not recorded" in CliRunner().invoke(cli, ["inspect", str(old)]).output

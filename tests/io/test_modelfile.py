@@ -156,3 +156,47 @@ def test_untrusted_callable_refused_at_save(tmp_path):
     with pytest.raises(ModelError, match="cannot store type"):
         save_model(tmp_path / "e.envm", ens, META)
     assert not (tmp_path / "e.envm").exists()
+
+
+OLD_FILE = __import__("pathlib").Path(__file__).parent / "data" / "pointprocess_v1_auto.envm"
+
+
+def test_model_file_from_before_cv_feature_choice_still_loads_and_projects():
+    # Common practice, no source: a file written by the previous release (classes="auto", no
+    # feature_selection_, no metadata feature_classes; made with the code of commit 351e82f)
+    # loads, predicts what it predicted then, compiles to the fast table, and is described.
+    from envelope.kernels.predict import compile_pointprocess, suitability_table
+    from envelope.io.modelfile import model_summary
+    from envelope.models import feature_classes_report
+
+    model, meta = load_model(OLD_FILE)
+    assert model.classes == "auto" and model.expander_.classes_used_ == ("linear", "quadratic", "hinge")
+    P = np.array([[0.0, 0.0], [0.5, 0.5], [-1.0, 2.0], [1.5, -0.5]])
+    # Source: predict_proba of the previous release on the same file (printed when it was written)
+    expected = [0.70495875, 0.92507414, 0.20276821, 0.49519101]
+    np.testing.assert_allclose(model.predict_proba(P)[:, 1], expected, atol=1e-8)
+    ex = model.expander_
+    table = compile_pointprocess(ex.mean_, ex.scale_, ex.knots_, ex.classes_used_, model.coef_,
+                                 model.intercept_ + model.offset_)
+    np.testing.assert_allclose(suitability_table(table, P.T), expected, atol=1e-8)
+    assert feature_classes_report(model) == {"chosen": ["linear", "quadratic", "hinge"], "rule": "not recorded",
+                                             "criterion": None, "scores": []}
+    assert model_summary(read_manifest(OLD_FILE))["feature_classes"] is None
+    # refitting the old settings reads "auto" as the cross-validated choice
+    X, y = _data()
+    refit = PointProcessModel(**{**model.get_params(), "Cs": [3.0, 30.0]}).fit(X, y)
+    assert refit.feature_selection_["rule"] == "one-standard-error"
+
+
+def test_feature_classes_travel_in_the_manifest(tmp_path):
+    # Common practice, no source: the fit's record of the chosen classes is kept and summarised
+    from envelope.io.modelfile import model_summary
+    from envelope.models import feature_classes_report
+
+    X, y = _data()
+    model = PointProcessModel(classes="cv", C=10.0, random_state=0).fit(X, y)
+    path = save_model(tmp_path / "m.envm", model, {**META, "feature_classes": feature_classes_report(model)})
+    fc = model_summary(read_manifest(path))["feature_classes"]
+    assert fc["rule"] == "one-standard-error" and fc["chosen"] == list(model.expander_.classes_used_)
+    assert [s["classes"] for s in fc["scores"]] == [["linear", "quadratic"], ["linear", "quadratic", "hinge"],
+                                                    ["linear", "quadratic", "product", "hinge"]]

@@ -155,3 +155,16 @@ def test_mess_cells_variable_major_float32():
     np.testing.assert_array_equal(v32, v64)
     np.testing.assert_array_equal(i32, i64)
     assert np.isnan(v32[7]) and i32[7] == -1
+
+
+def test_reference_counts_each_cell_once():
+    # Analytic: rows sharing a cell id are one cell; the reference equals that of the distinct cells
+    X = np.array([[1.0, 10.0], [2.0, 20.0], [3.0, 30.0], [2.0, 20.0], [4.0, 40.0]])
+    cells = np.array([7, 3, 9, 3, 1])  # the second and fourth rows are the same cell
+    ref = reference_from_training(X, cells=cells)
+    assert ref.n_source == 4
+    np.testing.assert_array_equal(ref.values, reference_from_training(X[[0, 1, 2, 4]]).values)
+    # Source: numpy.percentile of the distinct rows (the doubled row would move the median to 2)
+    np.testing.assert_allclose(ref.percentiles[5], np.percentile(X[[0, 1, 2, 4]], 50, axis=0))
+    with pytest.raises(InputError, match="cells"):
+        reference_from_training(X, cells=cells[:3])

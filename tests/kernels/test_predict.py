@@ -24,8 +24,8 @@ def _table(model):
 
 
 @pytest.mark.parametrize("classes", [("linear",), ("linear", "quadratic"), ("hinge",),
-                                     ("linear", "product"),
-                                     ("linear", "quadratic", "product", "hinge")])
+                                     ("linear", "product"), ("linear", "quadratic", "hinge"),
+                                     ("linear", "quadratic", "product", "hinge"), "cv"])
 def test_table_equals_predict_proba(classes):
     # Source: the estimator's own predict_proba (scikit-learn-based reference implementation)
     model, X = _fit(classes)

@@ -52,3 +52,19 @@ def test_score_func_is_used():
     ens = SkillWeightedEnsemble(members=MEMBERS[:2], score_func=score).fit(X, y)
     assert calls == ["PercentileEnvelope", "PointProcessModel"]
     np.testing.assert_allclose(ens.weights_, [0.3 / 0.75, 0.45 / 0.75])
+
+
+def test_feature_classes_report_names_the_point_process_member():
+    # Common practice, no source: an ensemble reports its point-process member's feature choice;
+    # a model without feature classes reports none
+    from envelope.models import feature_classes_report
+
+    X, y = _data()
+    ens = SkillWeightedEnsemble(members=[("envelope", PercentileEnvelope()),
+                                         ("pp", PointProcessModel(classes="cv", C=10.0, random_state=0))],
+                                weights_from={"envelope": 0.75, "pp": 0.9}).fit(X, y)
+    report = feature_classes_report(ens)
+    pp = dict(ens.members_)["pp"]
+    assert report["member"] == "pp" and report["chosen"] == list(pp.expander_.classes_used_)
+    assert report["rule"] == "one-standard-error" and len(report["scores"]) == 3
+    assert feature_classes_report(dict(ens.members_)["envelope"]) is None

@@ -1,11 +1,11 @@
-"""FeatureExpander: hinge values by hand, names, standardisation, the auto rule."""
+"""FeatureExpander: hinge values by hand, names, standardisation, class names."""
 
 import numpy as np
 import pandas as pd
 import pytest
 
 from envelope.errors import InputError
-from envelope.models.features import FeatureExpander, auto_feature_classes
+from envelope.models.features import FeatureExpander, parse_feature_classes
 
 
 def test_hinge_values_against_hand_computation():
@@ -53,18 +53,24 @@ def test_transform_in_chunks_equals_whole():
     assert whole.shape[1] == len(fx.get_feature_names_out())
 
 
-@pytest.mark.parametrize("n, expected", [
-    (10, ("linear", "quadratic")),
-    (29, ("linear", "quadratic")),
-    (30, ("linear", "quadratic", "hinge")),
-    (100, ("linear", "quadratic", "product", "hinge")),
-])
-def test_auto_rule(n, expected):
-    # Common practice, no source: our documented bias/variance rule (30 and 100 presences)
-    assert auto_feature_classes(n) == expected
-    X = np.arange(2 * (n + 50), dtype=float).reshape(-1, 2)
-    y = np.r_[np.ones(n), np.zeros(50)]
-    assert FeatureExpander().fit(X, y).classes_used_ == expected
+def test_default_classes_and_no_presence_count_rule():
+    # Common practice, no source: the default classes do not depend on how many presences there are
+    X = np.arange(400, dtype=float).reshape(-1, 2)
+    for n in (10, 50, 150):
+        y = np.r_[np.ones(n), np.zeros(200 - n)]
+        assert FeatureExpander().fit(X, y).classes_used_ == ("linear", "quadratic", "hinge")
+    with pytest.raises(InputError, match="classes='cv'"):
+        FeatureExpander(classes="auto").fit(X)
+
+
+def test_parse_feature_classes():
+    # Common practice, no source: readable comma lists in the canonical column order; errors name the option
+    assert parse_feature_classes("cv") == "cv"
+    assert parse_feature_classes("hinge,linear, quadratic") == ("linear", "quadratic", "hinge")
+    assert parse_feature_classes(["product", "linear"]) == ("linear", "product")
+    for bad in ("linear,cubic", "", "linear,linear", 3):
+        with pytest.raises(InputError, match="--features"):
+            parse_feature_classes(bad, where="--features")
 
 
 def test_nan_and_bad_class_refused():

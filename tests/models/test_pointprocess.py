@@ -219,3 +219,81 @@ def test_effort_errors_name_the_parameter():
     assert plain.effort_coef_ is None and plain.effort_term_ == 0.0
     with pytest.raises(InputError, match="effort: given, but the model was fitted without effort"):
         plain.linear_predictor(X[:2], effort=effort[:2])
+
+
+# --------------------------------------------------------------------------- feature classes by CV
+
+def _ipp_species(log_intensity, seed=0, n_cells=20000, n_presence=200, n_background=1500):
+    """Presences drawn with probability proportional to exp(log_intensity) (an IPP), uniform background."""
+    rng = np.random.default_rng(seed)
+    cells = rng.uniform(-2, 2, size=(n_cells, 2))
+    eta = log_intensity(cells)
+    p = np.exp(eta - eta.max())
+    presences = cells[rng.choice(n_cells, n_presence, replace=False, p=p / p.sum())]
+    background = cells[rng.choice(n_cells, n_background, replace=False)]
+    X = np.r_[presences, background]
+    y = np.r_[np.ones(n_presence), np.zeros(n_background)]
+    return X, y, rng.integers(0, 5, y.size)
+
+
+def _choose(log_intensity):
+    X, y, groups = _ipp_species(log_intensity)
+    return PointProcessModel(classes="cv", C="cv", Cs=[3.0, 30.0, 300.0], random_state=0).fit(X, y, groups=groups)
+
+
+def test_cv_keeps_linear_quadratic_for_a_log_linear_truth():
+    # Analytic: log-intensity 1.5 a - 0.8 b is exactly representable by the linear features, so the
+    # richer sets cannot beat linear + quadratic by more than one standard error (one-SE rule:
+    # Hastie, Tibshirani & Friedman 2009 §7.10).
+    m = _choose(lambda c: 1.5 * c[:, 0] - 0.8 * c[:, 1])
+    fs = m.feature_selection_
+    assert fs["chosen"] == ["linear", "quadratic"] and fs["rule"] == "one-standard-error"
+    assert m.expander_.classes_used_ == ("linear", "quadratic")
+    assert [s["classes"] for s in fs["scores"]][0] == ["linear", "quadratic"] and len(fs["scores"]) == 3
+
+
+def test_cv_adds_hinges_for_a_bimodal_truth():
+    # Analytic: log-intensity -3 | |a| - 1 | peaks at a = -1 and a = +1; no quadratic in a ranks
+    # cells that way (a quadratic is monotone on either side of one vertex), piecewise-linear hinges can.
+    fs = _choose(lambda c: -3.0 * np.abs(np.abs(c[:, 0]) - 1.0)).feature_selection_
+    assert fs["chosen"] == ["linear", "quadratic", "hinge"]
+    lq, lqh = fs["scores"][0], fs["scores"][1]
+    assert lqh["mean_auc"] - lqh["se"] > lq["mean_auc"]
+
+
+def test_cv_adds_products_for_an_interaction_truth():
+    # Analytic: log-intensity 1.5 a b (a saddle) is not a sum of functions of a and of b, so only the
+    # set with product features can represent it.
+    fs = _choose(lambda c: 1.5 * c[:, 0] * c[:, 1]).feature_selection_
+    assert fs["chosen"] == ["linear", "quadratic", "product", "hinge"]
+    assert fs["best"] == fs["chosen"] and fs["threshold"] == pytest.approx(
+        fs["scores"][2]["mean_auc"] - fs["scores"][2]["se"])
+
+
+def test_forced_classes_skip_the_choice_and_match_given_set():
+    # Common practice, no source: given classes are used as given; C is still tuned on the folds
+    X, y, groups = _ipp_species(lambda c: -3.0 * np.abs(np.abs(c[:, 0]) - 1.0))
+    m = PointProcessModel(classes=("quadratic", "linear"), C="cv", Cs=[3.0, 30.0], random_state=0).fit(
+        X, y, groups=groups)
+    assert m.feature_selection_ == {"chosen": ["linear", "quadratic"], "rule": "given", "criterion": None,
+                                    "scores": []}
+    assert m.expander_.classes_used_ == ("linear", "quadratic") and m.C_ in (3.0, 30.0)
+    assert [s["classes"] for s in m.cv_results_["sets"]] == [["linear", "quadratic"]]
+    fixed = PointProcessModel(classes="hinge", C=10.0).fit(X, y)
+    assert fixed.feature_selection_["chosen"] == ["hinge"] and fixed.cv_results_ is None
+    with pytest.raises(InputError, match="classes"):
+        PointProcessModel(classes="cubic").fit(X, y)
+
+
+def test_path_reuse_gives_the_same_choice():
+    # Common practice, no source: remembering a fold's path must not change any result
+    from envelope.models import pointprocess
+
+    X, y, groups = _ipp_species(lambda c: 1.5 * c[:, 0] * c[:, 1], n_presence=120, n_background=800)
+    kw = dict(classes="cv", C="cv", Cs=[3.0, 30.0], random_state=0)
+    pointprocess.clear_path_cache()
+    first = PointProcessModel(**kw).fit(X, y, groups=groups)
+    again = PointProcessModel(**kw).fit(X, y, groups=groups)  # every fold path now comes from memory
+    pointprocess.clear_path_cache()
+    assert again.cv_results_ == first.cv_results_
+    np.testing.assert_array_equal(again.coef_, first.coef_)

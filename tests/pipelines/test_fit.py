@@ -155,3 +155,39 @@ def test_bias_layer_counts_when_every_cell_is_background(tmp_path, stack):
     s_plain = plain.estimator.predict_proba(X)[:, 1]
     s_weighted = weighted.estimator.predict_proba(X)[:, 1]
     assert np.abs(s_plain - s_weighted).mean() > 0.02
+
+
+def test_mess_reference_holds_each_training_cell_once(tmp_path):
+    # Analytic: with the background asking for every cell of a 20 x 15 grid, every presence cell is
+    # also a background cell, so the training cells are exactly the 300 grid cells and the MESS
+    # reference is their climate, each cell once (presences + background de-duplicated by cell).
+    from tests.conftest import make_stack
+
+    grid = make_stack(nx=20, ny=15)
+    rows, cols = np.arange(0, 15, 2), np.arange(1, 20, 3)[:8]
+    lons, lats = grid["x"].values[cols[: rows.size]], grid["y"].values[rows[: cols.size]]
+    p = _records(tmp_path, lons, lats)
+    result = fit_model(p, grid, options=FitOptions(method="envelope", background=1000, folds=2,
+                                                   cv="random", permutation_repeats=1))
+    ref = result.metadata["mess_reference"]
+    assert result.summary["n_background"] == 300 and result.summary["n_presences"] == min(rows.size, cols.size)
+    assert ref["n_source"] == 300
+    every_cell = grid.values.reshape(2, -1)
+    for j in range(2):
+        np.testing.assert_array_equal(ref["values"][j], np.sort(every_cell[j]))
+
+
+def test_feature_classes_chosen_by_the_spatial_cv_are_reported(fitted):
+    # Common practice, no source: the one-SE choice (Hastie, Tibshirani & Friedman 2009 §7.10) is
+    # recorded in the summary and the model file, and is the set the final model uses
+    result = fitted["pointprocess"]
+    fc = result.summary["feature_classes"]
+    assert fc == result.metadata["feature_classes"]
+    assert fc["rule"] == "one-standard-error" and "AUC" in fc["criterion"]
+    assert fc["chosen"] == list(result.estimator.expander_.classes_used_)
+    assert [len(s["classes"]) for s in fc["scores"]] == [2, 3, 4]
+    chosen = next(s for s in fc["scores"] if s["classes"] == fc["chosen"])
+    assert chosen["mean_auc"] >= fc["threshold"]
+    simpler = [s for s in fc["scores"] if len(s["classes"]) < len(fc["chosen"])]
+    assert all(s["mean_auc"] < fc["threshold"] for s in simpler)
+    assert fitted["envelope"].summary["feature_classes"] is None

@@ -90,7 +90,7 @@ def test_minimal_study_fills_defaults(folder):
     study = load_study(write(folder, MINIMAL))
     # Common practice, no source: the defaults documented in docs/study-file.md.
     assert study.model.methods == ("pointprocess",) and study.model.folds == 5
-    assert study.model.threshold_rule == "max-sss"
+    assert study.model.threshold_rule == "max-sss" and study.model.features == "cv"
     assert study.model.bias is None and study.model.bias_method == "auto"
     assert study.scenario_set.agreement == pytest.approx(2 / 3)
     assert study.outputs.format == "tif" and study.outputs.reach is True
@@ -152,6 +152,9 @@ def test_reach_off_makes_habitat_and_dispersal_optional(folder):
      r"model.bias_method: expected one of 'auto', 'covariate', 'weighted', got 'covariates' \(did you mean 'covariate'\?\)"),
     ("[habitat]", "[model]\nmethods = ['pointprocess', 'brt']\nbias = 'now.tif'\nbias_method = 'covariate'\n\n[habitat]",
      r"model.bias_method: 'covariate' works with the point-process model only, but methods include 'brt'"),
+    ("[habitat]", "[model]\nfeatures = 'lqh'\n\n[habitat]", r"model.features: expected one of 'cv', got 'lqh'"),
+    ("[habitat]", "[model]\nfeatures = ['linear', 'cubic']\n\n[habitat]",
+     r"model.features\[2\]: expected one of 'linear', 'quadratic', 'product', 'hinge'"),
     ("[habitat]", "[outputs]\nformat = 'png'\n\n[habitat]", r"outputs.format: expected one of 'tif', 'nc', got 'png'"),
     ("[habitat]", "[outputs]\nmess = 1\n\n[habitat]", r"outputs.mess: expected true or false, got 1 \(int\)"),
     ('baseline = "now.tif"', 'baseline = "now.tif"\nnow_year = 2060',
@@ -277,3 +280,11 @@ def test_bias_method_key_is_read(folder):
     study = load_study(write(folder, text))
     assert study.model.bias == folder / "now.tif" and study.model.bias_method == "weighted"
     assert study.to_dict()["model"]["bias_method"] == "weighted"
+
+
+def test_model_features_key(folder):
+    # Common practice, no source: fixed classes are read in the canonical column order
+    study = load_study(write(folder, edited("[habitat]", "[model]\nfeatures = ['hinge', 'linear']\n\n[habitat]")))
+    assert study.model.features == ("linear", "hinge")
+    assert study.to_dict()["model"]["features"] == ["linear", "hinge"]
+
