@@ -58,7 +58,7 @@ def _decode(value):
         return value
 
 
-def _encode(value) -> str:
+def encode_tag(value) -> str:
     return value if isinstance(value, str) else json.dumps(value, default=str)
 
 

@@ -16,7 +16,7 @@ import xarray as xr
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.blocks import WindowWriter
-from envelope.io.rasters import GEOTIFF_SUFFIXES, _encode
+from envelope.io.rasters import GEOTIFF_SUFFIXES, encode_tag
 
 __all__ = ["DEFLATE_LEVEL", "WRITE_CACHE_MB", "RasterOutput", "write_raster", "write_rasters"]
 
@@ -113,7 +113,7 @@ def _prepare(output: RasterOutput, overwrite: bool) -> _Prepared:
 
 def _all_tags(prep: _Prepared, also_values) -> dict:
     tags = prep.tags(also_values) if callable(prep.tags) else prep.tags
-    out = {k: _encode(v) for k, v in (tags or {}).items()}
+    out = {k: encode_tag(v) for k, v in (tags or {}).items()}
     if prep.categories is not None:
         out["categories"] = json.dumps({str(k): v for k, v in dict(prep.categories).items()})
     return out

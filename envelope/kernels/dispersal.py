@@ -80,7 +80,7 @@ def _check_tolerance(tail_tolerance):
     return tol
 
 
-def _params(kind, mean_km, shape):
+def kernel_parameters(kind, mean_km, shape):
     kind = _check_kind(kind)
     mean = _check_mean(mean_km)
     b = _check_shape(kind, shape)
@@ -126,7 +126,7 @@ def kernel_scale(kind, mean_km, shape=None):
     >>> kernel_scale("exponential", 6.0)
     3.0
     """
-    return _params(kind, mean_km, shape)[1]
+    return kernel_parameters(kind, mean_km, shape)[1]
 
 
 def kernel_mean(kind, scale_km, shape=None):
@@ -205,7 +205,7 @@ def kernel_density(kind, r, mean_km, shape=None):
     ----------
     Nathan et al. (2012); Clark et al. (1999), see :func:`kernel_scale`.
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     return _density(kind, _check_r(r), a, b)
 
 
@@ -216,7 +216,7 @@ def kernel_survival(kind, R, mean_km, shape=None):
     ----------
     Nathan et al. (2012), see :func:`kernel_scale`.
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     return _survival(kind, _check_r(R, "R"), a, b)
 
 
@@ -231,7 +231,7 @@ def truncation_radius_km(kind, mean_km, shape=None, tail_tolerance=1e-6):
     ----------
     Corless, R.M. et al. (1996) On the Lambert W function. Adv. Comput. Math. 5: 329-359.
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     tol = _check_tolerance(tail_tolerance)
     if kind == "exponential":
         return a * float(-1.0 - special.lambertw(-tol / math.e, k=-1).real)
@@ -259,7 +259,7 @@ def sample_distances(kind, n, rng, mean_km, shape=None):
     ----------
     Nathan et al. (2012), see :func:`kernel_scale`; REFERENCES item 7 (sampling hint).
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     if kind == "exponential":
         return rng.gamma(2.0, a, size=n)
     if kind == "gaussian":
@@ -327,7 +327,7 @@ def integrate_cells(kind, mean_km, shape=None, *, x0, x1, y0, y1):
     Polar reduction of the area integral of a radial density; Gauss-Legendre quadrature
     (Davis, P.J. & Rabinowitz, P. (1984) Methods of Numerical Integration, 2nd ed.).
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     return _integrate_rectangles(kind, a, b, x0, x1, y0, y1)
 
 
@@ -383,7 +383,7 @@ def discretise_kernel(kind, mean_km, shape=None, *, cell_dx_km, cell_dy_km, tail
     >>> w.shape, round(float(w.sum()), 12)
     ((17, 17), 1.0)
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     tol = _check_tolerance(tail_tolerance)
     dx, dy = float(cell_dx_km), float(cell_dy_km)
     for name, v in (("cell_dx_km", dx), ("cell_dy_km", dy)):
@@ -471,7 +471,7 @@ def rectangle_tail_mass(kind, mean_km, shape=None, *, half_width_km, half_height
     Nathan et al. (2012), see :func:`kernel_scale`; for the Gaussian the value is
     1 - erf(W/a) erf(H/a) (independent axes with SD a/sqrt 2).
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     w, h = float(half_width_km), float(half_height_km)
     for name, v in (("half_width_km", w), ("half_height_km", h)):
         if not (math.isfinite(v) and v > 0):

@@ -22,7 +22,7 @@ __all__ = [
 ]
 
 
-def _scores(values, name: str, *, allow_empty: bool = False) -> np.ndarray:
+def checked_scores(values, name: str, *, allow_empty: bool = False) -> np.ndarray:
     """1-D float64 copy of ``values``; refuses NaN/inf and (unless allowed) an empty set."""
     arr = np.asarray(values, dtype=np.float64).ravel()
     if arr.size == 0 and not allow_empty:
@@ -62,8 +62,8 @@ def auc(presence_scores, background_scores) -> float:
     >>> auc([0.9, 0.5], [0.5, 0.1])
     0.875
     """
-    p = _scores(presence_scores, "presence_scores")
-    b = _scores(background_scores, "background_scores")
+    p = checked_scores(presence_scores, "presence_scores")
+    b = checked_scores(background_scores, "background_scores")
     ranks = stats.rankdata(np.concatenate([p, b]), method="average")
     # Mann–Whitney U of the presences (Hanley & McNeil 1982, eq. 1 via ranks)
     u = ranks[: p.size].sum() - p.size * (p.size + 1) / 2.0
@@ -84,8 +84,8 @@ def roc_points(presence_scores, background_scores):
     ----------
     Hanley, J.A. & McNeil, B.J. (1982) Radiology 143: 29–36 (Table I and Fig. 3).
     """
-    p = np.sort(_scores(presence_scores, "presence_scores"))
-    b = np.sort(_scores(background_scores, "background_scores"))
+    p = np.sort(checked_scores(presence_scores, "presence_scores"))
+    b = np.sort(checked_scores(background_scores, "background_scores"))
     t = np.unique(np.concatenate([p, b]))[::-1]
     tpr = (p.size - np.searchsorted(p, t, side="left")) / p.size
     fpr = (b.size - np.searchsorted(b, t, side="left")) / b.size
@@ -105,8 +105,8 @@ def hanley_mcneil_q(presence_scores, background_scores) -> tuple[float, float]:
     ----------
     Hanley, J.A. & McNeil, B.J. (1982) Radiology 143: 29–36 (definitions of Q1, Q2).
     """
-    p = np.sort(_scores(presence_scores, "presence_scores"))
-    b = np.sort(_scores(background_scores, "background_scores"))
+    p = np.sort(checked_scores(presence_scores, "presence_scores"))
+    b = np.sort(checked_scores(background_scores, "background_scores"))
 
     def _both_above(high, low):
         # per low record: g higher and e tied values among `high` (sorted); over independent
@@ -165,8 +165,8 @@ def confusion(presence_scores, background_scores, threshold: float, *, inclusive
     Allouche, O., Tsoar, A. & Kadmon, R. (2006) Assessing the accuracy of species distribution
     models: prevalence, kappa and the true skill statistic (TSS). J. Appl. Ecol. 43: 1223–1232.
     """
-    p = _scores(presence_scores, "presence_scores")
-    bg = _scores(background_scores, "background_scores")
+    p = checked_scores(presence_scores, "presence_scores")
+    bg = checked_scores(background_scores, "background_scores")
     t = float(threshold)
     a = int(np.count_nonzero(p >= t if inclusive else p > t))
     b = int(np.count_nonzero(bg >= t if inclusive else bg > t))
@@ -262,8 +262,8 @@ def boyce_index(presence_scores, background_scores, *, window=None, n_windows: i
     Boyce, M.S., Vernier, P.R., Nielsen, S.E. & Schmiegelow, F.K.A. (2002) Evaluating resource
     selection functions. Ecol. Model. 157: 281–300.
     """
-    p = np.sort(_scores(presence_scores, "presence_scores"))
-    b = np.sort(_scores(background_scores, "background_scores"))
+    p = np.sort(checked_scores(presence_scores, "presence_scores"))
+    b = np.sort(checked_scores(background_scores, "background_scores"))
     n_windows = int(n_windows)
     if n_windows < 2:
         raise InputError(f"n_windows: {n_windows}; expected at least 2")
@@ -306,6 +306,6 @@ def omission_rate(test_presence_scores, threshold: float, *, inclusive: bool = T
     ----------
     Pearson, R.G. et al. (2007) J. Biogeogr. 34: 102–117 (omission at training-presence thresholds).
     """
-    p = _scores(test_presence_scores, "test_presence_scores")
+    p = checked_scores(test_presence_scores, "test_presence_scores")
     t = float(threshold)
     return float(np.count_nonzero(p < t if inclusive else p <= t) / p.size)

@@ -9,7 +9,7 @@ import numpy as np
 from scipy import optimize, special
 
 from envelope.errors import InputError
-from envelope.kernels.dispersal import _params
+from envelope.kernels.dispersal import kernel_parameters
 
 __all__ = [
     "SpreadSpeed",
@@ -62,7 +62,7 @@ def marginal_mgf(kind, s, mean_km, shape=None):
     invading organisms. Ecology 77: 2027-2042. REFERENCES item 8 (2-D exponential marginal,
     verified by a double integral).
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     s = np.asarray(s, dtype=float)
     if kind == "gaussian":
         return np.exp(a * a * s * s / 4.0)
@@ -127,7 +127,7 @@ def linear_spread_speed(kind, growth_R0, mean_km, shape=None):
     >>> round(linear_spread_speed("gaussian", math.e, math.sqrt(math.pi / 2)).speed, 7)  # sigma = 1
     1.4142136
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     r0 = float(growth_R0)
     if not (math.isfinite(r0) and r0 > 1.0):
         raise InputError(f"growth_R0 must be > 1 for the population to spread, got {growth_R0!r}")
@@ -166,7 +166,7 @@ def colonisation_spread_speed(kind, rate, mean_km, shape=None):
     Lui, R. (1989) Biological growth and spread modeled by systems of recursions. I.
     Mathematical theory. Math. Biosci. 93: 269-295 (linear determinacy).
     """
-    kind, a, b = _params(kind, mean_km, shape)
+    kind, a, b = kernel_parameters(kind, mean_km, shape)
     rate = float(rate)
     if not (math.isfinite(rate) and rate > 0):
         raise InputError(f"--rate must be > 0, got {rate!r}")

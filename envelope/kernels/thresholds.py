@@ -8,7 +8,7 @@ import numbers
 import numpy as np
 
 from envelope.errors import InputError
-from envelope.kernels.metrics import _scores
+from envelope.kernels.metrics import checked_scores
 
 __all__ = [
     "THRESHOLD_RULES",
@@ -47,8 +47,8 @@ def max_sss(presence_scores, background_scores) -> float:
     >>> max_sss([0.9, 0.8, 0.3], [0.1, 0.2, 0.85])
     0.3
     """
-    p = np.sort(_scores(presence_scores, "presence_scores"))
-    b = np.sort(_scores(background_scores, "background_scores"))
+    p = np.sort(checked_scores(presence_scores, "presence_scores"))
+    b = np.sort(checked_scores(background_scores, "background_scores"))
     t = np.unique(np.concatenate([p, b]))  # ascending, so argmax returns the lowest t on ties
     # sens + spec scaled by n_p * n_b: exact integers, so equal sums tie exactly (no float noise)
     n_above = p.size - np.searchsorted(p, t, side="left")
@@ -67,7 +67,7 @@ def min_training_presence(presence_scores) -> float:
     Pearson, R.G., Raxworthy, C.J., Nakamura, M. & Peterson, A.T. (2007) Predicting species
     distributions from small numbers of occurrence records. J. Biogeogr. 34: 102–117.
     """
-    return float(np.min(_scores(presence_scores, "presence_scores")))
+    return float(np.min(checked_scores(presence_scores, "presence_scores")))
 
 
 def percentile_training_presence(scores, q: float = 10, method: str = "order") -> float:
@@ -90,7 +90,7 @@ def percentile_training_presence(scores, q: float = 10, method: str = "order") -
     Pearson, R.G. et al. (2007) J. Biogeogr. 34: 102–117 (10th-percentile training presence).
     Hyndman, R.J. & Fan, Y. (1996) Sample quantiles in statistical packages. Am. Stat. 50: 361–365.
     """
-    s = _scores(scores, "presence_scores")
+    s = checked_scores(scores, "presence_scores")
     q = float(q)
     if not 0.0 <= q <= 100.0:
         raise InputError(f"q: {q!r}; expected a percentage in [0, 100]")
