@@ -72,8 +72,8 @@ class FeatureExpander(TransformerMixin, BaseEstimator):
 
     References
     ----------
-    Phillips, S.J. & Dudík, M. (2008) Modeling of species distributions with Maxent: new
-    extensions and a comprehensive evaluation. Ecography 31: 161–175.
+    Phillips, S.J., Anderson, R.P. & Schapire, R.E. (2006) Maximum entropy modeling of species
+    geographic distributions. Ecological Modelling 190: 231–259.
 
     Examples
     --------

@@ -168,10 +168,10 @@ class PointProcessModel(PresenceBackgroundClassifier, BaseEstimator):
     Regression Trees. Wadsworth (the one-standard-error rule).
     Fithian, W. & Hastie, T. (2013) Finite-sample equivalence in statistical models for
     presence-only data. Annals of Applied Statistics 7: 1917–1939.
-    Renner, I.W. & Warton, D.I. (2013) Equivalence of MAXENT and Poisson point process
-    models for species distribution modeling in ecology. Biometrics 69: 274–281.
-    Phillips, S.J., Anderson, R.P., Dudík, M., Schapire, R.E. & Blair, M.E. (2017) Opening
-    the black box: an open-source release of Maxent. Ecography 40: 887–893.
+    Warton, D.I. & Shepherd, L.C. (2010) Poisson point process models solve the
+    "pseudo-absence problem" for presence-only data in ecology. Ann. Appl. Stat. 4: 1383–1402.
+    Renner, I.W. et al. (2015) Point process models for presence-only analysis. Methods in
+    Ecology and Evolution 6: 366–379.
     Warton, D.I., Renner, I.W. & Ramp, D. (2013) Model-based control of observer bias for
     the analysis of presence-only data in ecology. PLoS ONE 8: e79168.
     Fithian, W., Elith, J., Hastie, T. & Keith, D.A. (2015) Bias correction in species

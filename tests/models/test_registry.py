@@ -11,7 +11,7 @@ def test_make_estimator_and_errors():
     assert set(METHODS) == {"pointprocess", "envelope", "brt", "forest", "ensemble"}
     est = make_estimator("pointprocess", C=3.0)
     assert isinstance(est, PointProcessModel) and est.C == 3.0
-    with pytest.raises(InputError, match="method: got 'maxent'"):
-        make_estimator("maxent")
+    with pytest.raises(InputError, match="method: got 'unknownmethod'"):
+        make_estimator("unknownmethod")
     with pytest.raises(InputError, match="unknown parameter 'depth'"):
         make_estimator("forest", depth=3)

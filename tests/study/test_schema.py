@@ -142,7 +142,7 @@ def test_reach_off_makes_habitat_and_dispersal_optional(folder):
     ("[habitat]", "[model]\nfolds = 1\n\n[habitat]", r"model.folds: expected an integer >= 2 and <= 20, got 1"),
     ("[habitat]", "[model]\nbackground = 5000.0\n\n[habitat]",
      r"model.background: expected an integer >= 100, got 5000.0 \(float\)"),
-    ("[habitat]", "[model]\nmethods = ['maxent']\n\n[habitat]", r"model.methods\[1\]: expected one of 'pointprocess'"),
+    ("[habitat]", "[model]\nmethods = ['unknownmethod']\n\n[habitat]", r"model.methods\[1\]: expected one of 'pointprocess'"),
     ("[habitat]", "[model]\nthreshold_rule = 1.5\n\n[habitat]", r"model.threshold_rule: .*number in \[0, 1\], got 1.5"),
     ("[habitat]", "[model]\nthreshold_rule = 'max-ss'\n\n[habitat]",
      r"model.threshold_rule: .*got 'max-ss' \(did you mean 'max-sss'\?\)"),
