@@ -152,6 +152,24 @@ def _per_path_steps(model: ReachGain, chosen) -> np.ndarray:
     return np.diff(np.array(totals).reshape(len(chosen) + 1, -1), axis=0)
 
 
+def _check_some_patch_fits(patches, budget_km2, budget_cost) -> None:
+    """Refuse a budget no candidate patch fits in: choosing nothing would look like a finding."""
+    area = np.asarray(patches.area_km2, dtype=np.float64)
+    cost = np.asarray(patches.cost, dtype=np.float64)
+    fits = area <= budget_km2 * (1 + 1e-9)
+    if budget_cost is not None:
+        fits &= cost <= budget_cost * (1 + 1e-9)
+    if fits.any():
+        return
+    i = int(np.argmin(area))
+    if budget_cost is not None and area[i] <= budget_km2 * (1 + 1e-9):
+        j = int(np.argmin(cost))
+        raise InputError(f"--budget-cost {budget_cost:g}: no candidate patch fits both budgets; the cheapest "
+                         f"patch (id {j + 1}) costs {cost[j]:.4g} and covers {area[j]:.4g} km²")
+    raise InputError(f"--budget-km2 {budget_km2:g}: no candidate patch fits; the smallest (patch id {i + 1}) "
+                     f"covers {area[i]:.4g} km² (raise the budget, or cut patches with --max-patch-km2)")
+
+
 def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: float, threshold: float,
                        settings: DispersalSettings, cost=None, budget_cost=None, quality=1.0,
                        objective: str = "mean", now_year: float = 2020, step_years: float = 1.0,
@@ -208,6 +226,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
     lat, lon = cell_lonlat(now)
     patches = candidate_patches(np.asarray(candidates.values), areas, lon, lat,
                                 cost=None if cost is None else np.asarray(cost.values), max_patch_km2=max_patch_km2)
+    _check_some_patch_fits(patches, budget_km2, budget_cost)
     model = ReachGain(now, futures, habitat, start, patches, threshold=threshold, settings=settings,
                       quality=quality, objective=objective, now_year=now_year, step_years=step_years, rate=rate,
                       persistence_years=persistence_years, cell_area_km2=areas, cache=cache)

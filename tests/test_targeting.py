@@ -114,6 +114,20 @@ def test_budget_limits_choice_and_bad_budget():
                            budget_km2=10.0, **KW)
 
 
+def test_budget_below_every_patch_is_refused_naming_the_smallest_patch():
+    # Analytic: the smallest candidates are the two 16-cell holes; a budget below their area
+    # fits nothing, which must be said rather than reported as an empty choice
+    now, futures, hab, start, cand = landscape()
+    _, patches, _ = model_and_patches()
+    smallest = float(np.min(patches.area_km2))
+    with pytest.raises(InputError, match=r"--budget-km2 .*no candidate patch fits.*smallest") as err:
+        target_restoration(now, futures, hab, start, cand, budget_km2=smallest * 0.5, **KW)
+    assert f"{smallest:.4g} km²" in str(err.value)
+    cost = np.ones((NY, NX))
+    with pytest.raises(InputError, match="--budget-cost .*cheapest"):
+        target_restoration(now, futures, hab, start, cand, budget_km2=1e6, cost=layer(cost), budget_cost=0.5, **KW)
+
+
 def test_cost_raster_reorders_and_cost_budget_binds():
     # Analytic: per-unit-cost ranking; a 100x cost on the bridge puts the cheap stub first,
     # and a cost budget below the bridge's cost (64 cells x 100) excludes it
