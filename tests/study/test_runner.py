@@ -199,3 +199,56 @@ def test_target_reads_the_study_run(full_run, tmp_path):
     fit = json.loads((run_dir / "models" / "pointprocess.fit.json").read_text())
     assert summary["threshold"] == fit["threshold"]["value"]
     assert summary["mean_distance_km"] == 5.0 and summary["inputs"]["study"] == str(study_path)
+
+
+def test_netcdf_run_equals_the_geotiff_run_in_numbers(full_run, tmp_path):
+    # Reference: the GeoTIFF run of the same study; only the raster container differs
+    # (CF-NetCDF written through xarray), so every raster and table must agree in numbers.
+    import numpy as np
+    import pandas as pd
+    import xarray as xr
+
+    study_path, run_dir, _ = full_run
+    nc_study = tmp_path / "study_nc.toml"
+    nc_study.write_text(study_path.read_text().replace("[outputs]\n", '[outputs]\nformat = "nc"\n'))
+    nc_dir = tmp_path / "run_nc"
+    result = CliRunner().invoke(cli, ["run", str(nc_study), "--out", str(nc_dir)])
+    assert result.exit_code == 0, result.output
+    assert list(nc_dir.rglob("projection/**/*.nc")), "the projections must be NetCDF"
+
+    def layer(path):
+        """Every band or data variable, in file order, as float64 (read by rasterio / xarray)."""
+        if path.suffix == ".tif":
+            import rasterio
+
+            with rasterio.open(path) as src:
+                data = src.read(masked=True).astype(np.float64)
+                return np.ma.filled(data, np.nan)
+        with xr.open_dataset(path) as ds:
+            bands = [ds[v] for v in ds.data_vars if ds[v].ndim >= 2]
+            return np.stack([np.asarray(b.squeeze(drop=True).values, dtype=np.float64) for b in bands])
+
+    compared = 0
+    for tif in sorted(run_dir.rglob("*.tif")):
+        rel = tif.relative_to(run_dir)
+        twin = nc_dir / rel.with_suffix(".nc")
+        twin = twin if twin.exists() else nc_dir / rel  # maps kept as GeoTIFF in both runs
+        assert twin.exists(), rel
+        a, b = layer(tif), layer(twin)
+        assert a.shape == b.shape, rel
+        np.testing.assert_allclose(b, a, rtol=1e-6, atol=1e-9, equal_nan=True, err_msg=str(rel))
+        compared += 1
+    assert compared >= 10
+    for csv in sorted(run_dir.rglob("*.csv")):
+        rel = csv.relative_to(run_dir)
+        a, b = pd.read_csv(csv), pd.read_csv(nc_dir / rel)
+        assert list(a.columns) == list(b.columns), rel
+        num = a.select_dtypes("number").columns
+        np.testing.assert_allclose(b[num].to_numpy(float), a[num].to_numpy(float), rtol=1e-9, atol=1e-9,
+                                   equal_nan=True, err_msg=str(rel))
+    for js in sorted((run_dir / "reach").glob("*.json")):
+        a = json.loads(js.read_text())
+        b = json.loads((nc_dir / js.relative_to(run_dir)).read_text())
+        for key, value in a.items():
+            if isinstance(value, float):
+                assert b[key] == pytest.approx(value, rel=1e-9, abs=1e-9), (js.name, key)
