@@ -13,7 +13,7 @@ import numpy as np
 
 from envelope import __version__
 
-__all__ = ["file_sha256", "json_plain", "json_ready", "json_text", "software_versions"]
+__all__ = ["file_sha256", "table_sha256", "json_plain", "json_ready", "json_text", "software_versions"]
 
 
 def file_sha256(path) -> str:
@@ -27,6 +27,11 @@ def file_sha256(path) -> str:
                 for chunk in iter(lambda: fh.read(1 << 20), b""):
                     h.update(chunk)
     return h.hexdigest()
+
+
+def table_sha256(table) -> str:
+    """SHA-256 of a pandas table's CSV text: the checksum of records handed over in memory."""
+    return hashlib.sha256(table.to_csv(index=False).encode()).hexdigest()
 
 
 def software_versions() -> dict:

@@ -73,6 +73,15 @@ class Records:
     def n_kept(self) -> int:
         return len(self.table)
 
+    def occupancy(self, grid: xr.DataArray) -> xr.DataArray:
+        """Occupied cells of ``grid`` (the grid the records were cleaned against): 1.0 where a
+        kept record falls, else 0.0; a (y, x) layer on the grid's coordinates, e.g. the start
+        of :func:`envelope.reach.simulate_reach`."""
+        ny, nx = grid.sizes["y"], grid.sizes["x"]
+        occ = np.zeros((ny, nx))
+        occ[self.table["row"].to_numpy(), self.table["col"].to_numpy()] = 1.0
+        return xr.DataArray(occ, dims=("y", "x"), coords={"y": grid["y"], "x": grid["x"]}, name="occupied")
+
     def summary(self) -> dict:
         """Counts as a JSON-ready dict: ``read``, ``kept``, ``dropped`` (reason -> count), CRSs."""
         return {

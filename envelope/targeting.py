@@ -184,7 +184,7 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
     futures : list of (year, DataArray), or dict of name -> list of (year, DataArray)
         One climate path (suitability at each horizon), or several named paths (e.g.
         pathway × climate model); the objective then combines their gains.
-    candidates : DataArray (y, x)
+    candidates : DataArray or ndarray (y, x)
         Nonzero where a cell could become habitat (see
         :func:`envelope.reachable_gain.candidates_from_classes` for land-cover codes).
     max_patch_km2 : float, optional
@@ -224,8 +224,9 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
 
     areas = np.asarray(cell_area_km2(now).values, dtype=np.float64)
     lat, lon = cell_lonlat(now)
-    patches = candidate_patches(np.asarray(candidates.values), areas, lon, lat,
-                                cost=None if cost is None else np.asarray(cost.values), max_patch_km2=max_patch_km2)
+    patches = candidate_patches(np.asarray(getattr(candidates, "values", candidates)), areas, lon, lat,
+                                cost=None if cost is None else np.asarray(getattr(cost, "values", cost)),
+                                max_patch_km2=max_patch_km2)
     _check_some_patch_fits(patches, budget_km2, budget_cost)
     model = ReachGain(now, futures, habitat, start, patches, threshold=threshold, settings=settings,
                       quality=quality, objective=objective, now_year=now_year, step_years=step_years, rate=rate,

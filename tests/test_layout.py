@@ -200,3 +200,11 @@ def test_one_home_for_each_fact():
     # no table is read with pandas outside io/ (the study report reads the change table and folds it wrote)
     readers = defined("read_csv(")
     assert all(layer(n) in ("io", "study") for n in readers), readers
+
+
+def test_developers_guide_names_every_module():
+    # Common practice, no source: the contributor guide gives each module its one-line role
+    guide = (PACKAGE.parent / "DEVELOPERS.md").read_text(encoding="utf-8")
+    missing = [name for name, path in MODULES.items()
+               if path.name != "__init__.py" and f"`{path.relative_to(PACKAGE).as_posix()}`" not in guide]
+    assert not missing, "DEVELOPERS.md lists no role for: " + ", ".join(sorted(missing))

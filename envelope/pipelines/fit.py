@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from envelope.errors import InputError
-from envelope.provenance import file_sha256, json_ready, json_text
+from envelope.provenance import file_sha256, json_ready, json_text, table_sha256
 
 log = logging.getLogger(__name__)
 
@@ -57,6 +57,10 @@ def collinear_pairs(values: np.ndarray, names, threshold: float = COLLINEAR_R) -
     return out
 
 
+#: How a records table passed as a DataFrame is named in messages and provenance.
+IN_MEMORY_RECORDS = "records table (in memory)"
+
+
 @dataclass
 class FitOptions:
     """Settings of one fit; each field is named as its `envelope fit` option (``--blocks-km`` -> ``blocks_km``)
@@ -88,8 +92,9 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
 
     Parameters
     ----------
-    records_path : path-like
-        Occurrence table (Darwin Core CSV/TSV or named x/y columns).
+    records_path : path-like or pandas.DataFrame
+        Occurrence table (Darwin Core CSV/TSV or named x/y columns), or such a table already
+        read (:func:`envelope.io.records.read_occurrences`, or built in a notebook).
     climate : DataArray (variable, y, x)
         Baseline climate stack (opened with :func:`envelope.io.rasters.open_climate`).
     options : FitOptions
@@ -131,7 +136,10 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     names = [str(v) for v in climate["variable"].values]
     units = ([str(u) for u in climate["units"].values] if "units" in climate.coords else [""] * len(names))
 
-    table = read_occurrences(records_path, x_column=opt.x_column, y_column=opt.y_column, crs=opt.crs)
+    if isinstance(records_path, pd.DataFrame):
+        table, records_path = records_path, IN_MEMORY_RECORDS
+    else:
+        table = read_occurrences(records_path, x_column=opt.x_column, y_column=opt.y_column, crs=opt.crs)
     records = clean_occurrences(table, climate, crs=opt.crs, max_uncertainty_m=opt.max_uncertainty_m,
                                 record_years=opt.record_years, thin_km=opt.thin_km)
     bias_method = resolve_bias_method(opt.bias_method, opt.method, bias is not None)
@@ -221,7 +229,8 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
                    for k, v in curves.items()}
     report("diagnostics", 1, 1)
 
-    inputs = {str(records_path): file_sha256(records_path)}
+    inputs = {str(records_path): (table_sha256(table) if records_path == IN_MEMORY_RECORDS
+                                  else file_sha256(records_path))}
     for p in climate_paths:
         inputs[str(p)] = file_sha256(p)
     if bias_path is not None:

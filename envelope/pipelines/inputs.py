@@ -104,8 +104,7 @@ def load_start(path, grid: xr.DataArray, *, name: str = "--start", grid_name: st
         table = read_occurrences(p, x_column=clean_options.pop("x_column", None),
                                  y_column=clean_options.pop("y_column", None), crs=clean_options.get("crs"))
         records = clean_occurrences(table, grid, **clean_options)
-        occ = np.zeros((grid.sizes["y"], grid.sizes["x"]))
-        occ[records.table["row"].to_numpy(), records.table["col"].to_numpy()] = 1.0
+        occ = records.occupancy(grid).values
         return occ, {"source": str(p), "kind": "records", "n_read": int(records.n_read),
                      "n_cells": int(occ.sum()), "dropped": dict(records.dropped)}
     layer = open_layer(p)
