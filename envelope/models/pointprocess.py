@@ -479,16 +479,16 @@ def _log_effort(effort, n):
     return np.log(e)
 
 
-def _free_terms_given_slopes(lp0, u, y, weights, intercept, slope, n_iter=50):
-    """Unpenalised intercept and slope of ``u`` for fixed other slopes (Newton on two parameters).
+def _newton_logistic(A, offset, y, weights, start, n_iter):
+    """Full Newton steps on the unpenalised weighted logistic log-likelihood of ``offset + A @ theta``.
 
-    Maximises the weighted logistic log-likelihood of ``intercept + slope * u + lp0``; the
-    objective is convex. The start is kept if Newton fails to improve on it.
+    The objective is convex; the start is returned when a step fails (singular Hessian, e.g.
+    under perfect separation) to improve on it or leaves the finite numbers.
     """
-    A = np.column_stack([np.ones(u.shape[0]), u])
-    start = theta = np.array([intercept, slope], dtype=np.float64)
+    start = np.asarray(start, dtype=np.float64)
+    theta = start
     for _ in range(n_iter):
-        p = expit(lp0 + A @ theta)
+        p = expit(offset + A @ theta)
         grad = A.T @ (weights * (p - y))
         hess = (A * (weights * p * (1.0 - p))[:, None]).T @ A
         try:
@@ -500,9 +500,20 @@ def _free_terms_given_slopes(lp0, u, y, weights, intercept, slope, n_iter=50):
         theta = theta - step
         if np.max(np.abs(step)) < 1e-12:
             break
-    if not np.all(np.isfinite(theta)) or (_weighted_nll(lp0 + A @ theta, y, weights)
-                                          > _weighted_nll(lp0 + A @ start, y, weights)):
-        theta = start
+    if not np.all(np.isfinite(theta)) or (_weighted_nll(offset + A @ theta, y, weights)
+                                          > _weighted_nll(offset + A @ start, y, weights)):
+        return start
+    return theta
+
+
+def _free_terms_given_slopes(lp0, u, y, weights, intercept, slope, n_iter=50):
+    """Unpenalised intercept and slope of ``u`` for fixed other slopes (Newton on two parameters).
+
+    Maximises the weighted logistic log-likelihood of ``intercept + slope * u + lp0``; the
+    start is kept if Newton fails to improve on it.
+    """
+    A = np.column_stack([np.ones(u.shape[0]), u])
+    theta = _newton_logistic(A, lp0, y, weights, [intercept, slope], n_iter)
     return float(theta[0]), float(theta[1])
 
 
@@ -529,30 +540,11 @@ def _newton_polish(F, y, weights, coef, intercept, n_iter=20):
     """A few full Newton steps on the unpenalised weighted log-likelihood.
 
     lbfgs stops on a gradient tolerance that is loose when the background weights are huge
-    (W = 1e6 in REFERENCES item 9); Newton converges quadratically from there. Skipped
-    (lbfgs result kept) when the Hessian is singular, e.g. under perfect separation.
+    (W = 1e6 in REFERENCES item 9); Newton converges quadratically from there. The lbfgs
+    result is kept when the Hessian is singular (e.g. perfect separation) or Newton wanders off.
     """
     A = np.column_stack([np.ones(F.shape[0]), F])
-    theta = np.r_[intercept, coef]
-    for _ in range(n_iter):
-        eta = A @ theta
-        p = 1.0 / (1.0 + np.exp(-eta))
-        grad = A.T @ (weights * (p - y))
-        hess = (A * (weights * p * (1.0 - p))[:, None]).T @ A
-        try:
-            step = np.linalg.solve(hess, grad)
-        except np.linalg.LinAlgError:
-            break
-        if not np.all(np.isfinite(step)):
-            break
-        theta = theta - step
-        if np.max(np.abs(step)) < 1e-12:
-            break
-    if not np.all(np.isfinite(theta)):
-        return coef, intercept
-    start = np.r_[intercept, coef]
-    if _weighted_nll(A @ theta, y, weights) > _weighted_nll(A @ start, y, weights):
-        return coef, intercept  # Newton wandered off (near-separable data): keep lbfgs
+    theta = _newton_logistic(A, 0.0, y, weights, np.r_[intercept, coef], n_iter)
     return theta[1:], float(theta[0])
 
 
