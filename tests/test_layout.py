@@ -208,3 +208,19 @@ def test_developers_guide_names_every_module():
     missing = [name for name, path in MODULES.items()
                if path.name != "__init__.py" and f"`{path.relative_to(PACKAGE).as_posix()}`" not in guide]
     assert not missing, "DEVELOPERS.md lists no role for: " + ", ".join(sorted(missing))
+
+
+@pytest.mark.parametrize("name", sorted(m for m in MODULES if layer(m) == "kernels"))
+def test_kernel_messages_name_parameters_not_flags(name):
+    # kernels know nothing of the command line: a message names the parameter (``rate``), and the
+    # command that passed it may add its flag
+    import re
+
+    tree = ast.parse(MODULES[name].read_text(encoding="utf-8"))
+    bad = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Raise) and node.exc is not None:
+            for part in ast.walk(node.exc):
+                if isinstance(part, ast.Constant) and isinstance(part.value, str) and re.search(r"--[a-z]", part.value):
+                    bad.append(f"line {node.lineno}: {part.value.strip()[:60]!r}")
+    assert not bad, f"{name} names command-line flags: " + "; ".join(bad)

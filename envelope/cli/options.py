@@ -122,10 +122,16 @@ def _distance(ctx, param, value):
     try:
         if ":" in value:
             lo, hi = (float(v) for v in value.split(":"))
-            return (lo + hi) / 2.0, (lo, hi)
-        return float(value), None
+            parsed = (lo + hi) / 2.0, (lo, hi)
+        else:
+            lo = hi = float(value)
+            parsed = lo, None
     except ValueError:
         raise click.BadParameter(f"{value!r}: expected a distance in km, or LOW:HIGH", ctx=ctx, param=param) from None
+    if not (lo > 0 and hi >= lo and hi < float("inf")):
+        raise click.BadParameter(f"{value!r}: a mean dispersal distance must be > 0 km (LOW:HIGH with LOW <= HIGH)",
+                                 ctx=ctx, param=param)
+    return parsed
 
 
 def _year_list(ctx, param, value):
@@ -169,7 +175,8 @@ def reach_inputs_opt(distance_metavar="KM|LOW:HIGH",
                      help="Horizon year of each --future, in the same order."),
         click.option("--now-year", type=float, default=2020.0, show_default=True, help="Year of the --now map."),
         click.option("--step-years", type=float, default=1.0, show_default=True, help="Years per dispersal step."),
-        click.option("--rate", type=float, default=1.0, show_default=True, help="Colonisation rate R per step."),
+        click.option("--rate", type=float, default=1.0, show_default=True, callback=_positive_float,
+                     help="Colonisation rate R per step."),
         click.option("--threshold", type=float, default=None, help="Suitability threshold (default: the rasters' tags)."),
         click.option("--persistence-years", type=float, default=0.0, show_default=True,
                      help="Years an occupied cell survives unsuitable climate before it is lost.")

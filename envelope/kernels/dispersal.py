@@ -41,7 +41,7 @@ _GL_WEIGHTS = 0.5 * _GL_WEIGHTS
 # --------------------------------------------------------------------------- checks
 def _check_kind(kind):
     if kind not in KERNEL_KINDS:
-        raise InputError(f"--kernel must be one of {', '.join(KERNEL_KINDS)}, got {kind!r}")
+        raise InputError(f"kernel must be one of {', '.join(KERNEL_KINDS)}, got {kind!r}")
     return kind
 
 
@@ -49,26 +49,26 @@ def _check_mean(mean_km):
     try:
         mean = float(mean_km)
     except (TypeError, ValueError):
-        raise InputError(f"--mean-distance-km must be a number > 0, got {mean_km!r}") from None
+        raise InputError(f"mean_distance_km must be a number > 0, got {mean_km!r}") from None
     if not math.isfinite(mean) or mean <= 0:
-        raise InputError(f"--mean-distance-km must be > 0, got {mean_km!r}")
+        raise InputError(f"mean_distance_km must be > 0, got {mean_km!r}")
     return mean
 
 
 def _check_shape(kind, shape):
     if kind != "2dt":
         if shape is not None:
-            raise InputError(f"--shape applies only to --kernel 2dt, got --shape {shape!r} with --kernel {kind}")
+            raise InputError(f"shape applies only to kernel '2dt', got shape={shape!r} with kernel {kind!r}")
         return None
     if shape is None:
-        raise InputError("--shape is required with --kernel 2dt (a number > 1.5)")
+        raise InputError("shape is required with kernel '2dt' (a number > 1.5)")
     try:
         b = float(shape)
     except (TypeError, ValueError):
-        raise InputError(f"--shape must be a number > 1.5, got {shape!r}") from None
+        raise InputError(f"shape must be a number > 1.5, got {shape!r}") from None
     if not math.isfinite(b) or b <= 1.5:
         raise InputError(
-            f"--shape must be > 1.5 for the 2Dt kernel (the mean distance is infinite for shape <= 1.5), got {shape!r}"
+            f"shape must be > 1.5 for the 2Dt kernel (the mean distance is infinite for shape <= 1.5), got {shape!r}"
         )
     return b
 

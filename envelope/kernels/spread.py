@@ -191,7 +191,7 @@ class SpreadOperator:
         suitable : ndarray, shape (ny, nx)
             Climatic suitability for this step, 0/1 or in [0, 1].
         rate : float
-            Colonisation rate R > 0 (``--rate``): expected colonisations per unit pressure.
+            Colonisation rate R > 0 (``rate``; ``--rate`` on the command line): expected colonisations per unit pressure.
         rng : numpy.random.Generator or sequence of Generator, optional
             Given: stochastic mode (one Generator, or one per replicate along axis 0).
             None: deterministic expected occupancy.
@@ -216,7 +216,7 @@ class SpreadOperator:
         suitable = np.asarray(suitable)
         rate = float(rate)
         if not (np.isfinite(rate) and rate > 0):
-            raise InputError(f"--rate must be > 0, got {rate!r}")
+            raise InputError(f"rate must be > 0, got {rate!r}")
         for name, arr in (("habitat", habitat), ("suitable", suitable)):
             if arr.shape != self.shape:
                 raise InputError(f"{name} has shape {arr.shape}, expected {self.shape}")

@@ -169,7 +169,7 @@ def colonisation_spread_speed(kind, rate, mean_km, shape=None):
     kind, a, b = kernel_parameters(kind, mean_km, shape)
     rate = float(rate)
     if not (math.isfinite(rate) and rate > 0):
-        raise InputError(f"--rate must be > 0, got {rate!r}")
+        raise InputError(f"rate must be > 0, got {rate!r}")
     if kind == "2dt":
         return _ACCELERATING
     log_r = math.log(rate)
@@ -226,7 +226,7 @@ def lattice_spread_speed(kernel, cell_km, *, rate=None, growth_R0=None, axis=1):
     if rate is not None:
         rate = float(rate)
         if not (math.isfinite(rate) and rate > 0):
-            raise InputError(f"--rate must be > 0, got {rate!r}")
+            raise InputError(f"rate must be > 0, got {rate!r}")
         fn = lambda s: float(np.logaddexp(0.0, math.log(rate) + log_m(s)))  # noqa: E731
     else:
         r0 = float(growth_R0)

@@ -72,9 +72,9 @@ def test_start_from_records_and_land_cover_classes(inputs, tmp_path):
 
 
 @pytest.mark.parametrize("extra, phrase", [
-    (["--mean-distance-km", "-1"], "--mean-distance-km must be > 0"),
+    (["--mean-distance-km", "-1"], "--mean-distance-km"),
     (["--years", "2050,2080"], "one per map"),
-    (["--kernel", "2dt"], "--shape"),
+    (["--kernel", "2dt"], "shape is required"),
     (["--threshold", "1.5"], "threshold"),
 ])
 def test_bad_input_exit_2_nothing_written(inputs, tmp_path, extra, phrase):

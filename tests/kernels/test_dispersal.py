@@ -257,13 +257,13 @@ def test_latitude_bands_partition_rows_and_respect_tolerance():
 
 
 @pytest.mark.parametrize("call,match", [
-    (lambda: kernel_scale("exponential", -1.0), r"--mean-distance-km must be > 0, got -1"),
-    (lambda: kernel_scale("gaussian", 0.0), r"--mean-distance-km must be > 0"),
-    (lambda: kernel_scale("2dt", 2.0, 1.5), r"--shape must be > 1\.5"),
-    (lambda: kernel_scale("2dt", 2.0, 1.2), r"--shape must be > 1\.5.*got 1\.2"),
-    (lambda: kernel_scale("2dt", 2.0), r"--shape is required"),
-    (lambda: kernel_scale("gaussian", 2.0, 3.0), r"--shape applies only to --kernel 2dt"),
-    (lambda: kernel_scale("cauchy", 2.0), r"--kernel must be one of exponential, gaussian, 2dt, got 'cauchy'"),
+    (lambda: kernel_scale("exponential", -1.0), r"mean_distance_km must be > 0, got -1"),
+    (lambda: kernel_scale("gaussian", 0.0), r"mean_distance_km must be > 0"),
+    (lambda: kernel_scale("2dt", 2.0, 1.5), r"shape must be > 1\.5"),
+    (lambda: kernel_scale("2dt", 2.0, 1.2), r"shape must be > 1\.5.*got 1\.2"),
+    (lambda: kernel_scale("2dt", 2.0), r"shape is required"),
+    (lambda: kernel_scale("gaussian", 2.0, 3.0), r"shape applies only to kernel .2dt."),
+    (lambda: kernel_scale("cauchy", 2.0), r"kernel must be one of exponential, gaussian, 2dt, got 'cauchy'"),
     (lambda: discretise_kernel("gaussian", 2.0, cell_dx_km=1, cell_dy_km=1, tail_tolerance=0.0), r"tail_tolerance"),
     (lambda: discretise_kernel("gaussian", 2.0, cell_dx_km=1, cell_dy_km=1, tail_tolerance=0.2), r"tail_tolerance"),
     (lambda: discretise_kernel("gaussian", 2.0, cell_dx_km=0, cell_dy_km=1), r"cell_dx_km must be > 0"),

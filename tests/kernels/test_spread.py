@@ -254,7 +254,7 @@ def test_float32_pressure_error_bound():
     (lambda op, o: op.step(o, np.full(o.shape, -0.1), np.ones(o.shape), 1.0), r"habitat must lie in \[0, 1\]"),
     (lambda op, o: op.step(o, np.full(o.shape, np.nan), np.ones(o.shape), 1.0), r"habitat .*fill nodata"),
     (lambda op, o: op.step(o, np.ones(o.shape), np.full(o.shape, 2.0), 1.0), r"suitable must lie in \[0, 1\]"),
-    (lambda op, o: op.step(o, np.ones(o.shape), np.ones(o.shape), -1.0), r"--rate must be > 0, got -1"),
+    (lambda op, o: op.step(o, np.ones(o.shape), np.ones(o.shape), -1.0), r"rate must be > 0, got -1"),
     (lambda op, o: op.step(o, np.ones((3, 3)), np.ones(o.shape), 1.0), r"habitat has shape \(3, 3\)"),
     (lambda op, o: op.step(o, np.ones(o.shape), np.ones(o.shape), 1.0, persistence_lag=2), r"unsuitable_steps"),
     (lambda op, o: op.pressure(np.ones((4, 4))), r"occupancy has grid shape"),

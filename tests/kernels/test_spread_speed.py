@@ -131,9 +131,9 @@ def test_fat_tailed_front_accelerates():
 
 @pytest.mark.parametrize("call,match", [
     (lambda: linear_spread_speed("gaussian", 1.0, 2.0), r"growth_R0 must be > 1"),
-    (lambda: linear_spread_speed("gaussian", 2.0, -1.0), r"--mean-distance-km must be > 0, got -1"),
-    (lambda: colonisation_spread_speed("exponential", 0.0, 2.0), r"--rate must be > 0"),
-    (lambda: colonisation_spread_speed("2dt", 1.0, 2.0, 1.4), r"--shape must be > 1\.5"),
+    (lambda: linear_spread_speed("gaussian", 2.0, -1.0), r"mean_distance_km must be > 0, got -1"),
+    (lambda: colonisation_spread_speed("exponential", 0.0, 2.0), r"rate must be > 0"),
+    (lambda: colonisation_spread_speed("2dt", 1.0, 2.0, 1.4), r"shape must be > 1\.5"),
     (lambda: lattice_spread_speed(np.ones((3, 3)) / 9, 1.0), r"exactly one of rate"),
 ])
 def test_bad_input(call, match):
