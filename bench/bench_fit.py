@@ -140,7 +140,10 @@ def fit_once(method, d, *, with_cv=True):
     import envelope.evaluation as evaluation
     from envelope.pipelines.fit import _group_params, build_estimator
 
+    from envelope.models.tuning import clear_path_cache
+
     X, y = d["X"], d["y"]
+    clear_path_cache()  # each repeat starts cold: no tuning solve remembered from the last one
     folds, out = make_folds(d)
     t2 = time.perf_counter()
     cv = {"auc_mean": None, "auc_sd": None, "tss_mean": None}

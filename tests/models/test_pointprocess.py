@@ -297,3 +297,27 @@ def test_path_reuse_gives_the_same_choice():
     pointprocess.clear_path_cache()
     assert again.cv_results_ == first.cv_results_
     np.testing.assert_array_equal(again.coef_, first.coef_)
+
+
+def test_early_stop_of_the_C_path_keeps_the_choice_and_repeats_exactly():
+    # Common practice, no source: stopping the C path after the optimum keeps the choice of the
+    # whole grid when the held-out AUC curve has one peak, and a seeded fit repeats exactly
+    from envelope.models import tuning
+
+    X, y, groups = _ipp_species(lambda c: -2.0 * c[:, 0] ** 2 + 1.0 * c[:, 1], n_presence=150, n_background=1200)
+    kw = dict(classes="cv", C="cv", Cs=[0.3, 1.0, 3.0, 10.0, 30.0, 100.0, 300.0], random_state=0)
+    tuning.clear_path_cache()
+    one = PointProcessModel(**kw).fit(X, y, groups=groups)
+    tuning.clear_path_cache()
+    again = PointProcessModel(**kw).fit(X, y, groups=groups)
+    assert again.cv_results_ == one.cv_results_
+    np.testing.assert_array_equal(again.coef_, one.coef_)
+    tuning.clear_path_cache()
+    whole = PointProcessModel(path_patience=None, **kw).fit(X, y, groups=groups)
+    assert whole.C_ == one.C_ and whole.feature_selection_["chosen"] == one.feature_selection_["chosen"]
+    full = np.array([s["mean_auc"] for s in whole.cv_results_["sets"]], dtype=float)
+    assert np.isfinite(full).all()
+    stopped = np.array([[np.nan if v is None else v for v in s["mean_auc"]] for s in one.cv_results_["sets"]])
+    scored = np.isfinite(stopped)
+    assert not scored.all(), "the path should stop before the weakest penalties"
+    np.testing.assert_array_equal(stopped[scored], full[scored])  # the same solves where both ran
