@@ -43,14 +43,16 @@ NO_DATA_COLOUR = "#FFFFFF"
 
 # Assignment (ours): what stays is the calm blue, what is lost is the warm vermillion (the
 # two most different hues for every viewer), gains are green, a gain into novel climate
-# takes the purple so that it reads as "gain, but look again"; absent is a pale grey that
-# recedes behind the others.
+# takes the purple so that it reads as "gain, but look again", and a stable cell in novel
+# climate the pale sky blue of "stable, but look again"; absent is a pale grey that recedes
+# behind the others.
 CHANGE_CLASS_COLOURS = {
     "absent": "#DDDDDD",
     "lost": OKABE_ITO["vermillion"],
     "stable": OKABE_ITO["blue"],
     "gained": OKABE_ITO["bluish_green"],
     "gained_novel": OKABE_ITO["reddish_purple"],
+    "stable_novel": OKABE_ITO["sky_blue"],
 }
 
 # Same blue/vermillion/green for the classes the two maps share; the two kinds of gain the
