@@ -95,6 +95,8 @@ def variance_partition(table: pd.DataFrame, response: str, factors) -> pd.DataFr
     if per_cell > 1 or not active:
         rows.append({"source": RESIDUAL_SOURCE, "sum_sq": max(total - explained, 0.0)})
     out = pd.DataFrame(rows)
+    # rounding leaves terms of ~1e-30 of the total where a factor has no effect: they are zero
+    out.loc[out["sum_sq"] < 1e-12 * total, "sum_sq"] = 0.0
     out["share"] = out["sum_sq"] / out["sum_sq"].sum()
     return out
 
