@@ -527,7 +527,8 @@ def map_mess(mess_da, *, title: str = "Novel climate (MESS)", land_mask=None,
     """Map the multivariate environmental similarity surface; negative = novel climate.
 
     Colours are symmetric about 0 (``limit`` default: 98th percentile of |MESS|), the
-    zero contour is drawn, and the share of novel cells is printed on the map.
+    zero contour is drawn, and the share of the land area (true cell areas) in novel
+    climate is printed on the map.
 
     References
     ----------
@@ -551,8 +552,16 @@ def map_mess(mess_da, *, title: str = "Novel climate (MESS)", land_mask=None,
         ax.contour(np.asarray(shown["x"]), np.asarray(shown["y"]), np.where(np.isfinite(vals), vals, 1.0),
                    levels=[0.0], colors="black", linewidths=0.8, zorder=11,
                    **({"transform": ax.projection} if hasattr(ax, "projection") else {}))
-    novel = 100.0 * np.mean(finite < 0)
-    ax.text(0.98, 0.02, f"novel: {novel:.1f}% of cells", transform=ax.transAxes, ha="right",
+    # the share of the land AREA (true cell areas), the unit of the suitability table's novel_share
+    from envelope.grids import cell_area_km2
+
+    try:
+        area = np.asarray(cell_area_km2(mess_da).values, dtype=float)
+    except Exception:  # no CRS and coordinates that are not lon/lat: equal cells
+        area = np.ones(values.shape)
+    ok = np.isfinite(values) & np.isfinite(area)
+    novel = 100.0 * float(area[ok & (values < 0)].sum() / area[ok].sum())
+    ax.text(0.98, 0.02, f"novel: {novel:.1f}% of the land area", transform=ax.transAxes, ha="right",
             va="bottom", fontsize=8, gid="novel_share",
             bbox=dict(facecolor="white", edgecolor="0.4", linewidth=0.5))
     return fig

@@ -226,9 +226,17 @@ def test_map_agreement_and_mess_demo(demo):
     lo, hi = fig.axes[0].images[0].get_clim()
     assert lo == -hi and hi > 0
     share = [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "novel_share"][0]
-    values = mess.values[np.isfinite(mess.values)]
-    # Source: NumPy — share of finite cells below 0
-    assert share == f"novel: {100 * np.mean(values < 0):.1f}% of cells"
+    # Source: pyproj.Geod.polygon_area_perimeter (Karney 2013) for the true cell areas: the
+    # inset is the share of the land AREA with MESS < 0, the unit of the table's novel_share
+    lat = np.asarray(mess["y"].values)
+    dlon, dlat = abs(float(mess["x"][1] - mess["x"][0])), abs(float(mess["y"][1] - mess["y"][0]))
+    row_area = np.array([abs(GEOD.polygon_area_perimeter([0, dlon, dlon, 0], [y - dlat / 2, y - dlat / 2,
+                                                                              y + dlat / 2, y + dlat / 2])[0])
+                         for y in lat])
+    area = np.broadcast_to(row_area[:, None], mess.shape)
+    ok = np.isfinite(mess.values)
+    want = 100 * area[ok & (mess.values < 0)].sum() / area[ok].sum()
+    assert share == f"novel: {want:.1f}% of the land area"
 
 
 # ----------------------------------------------------------------- tiny synthetic ------
