@@ -10,7 +10,7 @@ from envelope.io.writing import write_raster
 from envelope.provenance import json_text
 from envelope.reach import REACH_CLASSES, REACH_NODATA, ReachResult, simulate_reach
 
-__all__ = ["PARTITION_FACTORS", "PARTITION_QUANTITIES", "run_reach", "run_reach_set", "write_reach_outputs",
+__all__ = ["PARTITION_FACTORS", "PARTITION_QUANTITIES", "as_run_set", "run_reach", "run_reach_set", "write_reach_outputs",
            "write_uncertainty_partition"]
 
 #: Sources of the uncertainty partition: the labels of every reach run.
@@ -34,6 +34,15 @@ def run_reach(inputs, *, replicates: int = 0, seed: int = 0, progress=None, path
     result.summary["start"] = inputs.start_info
     result.summary["inputs"] = dict(inputs.inputs)
     return result
+
+
+def as_run_set(result: ReachResult):
+    """One reach result as a run set: summary keys as medians over its runs (replicates), with intervals."""
+    from envelope.reach_runs import combine_reach_runs
+
+    combined = combine_reach_runs([result], [{}])
+    combined.summary.pop("runs_by", None)
+    return combined
 
 
 def run_reach_set(inputs_by_method: dict, *, pathway: str, distances_km, replicates: int = 0, seed: int = 0,
