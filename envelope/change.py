@@ -32,8 +32,8 @@ __all__ = [
     "LABEL_COLUMNS",
 ]
 
-NOW_CODES = (1, 2)          # lost, stable: the current range
-FUTURE_CODES = (2, 3, 4)    # stable, gained, gained_novel: the future range
+NOW_CODES = (1, 2, 5)          # lost, stable, stable_novel: the current range
+FUTURE_CODES = (2, 3, 4, 5)    # stable, gained, gained_novel, stable_novel: the future range
 LABEL_COLUMNS = ("name", "pathway", "climate_model", "horizon")
 _N = len(CHANGE_CLASSES)
 
@@ -51,7 +51,8 @@ def classify_range_change(now: xr.DataArray, future: xr.DataArray, threshold: fl
     ----------
     now, future : DataArray (y, x), suitability 0-1, NaN for nodata
     threshold : float in [0, 1]; suitable means ``suitability >= threshold``
-    mess : DataArray (y, x), optional; gained cells with MESS < 0 become ``gained_novel``
+    mess : DataArray (y, x), optional; gained cells with MESS < 0 become ``gained_novel``,
+        stable ones ``stable_novel``
 
     References
     ----------
@@ -206,8 +207,8 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
     n_total = int(classes.size)
     n_valid = sum(count_by.values())
 
-    range_now = area_by["lost"] + area_by["stable"]
-    range_future = area_by["stable"] + area_by["gained"] + area_by["gained_novel"]
+    range_now = area_by["lost"] + area_by["stable"] + area_by["stable_novel"]
+    range_future = area_by["stable"] + area_by["stable_novel"] + area_by["gained"] + area_by["gained_novel"]
     centroid = {k: position_from_vector(vec[k]) for k in ("now", "future")}
 
     geod = pyproj.Geod(ellps="WGS84")
@@ -239,7 +240,9 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
         "nodata": CHANGE_NODATA,
         "n_cells": {**count_by, "nodata": n_total - n_valid, "total": n_total},
         "area_km2": {**area_by, "gained_novel": area_by["gained_novel"] if mess_given else None,
-                     "gained_total": area_by["gained"] + area_by["gained_novel"]},
+                     "stable_novel": area_by["stable_novel"] if mess_given else None,
+                     "gained_total": area_by["gained"] + area_by["gained_novel"],
+                     "stable_total": area_by["stable"] + area_by["stable_novel"]},
         "range_km2": {"now": range_now, "future": range_future},
         "range_change_pct": 100.0 * (range_future - range_now) / range_now if range_now > 0 else None,
         "centroid_method": "area-weighted mean of ellipsoid surface normals (n-vectors), WGS84",

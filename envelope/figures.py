@@ -26,6 +26,10 @@ __all__ = [
     "map_classes",
     "map_agreement",
     "map_mess",
+    "map_small_multiples",
+    "map_arrival",
+    "plot_partition",
+    "grid_projection",
     "plot_response_curves",
     "plot_cv_folds",
     "plot_range_sizes",
@@ -100,47 +104,52 @@ def _same_grid(ref, other, other_name: str) -> None:
             raise GridMismatchError(f"{other_name}: {c} coordinates differ from the mapped layer's")
 
 
-# ------------------------------------------------------------------ cartopy (optional) -
+# ------------------------------------------------------------------ cartopy ------------
 
 def cartopy_ready() -> bool:
-    """True when cartopy imports AND a Natural Earth coastline file is already on disk.
+    """True when cartopy imports (a core dependency; maps fall back to plain axes without it).
 
-    Cartopy would otherwise download coastlines on first draw; we never touch the network.
+    No coastline data is ever read or downloaded: coasts are drawn from the study's own
+    land mask.
     """
     try:
-        import cartopy
+        import cartopy.crs  # noqa: F401
     except ImportError:
         return False
-    return _cartopy_coastline() is not None
+    return True
 
 
-def _cartopy_coastline():
-    try:
-        import cartopy
-    except ImportError:
-        return None
-    for key in ("pre_existing_data_dir", "data_dir"):
-        root = Path(str(cartopy.config.get(key, "")))
-        for res in ("50m", "110m", "10m"):
-            shp = root / "shapefiles" / "natural_earth" / "physical" / f"ne_{res}_coastline.shp"
-            if str(root) not in ("", ".") and shp.is_file():
-                return shp
-    return None
-
-
-def _use_cartopy(use_cartopy, geographic: bool) -> bool:
+def _use_cartopy(use_cartopy) -> bool:
     if use_cartopy is None:
-        return geographic and cartopy_ready()
-    if use_cartopy:
-        try:
-            import cartopy  # noqa: F401
-        except ImportError as err:
-            raise InputError("use_cartopy=True: cartopy is not installed; install the 'maps' "
-                             "extra (pip install 'envelope[maps]') or pass use_cartopy=None") from err
-        if not geographic:
-            raise InputError("use_cartopy=True: the grid is not geographic (lon/lat); "
-                             "pass use_cartopy=None for a plain map")
+        return cartopy_ready()
+    if use_cartopy and not cartopy_ready():
+        raise InputError("use_cartopy=True: cartopy is not installed; install envelope's dependencies "
+                         "(pip install envelope) or pass use_cartopy=False")
     return bool(use_cartopy)
+
+
+def grid_projection(da):
+    """The cartopy CRS of a layer's grid: PlateCarree for lon/lat, else the grid's own CRS.
+
+    A projected CRS without a published area of use gets the layer's extent as its bounds.
+    """
+    import cartopy.crs as ccrs
+
+    crs = None
+    try:
+        crs = da.rio.crs
+    except Exception:  # no rioxarray accessor or no CRS: decide from the coordinates
+        crs = None
+    if crs is None or crs.is_geographic:
+        return ccrs.PlateCarree()
+    import pyproj
+
+    proj = ccrs.Projection(pyproj.CRS.from_user_input(crs.to_wkt()))
+    if proj.bounds is None:
+        left, right, bottom, top = _extent(da)
+        pad_x, pad_y = (right - left), (top - bottom)
+        proj.bounds = (left - pad_x, right + pad_x, bottom - pad_y, top + pad_y)
+    return proj
 
 
 # ------------------------------------------------------------------ map furniture ------
@@ -267,29 +276,32 @@ def _outline(ax, ref, mask, transform_kw, label="land outline"):
 
 
 def _map_axes(da, title: str, use_cartopy, north_arrow: bool, figsize=_MAP_SIZE):
-    """Figure, axes and keyword arguments for drawing ``da`` in lon/lat (or map) units."""
-    geographic = _is_geographic(da)
-    cartopy_on = _use_cartopy(use_cartopy, geographic)
+    """Figure, axes and keyword arguments for drawing ``da`` in its grid's CRS."""
     fig = Figure(figsize=figsize, layout="constrained")
     FigureCanvasAgg(fig)
+    ax, extent, transform_kw, geographic = _add_map_axes(fig, (1, 1, 1), da, title, use_cartopy, north_arrow)
+    return fig, ax, extent, transform_kw, geographic
+
+
+def _add_map_axes(fig, where, da, title: str, use_cartopy, north_arrow: bool, labels=True):
+    """One map panel at subplot position ``where``: cartopy axes in the grid's CRS when available."""
+    geographic = _is_geographic(da)
     extent = _extent(da)
-    if cartopy_on:
-        import cartopy.crs as ccrs
-
-        ax = fig.add_subplot(1, 1, 1, projection=ccrs.PlateCarree())
-        ax.set_extent(extent, crs=ccrs.PlateCarree())
-        shp = _cartopy_coastline()
-        if shp is not None:
-            from cartopy.feature import ShapelyFeature
-            from cartopy.io.shapereader import Reader
-
-            ax.add_feature(ShapelyFeature(Reader(str(shp)).geometries(), ccrs.PlateCarree()),
-                           facecolor="none", edgecolor="0.6", linewidth=0.4)
-        gl = ax.gridlines(draw_labels=True, color="0.55", linewidth=0.4, linestyle=(0, (2, 2)))
+    if _use_cartopy(use_cartopy):
+        projection = grid_projection(da)
+        ax = fig.add_subplot(*where, projection=projection)
+        ax.set_extent(extent, crs=projection)
+        gl = ax.gridlines(draw_labels=labels, color="0.55", linewidth=0.4, linestyle=(0, (2, 2)))
         gl.top_labels = gl.right_labels = False
-        transform_kw = {"transform": ccrs.PlateCarree()}
+        gl.xlabel_style = gl.ylabel_style = {"size": 8}
+        if geographic:
+            step_x, step_y = _degree_step(extent[1] - extent[0]), _degree_step(extent[3] - extent[2])
+            from matplotlib.ticker import MultipleLocator as _ML
+
+            gl.xlocator, gl.ylocator = _ML(step_x), _ML(step_y)
+        transform_kw = {"transform": projection}
     else:
-        ax = fig.add_subplot(1, 1, 1)
+        ax = fig.add_subplot(*where)
         ax.set_xlim(extent[0], extent[1])
         ax.set_ylim(extent[2], extent[3])
         if geographic:
@@ -302,18 +314,34 @@ def _map_axes(da, title: str, use_cartopy, north_arrow: bool, figsize=_MAP_SIZE)
         transform_kw = {}
     ax.set_facecolor("#F4F6F8")  # pale sea/no-data background, distinct from every class
     if title:
-        ax.set_title(title, fontsize=11)
+        ax.set_title(title, fontsize=11 if where == (1, 1, 1) else 9)
     if north_arrow:
         _north_arrow(ax)
-    return fig, ax, extent, transform_kw, geographic
+    return ax, extent, transform_kw, geographic
 
 
 def _finish_map(ax, da, extent, geographic, land_mask, transform_kw):
     mask = land_mask if land_mask is not None else np.isfinite(np.asarray(da, dtype=float))
     _outline(ax, da, mask, transform_kw)
-    ax.set_xlim(extent[0], extent[1])
-    ax.set_ylim(extent[2], extent[3])
+    _set_extent(ax, extent)
     add_scale_bar(ax, geographic=geographic, unit_to_metres=_unit_to_metres(da))
+
+
+def _lonlat_transform(transform_kw) -> dict:
+    """Keyword arguments to draw lon/lat lines (GeoJSON fronts) on a map drawn with ``transform_kw``."""
+    if not transform_kw:
+        return {}
+    import cartopy.crs as ccrs
+
+    return {"transform": ccrs.PlateCarree()}
+
+
+def _set_extent(ax, extent):
+    if hasattr(ax, "projection"):
+        ax.set_extent(extent, crs=ax.projection)
+    else:
+        ax.set_xlim(extent[0], extent[1])
+        ax.set_ylim(extent[2], extent[3])
 
 
 # ------------------------------------------------------------------ maps ---------------
@@ -341,7 +369,8 @@ def map_continuous(da, *, title: str = "", cmap=None, vmin: float | None = None,
         Draw a dashed contour at this value (e.g. the presence threshold), listed in a legend.
     north_arrow : bool, default=False
     use_cartopy : bool or None, default=None
-        None: use cartopy when it imports and its offline coastline data exists.
+        None: draw with cartopy in the grid's CRS when it imports (coasts from the land
+        mask, labelled graticule); False: plain matplotlib axes.
 
     Returns
     -------
@@ -411,7 +440,8 @@ def map_classes(da, categories: dict[int, str], *, title: str = "", colours=None
         then unused Okabe & Ito colours.
     land_mask : DataArray (y, x), optional
     front_lines : list of (year, list of (n, 2) arrays of lon, lat), optional
-        Spread fronts, drawn as black lines with one dash pattern per year.
+        Spread fronts, one colour per year on a sequential ramp (early dark, late pale),
+        listed by year in the legend.
     arrival : DataArray (y, x), optional
         First arrival year per cell (NaN = never); drawn as labelled contours of year.
 
@@ -444,17 +474,17 @@ def map_classes(da, categories: dict[int, str], *, title: str = "", colours=None
     handles = [Patch(facecolor=cmap(i), edgecolor="0.3", linewidth=0.5, label=categories[c])
                for i, c in enumerate(codes)]
     if front_lines:
-        dashes = ["-", "--", ":", "-."]
-        for k, (year, lines) in enumerate(front_lines):
-            style = dashes[k % len(dashes)]
+        ramp = palettes.year_colours(len(front_lines))
+        for k, (year, lines) in enumerate(sorted(front_lines, key=lambda t: float(t[0]))):
             for line in lines:
                 xy = np.asarray(line, dtype=float)
                 if xy.ndim != 2 or xy.shape[1] != 2:
                     raise InputError(f"front_lines: year {year}: found an array of shape {xy.shape}, "
                                      "expected (n, 2) lon, lat")
-                ax.plot(xy[:, 0], xy[:, 1], color="black", linestyle=style, linewidth=1.1,
-                        zorder=12, **tkw)
-            handles.append(Line2D([], [], color="black", linestyle=style, label=f"front {year}"))
+                ax.plot(xy[:, 0], xy[:, 1], color=ramp[k], linewidth=1.3, zorder=12,
+                        path_effects=[path_effects.withStroke(linewidth=2.4, foreground="white")],
+                        **_lonlat_transform(tkw))
+            handles.append(Line2D([], [], color=ramp[k], linewidth=2.0, label=f"front {year:g}"))
     if arrival is not None:
         arr = np.asarray(_thin(arrival), dtype=float)
         years = np.unique(arr[np.isfinite(arr)])
@@ -497,7 +527,8 @@ def map_mess(mess_da, *, title: str = "Novel climate (MESS)", land_mask=None,
     """Map the multivariate environmental similarity surface; negative = novel climate.
 
     Colours are symmetric about 0 (``limit`` default: 98th percentile of |MESS|), the
-    zero contour is drawn, and the share of novel cells is printed on the map.
+    zero contour is drawn, and the share of the land area (true cell areas) in novel
+    climate is printed on the map.
 
     References
     ----------
@@ -521,10 +552,133 @@ def map_mess(mess_da, *, title: str = "Novel climate (MESS)", land_mask=None,
         ax.contour(np.asarray(shown["x"]), np.asarray(shown["y"]), np.where(np.isfinite(vals), vals, 1.0),
                    levels=[0.0], colors="black", linewidths=0.8, zorder=11,
                    **({"transform": ax.projection} if hasattr(ax, "projection") else {}))
-    novel = 100.0 * np.mean(finite < 0)
-    ax.text(0.98, 0.02, f"novel: {novel:.1f}% of cells", transform=ax.transAxes, ha="right",
+    # the share of the land AREA (true cell areas), the unit of the suitability table's novel_share
+    from envelope.grids import cell_area_km2
+
+    try:
+        area = np.asarray(cell_area_km2(mess_da).values, dtype=float)
+    except Exception:  # no CRS and coordinates that are not lon/lat: equal cells
+        area = np.ones(values.shape)
+    ok = np.isfinite(values) & np.isfinite(area)
+    novel = 100.0 * float(area[ok & (values < 0)].sum() / area[ok].sum())
+    ax.text(0.98, 0.02, f"novel: {novel:.1f}% of the land area", transform=ax.transAxes, ha="right",
             va="bottom", fontsize=8, gid="novel_share",
             bbox=dict(facecolor="white", edgecolor="0.4", linewidth=0.5))
+    return fig
+
+
+def map_small_multiples(layers: dict, *, categories: dict | None = None, colours=None, cmap=None,
+                        vmin: float | None = None, vmax: float | None = None, label: str = "", land_mask=None,
+                        ncols: int = 3, title: str = "", zero_contour: bool = False,
+                        use_cartopy: bool | None = None) -> Figure:
+    """One small map per layer (e.g. per climate model), on shared colours and one legend or colour bar.
+
+    Parameters
+    ----------
+    layers : dict[str, DataArray (y, x)]
+        Panel title -> layer, all on one grid.
+    categories : dict[int, str], optional
+        Class layers: code -> class name (one shared legend). Otherwise the layers are
+        continuous and share ``cmap``, ``vmin``/``vmax`` (default the finite range of all)
+        and one colour bar labelled ``label``.
+    zero_contour : bool
+        Draw the 0 contour of each continuous layer (e.g. MESS).
+    """
+    if not layers:
+        raise InputError("map_small_multiples: layers is empty; expected {title: layer}")
+    first = next(iter(layers.values()))
+    for name, da in layers.items():
+        _check_layer(da, f"map_small_multiples: {name}")
+        _same_grid(first, da, f"map_small_multiples: {name}")
+    n = len(layers)
+    ncols = max(1, min(ncols, n))
+    nrows = math.ceil(n / ncols)
+    fig = Figure(figsize=(3.3 * ncols + 1.6, 3.1 * nrows + 0.6), layout="constrained")
+    FigureCanvasAgg(fig)
+    land = _thin(land_mask) if land_mask is not None else None
+    if categories is not None:
+        codes = sorted(int(c) for c in categories)
+        cmap_ = ListedColormap(_class_colours({c: categories[c] for c in codes}, colours)).with_extremes(
+            bad=(0, 0, 0, 0))
+        norm = Normalize(-0.5, len(codes) - 0.5)
+    else:
+        finite = np.concatenate([np.asarray(v, dtype=float)[np.isfinite(np.asarray(v, dtype=float))]
+                                 for v in layers.values()])
+        if finite.size == 0:
+            raise InputError("map_small_multiples: the layers have no finite cells to map")
+        lo = float(finite.min()) if vmin is None else float(vmin)
+        hi = float(finite.max()) if vmax is None else float(vmax)
+        cmap_ = palettes.suitability_cmap() if cmap is None else cmap
+        norm = Normalize(lo, hi if hi > lo else lo + 1.0)
+    im = None
+    for i, (name, da) in enumerate(layers.items()):
+        da = _thin(da)
+        ax, extent, tkw, geographic = _add_map_axes(fig, (nrows, ncols, i + 1), da, name, use_cartopy, False,
+                                                    labels=True)
+        values = np.asarray(da, dtype=float)
+        if categories is not None:
+            index = np.full(values.shape, np.nan)
+            for k, code in enumerate(codes):
+                index[values == code] = k
+            values = np.ma.masked_invalid(index)
+        im = ax.imshow(values, extent=extent, origin=_origin(da), cmap=cmap_, norm=norm,
+                       interpolation="nearest", zorder=2, **tkw)
+        if zero_contour and categories is None:
+            v = np.asarray(da, dtype=float)
+            if np.nanmin(v) < 0 < np.nanmax(v):
+                ax.contour(np.asarray(da["x"]), np.asarray(da["y"]), np.where(np.isfinite(v), v, 1.0),
+                           levels=[0.0], colors="black", linewidths=0.6, zorder=11, **tkw)
+        _outline(ax, da, land if land is not None else np.isfinite(np.asarray(da, dtype=float)), tkw)
+        _set_extent(ax, extent)
+    if categories is not None:
+        handles = [Patch(facecolor=cmap_(k), edgecolor="0.3", linewidth=0.5, label=categories[c])
+                   for k, c in enumerate(codes)]
+        fig.legend(handles=handles, loc="outside lower center", ncol=min(len(codes), 6), fontsize=8, frameon=False)
+    else:
+        fig.colorbar(im, ax=fig.axes, shrink=0.8, label=label)
+    if title:
+        fig.suptitle(title, fontsize=11)
+    return fig
+
+
+def map_arrival(arrival, *, title: str = "Arrival year", land_mask=None,
+                use_cartopy: bool | None = None) -> Figure:
+    """Map the first year each cell is occupied (NaN = never, not drawn), early dark to late pale."""
+    _check_layer(arrival, "map_arrival: arrival")
+    values = np.asarray(arrival, dtype=float)
+    finite = values[np.isfinite(values)]
+    if finite.size == 0:
+        raise InputError("map_arrival: no cell is ever reached; nothing to map")
+    return map_continuous(arrival, title=title, cmap=palettes.year_cmap(), vmin=float(finite.min()),
+                          vmax=float(max(finite.max(), finite.min() + 1)),
+                          label="first year occupied (occupancy >= 0.5)", land_mask=land_mask,
+                          use_cartopy=use_cartopy)
+
+
+def plot_partition(table, *, title: str = "Where the spread between runs comes from") -> Figure:
+    """Horizontal bars: the share of variance of each quantity due to each source.
+
+    Parameters
+    ----------
+    table : DataFrame with columns quantity, source, share (``uncertainty_partition.csv``)
+    """
+    _require_columns(table, ["quantity", "source", "share"], "plot_partition: table")
+    quantities = list(dict.fromkeys(table["quantity"]))
+    fig = _plot_figure((7.5, 0.32 * len(table) + 0.9 * len(quantities) + 0.8))
+    axes = fig.subplots(len(quantities), 1, squeeze=False, sharex=True).ravel()
+    for ax, q in zip(axes, quantities):
+        rows = table[table["quantity"] == q]
+        pos = np.arange(len(rows))
+        ax.barh(pos, 100 * rows["share"].to_numpy(dtype=float), color=palettes.OKABE_ITO["blue"],
+                edgecolor="0.2", linewidth=0.5)
+        ax.set_yticks(pos, [str(s).replace(":", " × ").replace("_", " ") for s in rows["source"]], fontsize=8)
+        ax.invert_yaxis()
+        ax.set_title(str(q).replace("_km2", " (km²)").replace("_", " "), fontsize=10, loc="left")
+        ax.grid(True, axis="x", color="0.85", linewidth=0.5)
+        ax.set_axisbelow(True)
+    axes[-1].set_xlabel("share of variance across runs (%)")
+    axes[-1].set_xlim(0, 100)
+    fig.suptitle(title, fontsize=11)
     return fig
 
 

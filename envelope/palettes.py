@@ -14,6 +14,8 @@ __all__ = [
     "suitability_cmap",
     "change_cmap",
     "agreement_colours",
+    "year_cmap",
+    "year_colours",
     "srgb_to_linear",
     "linear_to_srgb",
     "srgb_to_lab",
@@ -43,14 +45,16 @@ NO_DATA_COLOUR = "#FFFFFF"
 
 # Assignment (ours): what stays is the calm blue, what is lost is the warm vermillion (the
 # two most different hues for every viewer), gains are green, a gain into novel climate
-# takes the purple so that it reads as "gain, but look again"; absent is a pale grey that
-# recedes behind the others.
+# takes the purple so that it reads as "gain, but look again", and a stable cell in novel
+# climate the pale sky blue of "stable, but look again"; absent is a pale grey that recedes
+# behind the others.
 CHANGE_CLASS_COLOURS = {
     "absent": "#DDDDDD",
     "lost": OKABE_ITO["vermillion"],
     "stable": OKABE_ITO["blue"],
     "gained": OKABE_ITO["bluish_green"],
     "gained_novel": OKABE_ITO["reddish_purple"],
+    "stable_novel": OKABE_ITO["sky_blue"],
 }
 
 # Same blue/vermillion/green for the classes the two maps share; the two kinds of gain the
@@ -274,6 +278,20 @@ def agreement_colours(n_models: int) -> list[tuple[float, float, float]]:
     cmap = suitability_cmap()
     # avoid the extreme ends: the palest is kept off white so "0 of n" still shows on paper
     return [tuple(cmap(v)[:3]) for v in np.linspace(0.92, 0.05, n_models + 1)]
+
+
+def year_cmap(n: int = 256) -> ListedColormap:
+    """Sequential map for years: early dark, late pale (the suitability ramp's lightness path)."""
+    return _lab_ramp("envelope_years", _SUITABILITY_ANCHORS[:4], n).with_extremes(bad=(0, 0, 0, 0))
+
+
+def year_colours(n_years: int) -> list[tuple[float, float, float]]:
+    """``n_years`` colours on the year ramp, early dark to late pale, evenly spaced in lightness."""
+    if n_years < 1:
+        from envelope.errors import InputError
+        raise InputError(f"n_years: found {n_years}, expected at least 1")
+    cmap = year_cmap()
+    return [tuple(cmap(v)[:3]) for v in (np.linspace(0.0, 1.0, n_years) if n_years > 1 else [0.0])]
 
 
 def as_linear_segmented(cmap: ListedColormap) -> LinearSegmentedColormap:

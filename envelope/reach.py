@@ -61,6 +61,11 @@ class ReachResult:
     arrival_year: xr.DataArray     # float32 first year with occupancy >= 0.5 (NaN never)
     summary: dict
     front: dict = field(default_factory=dict)  # GeoJSON FeatureCollection
+    #: per run (each stochastic replicate, or the one deterministic run): ``area_km2`` of the
+    #: reach classes, ``reached_share_of_gain`` and ``front_advance_km``
+    runs: list = field(default_factory=list)
+    #: share of the runs in which a cell is occupied (>= 0.5) at the last horizon, float32 (y, x)
+    reached_share: xr.DataArray | None = None
 
 
 #: Largest kernel quadrant (cells) discretised for a domain-sized support; beyond it the
@@ -257,8 +262,6 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     def area(mask):
         return float(areas[mask].sum())
 
-    gained_reached, gained_unreached, gained_no_habitat = (area(classes == c) for c in (3, 4, 5))
-    gained_total = gained_reached + gained_unreached + gained_no_habitat
     lats, lons = cell_lonlat(now)
     start_occ = start_arr >= 0.5
     # The leading edge is measured on expected occupancy (area x occupancy weights); the
@@ -268,18 +271,30 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     held = held if held.any() else start_occ & valid
     edges = edge_shift_summary(lats, areas * start_arr, held, valid & (result.final > 1e-6),
                                weights_after=areas * result.final)
-    front_move = front_advance_summary(lats, np.where(held, start_arr, 0.0), result.final, valid,
-                                       north=edges["poleward"] != "south")
+    north = edges["poleward"] != "south"
+    held_start = np.where(held, start_arr, 0.0)
+    front_move = front_advance_summary(lats, held_start, result.final, valid, north=north)
+
+    def run_values(cls, final):
+        """Areas of one run's classes, its reached share of the gain and its front advance."""
+        a = {name: area(cls == code) for code, name in ((3, "gained_reached"), (4, "gained_unreached"),
+                                                        (5, "gained_no_habitat"), (1, "lost"), (2, "stable"))}
+        gained = a["gained_reached"] + a["gained_unreached"] + a["gained_no_habitat"]
+        front_km = (front_move["front_advance_km"] if final is None else
+                    front_advance_summary(lats, held_start, final, valid, north=north)["front_advance_km"])
+        return {"area_km2": a, "reached_share_of_gain": a["gained_reached"] / gained if gained > 0 else None,
+                "front_advance_km": front_km}
+
+    if replicates:
+        finals = [np.asarray(r, dtype=np.float64) for r in result.replicate_final]
+        runs = [run_values(reach_classes(now_suit, fut_suit, hab, f >= 0.5, valid), f) for f in finals]
+    else:
+        runs = [run_values(classes, None)]
+    whole = run_values(classes, None) if replicates else runs[0]
     duration = end_year - now_year
     summary = {
-        "area_km2": {
-            "gained_reached": gained_reached,
-            "gained_unreached": gained_unreached,
-            "gained_no_habitat": gained_no_habitat,
-            "lost": area(classes == 1),
-            "stable": area(classes == 2),
-        },
-        "reached_share_of_gain": (gained_reached / gained_total) if gained_total > 0 else None,
+        "area_km2": whole["area_km2"],
+        "reached_share_of_gain": whole["reached_share_of_gain"],
         "occupied_km2": {"start": area(start_occ & valid), "horizon": float((result.final * areas)[valid].sum())},
         "front_advance_km": front_move["front_advance_km"],
         "spread_rate_km_per_decade": (front_move["front_advance_km"] / duration * 10.0
@@ -318,7 +333,10 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     arrival = like.copy(data=np.where(valid, result.arrival_year, np.nan).astype(np.float32))
     classes_da = now.copy(data=classes).astype(np.uint8)
     front = front_geojson(now, occupancy, level=0.5)
-    return ReachResult(classes=classes_da, occupancy=occupancy, arrival_year=arrival, summary=summary, front=front)
+    share = result.final if replicates else (result.final >= 0.5).astype(np.float64)
+    reached_share = like.copy(data=np.where(valid, share, np.nan).astype(np.float32))
+    return ReachResult(classes=classes_da, occupancy=occupancy, arrival_year=arrival, summary=summary, front=front,
+                       runs=runs, reached_share=reached_share)
 
 
 def _fragmentation(grid, habitat, land, band_deg, threshold=0.5) -> dict:

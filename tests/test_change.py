@@ -256,3 +256,21 @@ def test_batch_writes_all_and_table(maps, tmp_path):
     with pytest.raises(InputError, match=r"row 1 \(x\) future suitability raster .*nope.tif not found"):
         range_change_batch(maps["now"], scen, tmp_path / "out2", tmp_path / "c2.csv")
     assert not (tmp_path / "out2").exists() and not (tmp_path / "c2.csv").exists()
+
+
+def test_stable_novel_counts_in_both_ranges(maps):
+    # Source: Elith, Kearney & Phillips (2010), MESS < 0 = novel climate. Analytic: a stable
+    # cell stays in the range now and in the future whatever its MESS, so moving it from
+    # class 2 to class 5 leaves both range sizes unchanged.
+    from envelope.io.rasters import open_layer
+
+    mess = _write(layer([[-1.0, 5.0, -3.0], [2.0, 1.0, 1.0]], 0.0, 10.0), maps["dir"] / "mess_stable.tif")
+    out, summ = maps["dir"] / "e.tif", maps["dir"] / "e.json"
+    s = range_change(maps["now"], maps["future"], out, summ, mess=mess)
+    assert open_layer(out, categorical=True).values.tolist() == [[5, 1, 4], [3, 0, 255]]
+    plain = range_change(maps["now"], maps["future"], maps["dir"] / "f.tif", maps["dir"] / "f.json",
+                         mess=maps["mess"])
+    assert s["area_km2"]["stable"] == 0 and s["area_km2"]["stable_novel"] == plain["area_km2"]["stable"]
+    assert s["area_km2"]["stable_total"] == pytest.approx(plain["area_km2"]["stable_total"])
+    assert s["range_km2"] == pytest.approx(plain["range_km2"])
+    assert s["classes"]["5"] == "stable_novel"

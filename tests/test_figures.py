@@ -184,9 +184,11 @@ def test_map_continuous_demo(demo):
     width_km = GEOD.inv(-152, 36.5, -142, 36.5)[2] / 1000
     assert width_km / 10 < km <= width_km / 4
     fig.canvas.draw()
-    xt = [t.get_text() for t in ax.get_xticklabels() if t.get_text()]
-    yt = [t.get_text() for t in ax.get_yticklabels() if t.get_text()]
-    assert all(t.endswith("°W") for t in xt) and all(t.endswith("°N") for t in yt)
+    # the graticule is cartopy's, labelled in degrees (Common practice, no source)
+    labels = graticule_labels(fig)
+    xt = [t for t in labels if t.endswith("W")]
+    yt = [t for t in labels if t.endswith("N")]
+    assert xt and yt and len(xt) + len(yt) == len(labels)
     assert "150°W" in xt and "40°N" in yt
 
 
@@ -224,9 +226,17 @@ def test_map_agreement_and_mess_demo(demo):
     lo, hi = fig.axes[0].images[0].get_clim()
     assert lo == -hi and hi > 0
     share = [t.get_text() for t in fig.axes[0].texts if t.get_gid() == "novel_share"][0]
-    values = mess.values[np.isfinite(mess.values)]
-    # Source: NumPy — share of finite cells below 0
-    assert share == f"novel: {100 * np.mean(values < 0):.1f}% of cells"
+    # Source: pyproj.Geod.polygon_area_perimeter (Karney 2013) for the true cell areas: the
+    # inset is the share of the land AREA with MESS < 0, the unit of the table's novel_share
+    lat = np.asarray(mess["y"].values)
+    dlon, dlat = abs(float(mess["x"][1] - mess["x"][0])), abs(float(mess["y"][1] - mess["y"][0]))
+    row_area = np.array([abs(GEOD.polygon_area_perimeter([0, dlon, dlon, 0], [y - dlat / 2, y - dlat / 2,
+                                                                              y + dlat / 2, y + dlat / 2])[0])
+                         for y in lat])
+    area = np.broadcast_to(row_area[:, None], mess.shape)
+    ok = np.isfinite(mess.values)
+    want = 100 * area[ok & (mess.values < 0)].sum() / area[ok].sum()
+    assert share == f"novel: {want:.1f}% of the land area"
 
 
 # ----------------------------------------------------------------- tiny synthetic ------
@@ -247,14 +257,29 @@ def test_maps_on_tiny_grids():
     assert to_hex(handle.get_facecolor()).upper() not in {c.upper() for c in palettes.CLASS_COLOURS.values()}
 
 
+def graticule_labels(fig):
+    from cartopy.mpl.gridliner import Gridliner
+
+    gls = [a for a in fig.axes[0].artists if isinstance(a, Gridliner)]
+    assert gls, "no labelled graticule"
+    return [t.get_text() for t in gls[0].label_artists if t.get_visible() and t.get_text()]
+
+
 def test_projected_scale_bar():
     # Analytic: on a metre grid the bar's drawn length in metres is the label × 1000
+    import pyproj
+
     da = tiny(np.random.default_rng(0).uniform(size=(8, 10)), lon0=500_000, lat0=4_600_000,
               res=5_000, crs="EPSG:32610")
     fig = figures.map_continuous(da, title="", label="")
     bar, km = scale_bar(fig)
     assert np.diff(bar.get_xdata())[0] == pytest.approx(km * 1000)
-    assert fig.axes[0].get_xlabel() == "x (m)"
+    # Source: pyproj.CRS.equals — the map is drawn in the grid's own CRS
+    assert pyproj.CRS.from_user_input(fig.axes[0].projection).equals(pyproj.CRS("EPSG:32610"))
+    fig.canvas.draw()
+    assert graticule_labels(fig)
+    plain = figures.map_continuous(da, title="", label="", use_cartopy=False)
+    assert plain.axes[0].get_xlabel() == "x (m)"
 
 
 def test_map_errors():

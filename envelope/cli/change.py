@@ -24,7 +24,7 @@ _existing = click.Path(exists=True, dir_okay=False)
 @click.option("--threshold", type=float, default=None,
               help="Suitability threshold in [0, 1] (default: the rasters' 'threshold' tag).")
 @click.option("--mess", "mess", type=_existing, default=None,
-              help="MESS raster of the future climate: gains with MESS < 0 are 'gained_novel'.")
+              help="MESS raster of the future climate: gains with MESS < 0 are 'gained_novel', stable cells 'stable_novel'.")
 @click.option("--elevation", "elevation", type=_existing, default=None,
               help="Elevation raster (m, same grid) for the mean elevation shift.")
 @click.option("--edge-percentile", type=float, default=95.0, show_default=True,
@@ -34,7 +34,7 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
            edge_percentile, overwrite):
     """Classify and measure range change between two suitability maps.
 
-    Cells are absent, lost, stable, gained, or gained in novel climate (with --mess);
+    Cells are absent, lost, stable, gained, or (with --mess) gained or stable in novel climate;
     areas are true areas on the ground. The summary gives range sizes, the centroid shift
     and bearing, poleward leading/trailing edge shifts and, with --elevation, the mean
     elevation shift. With --scenarios every listed future map is compared with NOW and one
@@ -68,6 +68,6 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
     area = result["area_km2"]
     pct = result["range_change_pct"]
     click.echo(f"Range {result['range_km2']['now']:.1f} -> {result['range_km2']['future']:.1f} km² "
-               f"({'n/a' if pct is None else f'{pct:+.1f}%'}); lost {area['lost']:.1f}, stable {area['stable']:.1f}, "
+               f"({'n/a' if pct is None else f'{pct:+.1f}%'}); lost {area['lost']:.1f}, stable {area['stable_total']:.1f}, "
                f"gained {area['gained_total']:.1f} km²")
     click.echo(f"Wrote {out} and {summary}")

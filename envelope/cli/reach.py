@@ -16,9 +16,12 @@ from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
 @click.option("--summary", required=True, type=click.Path(dir_okay=False), help="Summary JSON to write.")
 @click.option("--front", type=click.Path(dir_okay=False), default=None, help="Expansion front GeoJSON (0.5 contours).")
 @click.option("--arrival", type=click.Path(dir_okay=False), default=None, help="Arrival-year raster.")
+@click.option("--probability", type=click.Path(dir_okay=False), default=None,
+              help="Probability-of-reach raster: the share of runs (replicates) occupying each cell at the horizon.")
 @overwrite_opt
 def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years, now_year,
-          step_years, rate, threshold, persistence_years, replicates, seed, out, summary, front, arrival, overwrite):
+          step_years, rate, threshold, persistence_years, replicates, seed, out, summary, front, arrival, probability,
+          overwrite):
     """Habitat-gated dispersal through the transient climate.
 
     Starting from the cells occupied today, each step disperses propagules with the
@@ -26,7 +29,9 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     1 − exp(−R · pressure · habitat · suitable), and loses occupied cells whose climate
     has become unsuitable. Suitability between the given maps is interpolated linearly in
     time. Newly suitable cells are classed as reached, not reached (dispersal-limited) or
-    without habitat.
+    without habitat. With --replicates the summary's areas, reached share and front
+    advance are medians over the replicates, with their 5, 50 and 95 % values under
+    `intervals`; --probability writes the share of replicates reaching each cell.
 
     \b
     Examples:
@@ -36,7 +41,7 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
       $ envelope reach --now now.tif --future f2080.tif --years 2080 --habitat landcover.tif \\
             --classes classes.csv --start occupied.tif --kernel 2dt --shape 3 \\
             --mean-distance-km 1:4 --replicates 50 --seed 1 --front front.geojson \\
-            --arrival arrival.tif --out reach.tif --summary reach.json
+            --arrival arrival.tif --probability reach_probability.tif --out reach.tif --summary reach.json
     """
     from rich.console import Console
     from rich.progress import Progress
@@ -44,11 +49,12 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     from envelope.errors import InputError
     from envelope.io.atomic import check_distinct, check_writable
     from envelope.pipelines.inputs import build_reach_inputs
-    from envelope.pipelines.reach import run_reach, write_reach_outputs
+    from envelope.pipelines.reach import as_run_set, run_reach, write_reach_outputs
 
-    check_distinct({"--out": out, "--summary": summary, "--front": front, "--arrival": arrival},
+    check_distinct({"--out": out, "--summary": summary, "--front": front, "--arrival": arrival,
+                    "--probability": probability},
                    {"--now": now, "--future": futures, "--habitat": habitat, "--start": start, "--classes": classes})
-    for p in (out, summary, front, arrival):
+    for p in (out, summary, front, arrival, probability):
         if p:
             check_writable(p, overwrite)
     if len(years) != len(futures):
@@ -65,8 +71,9 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
         task = bar.add_task("dispersal steps", total=None)
         result = run_reach(inputs, replicates=replicates, seed=seed,
                            progress=lambda i, n: bar.update(task, completed=i, total=n))
-    written = write_reach_outputs(result, out, summary, front=front, arrival=arrival, overwrite=overwrite,
-                                  tags={"software": "envelope"})
+    result = as_run_set(result)
+    written = write_reach_outputs(result, out, summary, front=front, arrival=arrival, probability=probability,
+                                  overwrite=overwrite, tags={"software": "envelope"})
     _print(result.summary, written)
 
 

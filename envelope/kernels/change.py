@@ -30,6 +30,7 @@ CHANGE_CLASSES = {
     2: "stable",        # suitable now and in the future
     3: "gained",        # newly suitable, climate within the reference range (MESS >= 0 or no MESS)
     4: "gained_novel",  # newly suitable where the future climate is novel (MESS < 0)
+    5: "stable_novel",  # suitable now and in the future, but the future climate is novel (MESS < 0)
 }
 #: Code of cells where either suitability map has no value.
 CHANGE_NODATA = 255
@@ -65,14 +66,15 @@ def classify_change(now, future, threshold: float, mess=None) -> np.ndarray:
         cell exactly at the threshold counts as suitable).
     mess : ndarray of float, same shape, optional
         MESS of the future climate (Elith, Kearney & Phillips 2010). A gained cell with
-        ``mess < 0`` is ``gained_novel`` (code 4). A gained cell with unknown (NaN) MESS stays
-        ``gained``: novelty is claimed only where it is shown. Without ``mess`` code 4 never
-        occurs.
+        ``mess < 0`` is ``gained_novel`` (code 4), a stable cell with ``mess < 0`` is
+        ``stable_novel`` (code 5): still called suitable, but only by extrapolation. A cell
+        with unknown (NaN) MESS keeps its plain class: novelty is claimed only where it is
+        shown. Without ``mess`` codes 4 and 5 never occur.
 
     Returns
     -------
     ndarray of uint8, same shape: 0 absent, 1 lost, 2 stable, 3 gained, 4 gained_novel,
-    255 where ``now`` or ``future`` is NaN.
+    5 stable_novel, 255 where ``now`` or ``future`` is NaN.
 
     References
     ----------
@@ -101,6 +103,7 @@ def classify_change(now, future, threshold: float, mess=None) -> np.ndarray:
         with np.errstate(invalid="ignore"):
             novel = mess < 0  # NaN compares False: unknown novelty stays "gained"
         codes[(codes == 3) & novel] = 4
+        codes[(codes == 2) & novel] = 5
     codes[~valid] = CHANGE_NODATA
     return codes
 

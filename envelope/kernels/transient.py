@@ -61,6 +61,7 @@ class TransientResult:
     arrival_year: np.ndarray   # first year occupancy >= level (NaN = never; start cells = start year)
     final: np.ndarray          # occupancy at the last year
     years: list = field(default_factory=list)  # every simulated year
+    replicate_final: np.ndarray | None = None  # (replicates, ny, nx) bool occupancy at the last year; None deterministic
 
 
 def step_years_list(start_year: float, end_year: float, step_years: float) -> list:
@@ -162,4 +163,4 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
             progress(i + 1, len(years))
     final = occ.mean(axis=0) if n_rep else occ
     return TransientResult(snapshots=snapshots, arrival_year=arrival, final=np.asarray(final, dtype=np.float64),
-                           years=years)
+                           years=years, replicate_final=(occ >= 0.5) if n_rep else None)

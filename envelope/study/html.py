@@ -18,6 +18,7 @@ __all__ = ["Report", "FIXED_SECTIONS", "DEFAULT_CAUTIONS", "DEFAULT_REFERENCES",
 
 #: The sections every study report has, in this order: (id, heading).
 FIXED_SECTIONS = (
+    ("findings", "Findings"),
     ("question", "The question"),
     ("data", "Records used"),
     ("skill", "Model skill"),
@@ -96,9 +97,10 @@ nav.toc { border: 1px solid #555; padding: .4rem 1rem; margin: 1rem 0; }
 nav.toc h2 { border: none; margin: .2rem 0; font-size: 1.05rem; }
 nav.toc ol { margin: .2rem 0 .4rem; }
 a { color: #0b4f8a; }
-table { border-collapse: collapse; margin: .6rem 0 1rem; font-size: .92rem; }
+table { border-collapse: collapse; margin: .6rem 0 1rem; font-size: .92rem; max-width: 100%; }
 caption { text-align: left; font-weight: bold; padding-bottom: .2rem; }
-th, td { border: 1px solid #444; padding: .2rem .55rem; vertical-align: top; }
+th, td { border: 1px solid #444; padding: .2rem .55rem; vertical-align: top; overflow-wrap: anywhere; }
+section#findings p { font-size: 1.05rem; }
 th { background: #e8e8e8; text-align: left; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 figure { margin: 1rem 0 1.4rem; }

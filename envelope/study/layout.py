@@ -8,10 +8,12 @@ from pathlib import Path
 
 from envelope.errors import InputError
 
-__all__ = ["MANIFEST_NAME", "RunLayout", "reach_inputs_from_run", "study_dispersal", "study_start_options"]
+__all__ = ["MANIFEST_NAME", "REACH_SET_FILES", "RunLayout", "reach_inputs_from_run", "study_dispersal", "study_start_options"]
 
 MANIFEST_NAME = "manifest.json"
 REACH_FILES = ("classes", "summary", "front", "arrival")
+#: Extra files of a pathway's reach run set (all climate models, methods, distances and replicates)
+REACH_SET_FILES = ("probability", "runs")
 
 
 @dataclass(frozen=True)
@@ -27,8 +29,11 @@ class RunLayout:
           models/<method>.fit.json           its fit summary (+ .fit.folds.csv)
           projection/now_suitability<ext>    today's suitability (first method)
           projection/scenarios/...           `envelope project --scenarios` outputs (scenario_outputs)
+          projection/<method>/...            the same for each further method (now_suitability, scenarios/)
           change/<scenario>.tif|.json        range change per scenario, change/change_table.csv
           reach/<run>_reach<ext>             reach classes per pathway (+ _reach.json, _front.geojson, _arrival<ext>)
+          reach/<pathway>_probability.tif    share of runs reaching each cell (+ _runs.csv, one row per run)
+          uncertainty_partition.csv          variance shares of reachable gain and range change by source
           report.html
     """
 
@@ -88,6 +93,20 @@ class RunLayout:
 
         return ensemble_file(self.projections_dir, pathway, horizon, statistic, suffix=self.ext)
 
+    def method_now(self, method: str) -> Path:
+        """Today's suitability of ``method`` (the first method's is :attr:`now`)."""
+        return self.now if method == self.methods[0] else self.run_dir / "projection" / method / f"now_suitability{self.ext}"
+
+    def method_projections_dir(self, method: str) -> Path:
+        """The scenario projections of ``method`` (the first method's are :attr:`projections_dir`)."""
+        return (self.projections_dir if method == self.methods[0]
+                else self.run_dir / "projection" / method / "scenarios")
+
+    def method_suitability_table(self, method: str) -> Path:
+        from envelope.io.tables import SUITABILITY_TABLE_NAME
+
+        return self.method_projections_dir(method) / SUITABILITY_TABLE_NAME
+
     def pathway_futures(self, scenarios) -> dict:
         """Per pathway, its horizons' ensemble-mean suitability maps: {pathway: [(year, path), ...]}."""
         horizons = sorted({int(s.horizon) for s in scenarios})
@@ -116,6 +135,16 @@ class RunLayout:
         d = self.reach_dir
         return {"classes": d / f"{run}_reach{self.ext}", "summary": d / f"{run}_reach.json",
                 "front": d / f"{run}_front.geojson", "arrival": d / f"{run}_arrival{self.ext}"}
+
+    def reach_set(self, pathway: str) -> dict:
+        """The files of a pathway's run set: :meth:`reach` plus ``probability`` and ``runs``."""
+        d = self.reach_dir
+        return {**self.reach(pathway), "probability": d / f"{pathway}_probability.tif",
+                "runs": d / f"{pathway}_runs.csv"}
+
+    @property
+    def uncertainty_partition(self) -> Path:
+        return self.run_dir / "uncertainty_partition.csv"
 
     @property
     def report(self) -> Path:

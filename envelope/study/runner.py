@@ -101,10 +101,11 @@ def _scenario_table(study, layout: RunLayout) -> Path:
 def run_study(study, run_dir, *, progress=None) -> dict:
     """Run a validated study (:func:`envelope.study.schema.load_study`) into ``run_dir``.
 
-    Steps: fit each method; project today's climate and every scenario (MESS, ensembles);
-    range change per scenario; habitat-gated reach per pathway through the ensemble-mean
-    suitability at each horizon, plus a counterfactual with the climate held at today's;
-    figures; the HTML report. Every file name comes from :class:`RunLayout`. Returns a
+    Steps: fit each method; project today's climate and every scenario (MESS, ensembles) with
+    each method; range change per scenario; habitat-gated reach per pathway on every climate
+    model's own suitability (each method, each dispersal distance, each replicate), combined
+    into medians, 5-95 % intervals and a probability of reach, plus a counterfactual with the
+    climate held at today's; the uncertainty partition; figures; the HTML report. Every file name comes from :class:`RunLayout`. Returns a
     dict of key results and paths.
     """
     from envelope.io.rasters import open_climate, open_layer
@@ -165,6 +166,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
                                     "format": layout.ext},
               [model, table] + [s.path for s in study.scenarios], [suit_table], do_scen)
     suitability = read_scenarios(suit_table, what="suitability raster")
+    _project_more_methods(study, layout, cache, baseline, table, say)
 
     # 3. change per scenario -----------------------------------------------------------
     if study.outputs.change:
@@ -181,7 +183,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     # 4. reach per pathway through the ensemble-mean suitability ------------------------
     reach_rows = []
     if study.outputs.reach and study.habitat is not None and study.dispersal is not None:
-        reach_rows = _run_reach(study, layout, cache, suitability, threshold, say)
+        reach_rows = _run_reach_sets(study, layout, cache, threshold, say)
         results["reach"] = reach_rows
 
     # 5. figures and report ---------------------------------------------------------------
@@ -196,6 +198,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
         report_inputs = [p for p in [now_path, suit_table, layout.change_table, layout.fit_summary()]
                          if Path(p).exists()]
         report_inputs += [Path(r["summary"]) for r in reach_rows]
+        report_inputs += [p for p in [layout.uncertainty_partition] if p.exists()]
         cache.run("report", {"study": settings["study"], "figures": study.outputs.figures}, report_inputs,
                   [layout.report], do_report)
         results["report"] = str(layout.report)
@@ -205,39 +208,109 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     return results
 
 
-def _run_reach(study, layout: RunLayout, cache, suitability, threshold, say) -> list:
-    """Reach per pathway (ensemble-mean maps by horizon) and the held-climate counterfactual."""
-    from envelope.pipelines.reach import run_reach, write_reach_outputs
+def _project_more_methods(study, layout: RunLayout, cache, baseline, table, say):
+    """Today's and the scenarios' suitability for every method after the first (each in its own folder)."""
+    from envelope.pipelines.project import project_file, project_scenarios
+
+    for m in study.model.methods[1:]:
+        model, now_path = layout.model(m), layout.method_now(m)
+
+        def do_now(model=model, now_path=now_path, m=m):
+            say(f"project today ({m})")
+            now_path.parent.mkdir(parents=True, exist_ok=True)
+            project_file(model, baseline, now_path, overwrite=True)
+
+        cache.run(f"project:now:{m}", {"clamp": True}, [model, *baseline], [now_path], do_now)
+
+        def do_scen(model=model, m=m):
+            say(f"project scenarios ({m})")
+            project_scenarios(model, table, layout.method_projections_dir(m), mess=study.outputs.mess,
+                              agreement=study.scenario_set.agreement, overwrite=True, suffix=layout.ext)
+
+        cache.run(f"project:scenarios:{m}", {"mess": study.outputs.mess, "agreement": study.scenario_set.agreement,
+                                             "format": layout.ext},
+                  [model, table] + [s.path for s in study.scenarios], [layout.method_suitability_table(m)], do_scen)
+
+
+def _reach_paths(study, layout: RunLayout) -> dict:
+    """Climate paths of every reach run: {run: {method: {climate model: [(year, suitability map), ...]}}}.
+
+    One run per pathway (its climate models' own maps, not their mean) and, when the study
+    asks for it, the counterfactual with the climate held at today's.
+    """
+    from envelope.io.tables import read_scenarios
+
+    methods = list(study.model.methods)
+    rows = {m: read_scenarios(layout.method_suitability_table(m), what="suitability raster") for m in methods}
+    first = rows[methods[0]]
+    runs = {}
+    for pathway in sorted({s.pathway for s in first}):
+        runs[pathway] = {m: {cm: sorted((int(s.horizon), s.path) for s in rows[m]
+                                        if s.pathway == pathway and s.climate_model == cm)
+                             for cm in sorted({s.climate_model for s in rows[m] if s.pathway == pathway})}
+                         for m in methods}
+    if study.dispersal.counterfactual:
+        horizons = sorted({int(s.horizon) for s in first})
+        runs["held-climate"] = {m: {"held at today's": [(h, layout.method_now(m)) for h in horizons]}
+                                for m in methods}
+    return runs
+
+
+def _run_reach_sets(study, layout: RunLayout, cache, threshold, say) -> list:
+    """Reach per pathway over every method × climate model × dispersal distance (× replicate), combined.
+
+    Each pathway's run set writes the reach files of :meth:`RunLayout.reach_set` (summary
+    keys as medians over runs, with 5/50/95 % intervals; the probability of reach; one row
+    per run); the uncertainty partition over all pathways' runs goes to
+    :attr:`RunLayout.uncertainty_partition`.
+    """
+    from envelope.pipelines.reach import (PARTITION_FACTORS, PARTITION_QUANTITIES, run_reach_set,
+                                          write_reach_outputs, write_uncertainty_partition)
+    from envelope.reach_runs import distance_levels
 
     d = study.dispersal
     start_path = d.start or study.records.path
-    runs = layout.pathway_futures(suitability)
-    if d.counterfactual:
-        runs["held-climate"] = [(h, layout.now) for h, _ in next(iter(runs.values()))]
-    # the fragmentation table is part of the reach summary; its settings are in the key so
-    # run folders made before it existed get it on the next run
+    distances = distance_levels(*d.mean_distance_range_km) if d.mean_distance_range_km else [d.mean_distance_km]
+    methods = list(study.model.methods)
     settings = {"dispersal": study.to_dict()["dispersal"], "habitat": study.to_dict()["habitat"],
-                "threshold": threshold, "now_year": study.climate.now_year,
+                "threshold": threshold, "now_year": study.climate.now_year, "methods": methods,
+                "distances_km": distances, "design": "every climate path, combined",
                 "fragmentation": {"habitat_threshold": 0.5, "band_deg": 1.0}}
     rows = []
-    for name, futures in runs.items():
-        files = layout.reach(name)
-        inputs = [layout.now, study.habitat.path, start_path] + [p for _, p in futures]
+    for name, by_method in _reach_paths(study, layout).items():
+        files = layout.reach_set(name)
+        inputs = [layout.method_now(m) for m in methods] + [study.habitat.path, start_path]
+        inputs += [p for paths in by_method.values() for horizons in paths.values() for _, p in horizons]
         if study.habitat.classes:
             inputs.append(study.habitat.classes)
 
-        def do_reach(name=name, futures=futures, files=files):
+        def do_reach(name=name, by_method=by_method, files=files):
             say(f"reach {name}")
             layout.reach_dir.mkdir(exist_ok=True)
             # records as the start: the same cleaning rules as the fit (a raster start ignores them)
-            model = study_reach_inputs(study, layout.now, {name: futures}, stochastic=True)
-            result = run_reach(model, replicates=d.replicates, seed=study.model.seed)
+            model = {m: study_reach_inputs(study, layout.method_now(m), by_method[m], stochastic=False)
+                     for m in methods}
+            result = run_reach_set(model, pathway=name, distances_km=distances, replicates=d.replicates,
+                                   seed=study.model.seed)
             result.summary.update({"run": name,
                                    "climate": "held at today's" if name == "held-climate" else
-                                   f"pathway {name}, ensemble mean of climate models"})
+                                   f"pathway {name}, each climate model's own suitability"})
             write_reach_outputs(result, files["classes"], files["summary"], front=files["front"],
-                                arrival=files["arrival"], overwrite=True, tags={"run": name})
+                                arrival=files["arrival"], probability=files["probability"], runs=files["runs"],
+                                overwrite=True, tags={"run": name})
 
-        cache.run(f"reach:{name}", settings, inputs, list(files.values()), do_reach)
+        cache.run(f"reach:{name}", settings, sorted(set(map(str, inputs))), list(files.values()), do_reach)
         rows.append({"run": name, **{k: str(v) for k, v in files.items()}})
+
+    pathway_runs = [r["runs"] for r in rows if r["run"] != "held-climate"]
+    if pathway_runs:
+        def do_partition():
+            import pandas as pd
+
+            say("uncertainty partition")
+            write_uncertainty_partition([pd.read_csv(p) for p in pathway_runs], layout.uncertainty_partition,
+                                        overwrite=True)
+
+        cache.run("uncertainty", {"factors": list(PARTITION_FACTORS), "quantities": PARTITION_QUANTITIES},
+                  pathway_runs, [layout.uncertainty_partition], do_partition)
     return rows

@@ -513,9 +513,6 @@ def _dispersal(c: _Checker, doc, needed: bool) -> DispersalSection | None:
         hi = c.number("dispersal.mean_distance_km[2]", dist[1], gt=0)
         if lo > hi:
             c.fail("dispersal.mean_distance_km", f"expected [low, high] with low <= high, got {dist}")
-        if replicates == 0:
-            c.fail("dispersal.mean_distance_km", f"a range {dist} is drawn from once per replicate; set "
-                                                 "dispersal.replicates >= 1, or give one distance")
         dist_range = (float(lo), float(hi))
         mean = (dist_range[0] + dist_range[1]) / 2.0
     else:

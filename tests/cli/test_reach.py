@@ -106,3 +106,20 @@ def test_start_records_outside_grid(inputs, tmp_path):
     out.mkdir()
     r = CliRunner().invoke(cli, args(dict(inputs, start=tmp_path / "far.csv"), out))
     assert r.exit_code == 2 and "inside the grid" in r.output
+
+
+def test_reach_probability_is_the_share_of_replicates(inputs, tmp_path):
+    # Analytic: with N replicates the probability of reach takes the values k/N, and the
+    # summary's gained_reached is the median of the N replicates with its 5/50/95 % values.
+    out = tmp_path / "out"
+    out.mkdir()
+    result = CliRunner().invoke(cli, args(inputs, out, "--replicates", "4", "--seed", "3",
+                                          "--probability", str(out / "reach_probability.tif")))
+    assert result.exit_code == 0, result.output
+    p = open_layer(out / "reach_probability.tif").values
+    finite = p[np.isfinite(p)]
+    assert finite.size and np.allclose(finite * 4, np.round(finite * 4), atol=1e-6)
+    s = json.loads((out / "reach.json").read_text())
+    iv = s["intervals"]["area_km2"]["gained_reached"]
+    assert s["n_runs"] == 4 and iv["p05"] <= s["area_km2"]["gained_reached"] == iv["p50"] <= iv["p95"]
+    assert set(s["intervals"]) >= {"area_km2", "front_advance_km"}

@@ -33,8 +33,17 @@ def test_gained_novel_only_with_mess_and_only_at_gains():
     now = np.array([0.1, 0.1, 0.9, 0.1, 0.1])
     future = np.array([0.9, 0.9, 0.9, 0.1, 0.9])
     mess = np.array([-5.0, 3.0, -5.0, -5.0, np.nan])
-    assert classify_change(now, future, 0.5, mess).tolist() == [4, 3, 2, 0, 3]
-    assert 4 not in classify_change(now, future, 0.5).tolist()
+    assert classify_change(now, future, 0.5, mess).tolist() == [4, 3, 5, 0, 3]
+    assert not {4, 5} & set(classify_change(now, future, 0.5).tolist())
+
+
+def test_stable_novel_only_at_stable_cells_with_negative_mess():
+    # Source: Elith, Kearney & Phillips (2010): MESS < 0 marks novel climate; the issue's
+    # contract: class 5 = stable with MESS < 0, codes 0-4 unchanged, unknown MESS stays plain.
+    now = np.array([0.9, 0.9, 0.9, 0.9, 0.1, 0.1])
+    future = np.array([0.9, 0.9, 0.9, 0.1, 0.1, 0.9])
+    mess = np.array([-0.1, 0.0, np.nan, -3.0, -3.0, -3.0])
+    assert classify_change(now, future, 0.5, mess).tolist() == [5, 2, 2, 1, 0, 4]
 
 
 def test_threshold_checks():
@@ -48,10 +57,10 @@ def test_threshold_checks():
 def test_class_sums_against_loop():
     # Common practice, no source: compared with an obvious Python loop.
     rng = np.random.default_rng(1)
-    classes = rng.choice([0, 1, 2, 3, 4, 255], size=200).astype(np.uint8)
+    classes = rng.choice([0, 1, 2, 3, 4, 5, 255], size=200).astype(np.uint8)
     w = rng.uniform(1, 2, size=200)
     got = class_sums(classes, w)
-    for k in range(5):
+    for k in range(6):
         assert got[0, k] == pytest.approx(sum(wi for ci, wi in zip(classes, w) if ci == k), rel=1e-12)
         assert got[1, k] == sum(1 for ci in classes if ci == k)
 

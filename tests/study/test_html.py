@@ -110,7 +110,7 @@ def test_sections_toc_and_order():
     doc = parse(r.to_html())
     fixed = [sid for sid, _ in FIXED_SECTIONS]
     # the custom section sits before the cautions; every section once, in order
-    assert doc.sections == fixed[:5] + ["dispersal"] + fixed[5:]
+    assert doc.sections == fixed[:6] + ["dispersal"] + fixed[6:]
     assert r.section_ids == doc.sections
     toc = [a["href"] for t, a in doc.tags if t == "a"]
     assert toc == ["#" + s for s in doc.sections]

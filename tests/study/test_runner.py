@@ -252,3 +252,22 @@ def test_netcdf_run_equals_the_geotiff_run_in_numbers(full_run, tmp_path):
         for key, value in a.items():
             if isinstance(value, float):
                 assert b[key] == pytest.approx(value, rel=1e-9, abs=1e-9), (js.name, key)
+def test_reach_runs_every_method_and_distance_and_partitions_them(tmp_path):
+    # Analytic: a balanced design of 2 methods x 1 climate model x 3 distances per pathway
+    # gives 6 runs each, and the partition's shares sum to 1 per quantity (ANOVA identity).
+    import pandas as pd
+
+    from envelope.study.runner import run_study
+
+    p = small_study(tmp_path)
+    p.write_text(p.read_text().replace('methods = ["pointprocess"]', 'methods = ["pointprocess", "envelope"]')
+                 .replace("mean_distance_km = 5.0", "mean_distance_km = [3.0, 6.0]"))
+    results = run_study(load_study(p), tmp_path / "run")
+    assert "project:scenarios:envelope" in results["ran"]
+    s = json.loads((tmp_path / "run" / "reach" / "high_reach.json").read_text())
+    assert s["n_runs"] == 6 and s["runs_by"]["method"] == ["envelope", "pointprocess"]
+    assert s["runs_by"]["distance_km"] == [3.0, 4.5, 6.0]
+    part = pd.read_csv(tmp_path / "run" / "uncertainty_partition.csv")
+    assert "method" in set(part["source"])
+    for _, g in part.groupby("quantity"):
+        assert g["share"].sum() == pytest.approx(1.0, abs=1e-5)

@@ -137,8 +137,6 @@ def test_reach_off_makes_habitat_and_dispersal_optional(folder):
      r"dispersal.mean_distance_km: expected a number > 0, got nan \(float\)"),
     ("mean_distance_km = 2.0", "mean_distance_km = [4, 1]\nreplicates = 3",
      r"dispersal.mean_distance_km: expected \[low, high\] with low <= high"),
-    ("mean_distance_km = 2.0", "mean_distance_km = [1, 4]",
-     r"dispersal.mean_distance_km: .*dispersal.replicates >= 1"),
     ("[habitat]", "[model]\nfolds = 1\n\n[habitat]", r"model.folds: expected an integer >= 2 and <= 20, got 1"),
     ("[habitat]", "[model]\nbackground = 5000.0\n\n[habitat]",
      r"model.background: expected an integer >= 100, got 5000.0 \(float\)"),
