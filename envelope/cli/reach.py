@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
+from envelope.cli.options import overwrite_opt, polygons_opt, reach_inputs_opt, region_opt, seed_opt
 
 
 @click.command()
@@ -16,9 +16,12 @@ from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
 @click.option("--summary", required=True, type=click.Path(dir_okay=False), help="Summary JSON to write.")
 @click.option("--front", type=click.Path(dir_okay=False), default=None, help="Expansion front GeoJSON (0.5 contours).")
 @click.option("--arrival", type=click.Path(dir_okay=False), default=None, help="Arrival-year raster.")
+@polygons_opt
+@region_opt(help="Study region (GeoPackage, GeoJSON or shapefile, any CRS): spread only through cells inside it.")
 @overwrite_opt
 def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years, now_year,
-          step_years, rate, threshold, persistence_years, replicates, seed, out, summary, front, arrival, overwrite):
+          step_years, rate, threshold, persistence_years, replicates, seed, out, summary, front, arrival, polygons,
+          region, overwrite):
     """Habitat-gated dispersal through the transient climate.
 
     Starting from the cells occupied today, each step disperses propagules with the
@@ -37,6 +40,9 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
             --classes classes.csv --start occupied.tif --kernel 2dt --shape 3 \\
             --mean-distance-km 1:4 --replicates 50 --seed 1 --front front.geojson \\
             --arrival arrival.tif --out reach.tif --summary reach.json
+      $ envelope reach --now now.tif --future f2080.tif --years 2080 --habitat habitat.tif \\
+            --start records.csv --mean-distance-km 2 --region park.gpkg \\
+            --out reach.tif --summary reach.json --polygons reach.gpkg
     """
     from rich.console import Console
     from rich.progress import Progress
@@ -46,9 +52,10 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     from envelope.pipelines.inputs import build_reach_inputs
     from envelope.pipelines.reach import run_reach, write_reach_outputs
 
-    check_distinct({"--out": out, "--summary": summary, "--front": front, "--arrival": arrival},
+    check_distinct({"--out": out, "--summary": summary, "--front": front, "--arrival": arrival,
+                    "--polygons": polygons},
                    {"--now": now, "--future": futures, "--habitat": habitat, "--start": start, "--classes": classes})
-    for p in (out, summary, front, arrival):
+    for p in (out, summary, front, arrival, polygons):
         if p:
             check_writable(p, overwrite)
     if len(years) != len(futures):
@@ -59,14 +66,14 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     inputs = build_reach_inputs(now, {None: list(zip(years, futures))}, habitat, start, settings=settings,
                                 classes=classes, align_habitat=align_habitat, threshold=threshold,
                                 now_year=now_year, step_years=step_years, rate=rate,
-                                persistence_years=persistence_years)
+                                persistence_years=persistence_years, region=region)
     console = Console(stderr=True)
     with Progress(console=console, transient=True) as bar:
         task = bar.add_task("dispersal steps", total=None)
         result = run_reach(inputs, replicates=replicates, seed=seed,
                            progress=lambda i, n: bar.update(task, completed=i, total=n))
     written = write_reach_outputs(result, out, summary, front=front, arrival=arrival, overwrite=overwrite,
-                                  tags={"software": "envelope"})
+                                  tags={"software": "envelope"}, polygons=polygons)
     _print(result.summary, written)
 
 

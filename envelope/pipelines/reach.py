@@ -27,12 +27,13 @@ def run_reach(inputs, *, replicates: int = 0, seed: int = 0, progress=None, path
 
 
 def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, arrival=None, tags=None,
-                        overwrite=False) -> dict:
-    """Write the reach-class raster, the summary JSON and optionally the front and arrival files.
+                        overwrite=False, polygons=None) -> dict:
+    """Write the reach-class raster, the summary JSON and optionally the front, arrival and class-polygon files.
 
     All files are checked before any is written and each is written atomically.
+    ``polygons`` (.gpkg or .geojson) gets one dissolved polygon per reach class.
     """
-    targets = [p for p in (out, summary_path, front, arrival) if p]
+    targets = [p for p in (out, summary_path, front, arrival, polygons) if p]
     for p in targets:
         check_writable(p, overwrite)
     meta = dict(tags or {})
@@ -47,6 +48,11 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
         with atomic_output(front, overwrite=overwrite) as tmp:
             tmp.write_text(json.dumps(result.front))
         written["front"] = str(front)
+    if polygons:
+        from envelope.pipelines.change import write_class_polygons
+
+        written["polygons"] = str(write_class_polygons(result.classes, REACH_CLASSES, REACH_NODATA, polygons,
+                                                       overwrite=overwrite))
     write_raster(result.classes.rename("reach_class"), out, overwrite=overwrite, tags=meta,
                  categories=REACH_CLASSES, nodata=REACH_NODATA)
     written["classes"] = str(out)
