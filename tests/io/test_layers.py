@@ -28,7 +28,7 @@ def _write(path, values, names=None, res=0.5, lon0=-150.0):
 @pytest.fixture
 def files(tmp_path):
     # a portal's per-variable files: stems that are not variable names, no band descriptions
-    a = _write(tmp_path / "wc2_1_tmax_warmest.tif", np.full((3, 4), 1.0))
+    a = _write(tmp_path / "portal_tmax_warmest.tif", np.full((3, 4), 1.0))
     stack = _write(tmp_path / "stack.tif", np.stack([np.full((3, 4), 10.0), np.full((3, 4), 20.0)]),
                    names=["first", "second"])
     return tmp_path, a, stack
