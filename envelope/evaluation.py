@@ -17,6 +17,7 @@ __all__ = [
     "random_folds",
     "default_block_km",
     "cross_validate",
+    "independent_scores",
 ]
 
 
@@ -469,3 +470,32 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
                "n_folds": int(labels.size), "threshold_rule": rows[0]["threshold_rule"]}
     return per_fold, summary
 
+
+
+# --------------------------------------------------------------------------- independent data
+
+
+def independent_scores(presence_scores, other_scores, threshold: float) -> dict:
+    """Skill of a fitted model on independent data, at the model's own threshold.
+
+    ``other_scores`` are the suitabilities at surveyed absences (presence-absence data) or
+    at background cells (presence-background data); the metrics are those of
+    :func:`cross_validate`'s held-out folds, at the given ``threshold`` instead of one
+    chosen on training data: ``auc`` (Mann-Whitney, ties 1/2), ``sensitivity``,
+    ``specificity``, ``tss`` and ``kappa`` (predicted present: suitability >= threshold),
+    ``boyce`` (continuous Boyce index, may be NaN) and ``omission`` (share of presences
+    below the threshold).
+
+    References
+    ----------
+    Allouche, O., Tsoar, A. & Kadmon, R. (2006) J. Appl. Ecol. 43: 1223-1232.
+    Hirzel, A.H. et al. (2006) Ecol. Model. 199: 142-152.
+    """
+    p = np.asarray(presence_scores, dtype=np.float64)
+    o = np.asarray(other_scores, dtype=np.float64)
+    if p.size == 0 or o.size == 0:
+        raise InputError(f"evaluation: {p.size} presences and {o.size} absences/background; expected both")
+    cm = confusion(p, o, threshold)
+    return {"auc": auc(p, o), "tss": tss(*cm), "kappa": kappa(*cm), "boyce": boyce_index(p, o),
+            "omission": omission_rate(p, threshold), "sensitivity": sensitivity(*cm),
+            "specificity": specificity(*cm), "threshold": float(threshold)}

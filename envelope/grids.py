@@ -371,14 +371,18 @@ def valid_mask(stack: xr.DataArray) -> xr.DataArray:
 def match_variables(stack: xr.DataArray, variables, *, source="climate grid") -> xr.DataArray:
     """Select the model's variables from ``stack`` by name, in the model's order.
 
-    A missing variable is an error that names it and lists what the grid has.
+    A missing variable is an error that names both sides (the variables needed, the names
+    the grid has) and the fix: name each layer as the model does.
     """
     have = [str(v) for v in stack["variable"].values]
     missing = [v for v in variables if v not in have]
     if missing:
+        example = f"--climate {missing[0]}=FILE.tif (or FILE.tif:BAND)"
         raise InputError(
             f"{source}: variable {missing[0]!r} needed by the model is missing "
-            f"(grid has {', '.join(have)})"
+            f"(needed: {', '.join(map(str, variables))}; grid has {', '.join(have)}); "
+            f"name each layer as the model does: {example}, a layer table --layers LAYERS.csv "
+            "(name,path,band), or [climate.layers] in a study file"
         )
     if have == list(variables):
         return stack  # already in the model's order: selecting would copy every block

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import logging
 import re
 from collections import OrderedDict
@@ -14,13 +15,14 @@ import xarray as xr
 
 from envelope.errors import GridMismatchError, InputError
 from envelope.grids import check_grid_dims, check_same_shape, crs_label, grid_crs, parse_crs, valid_cells
-from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TERMS, MALFORMED_FLAG, to_float
+from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TAXON_TERMS, MALFORMED_FLAG, to_float
 
 log = logging.getLogger(__name__)
 
 #: Why a record was dropped, in the order the checks run; a record is counted under the first
 #: reason that applies to it, so the counts add up to ``n_read - n_kept``.
 DROP_REASONS = (
+    "other_taxon",
     "absent",
     "malformed",
     "imprecise",
@@ -37,6 +39,9 @@ EARTH_RADIUS_M = 6_371_008.7714
 
 #: Columns the cleaned table owns; source columns of the same name are kept as ``source_<name>``.
 OWN_COLUMNS = ("x", "y", "row", "col", "x_record", "y_record")
+
+#: Column of the cleaned table, present when absences were kept: 1 for a presence, 0 for an absence.
+PRESENCE_COLUMN = "presence"
 
 _ABSENT_WORDS = {"absent", "0", "0.0", "false", "no"}
 _PRESENT_WORDS = {"present", "1", "1.0", "true", "yes"}
@@ -68,6 +73,14 @@ class Records:
     dropped: OrderedDict
     crs: str
     record_crs: str = "EPSG:4326"
+    taxa: dict | None = None
+
+    @property
+    def n_absences(self) -> int:
+        """Kept absence records (only when the cleaning kept absences: column ``presence`` = 0)."""
+        if PRESENCE_COLUMN not in self.table.columns:
+            return 0
+        return int((self.table[PRESENCE_COLUMN] == 0).sum())
 
     @property
     def n_kept(self) -> int:
@@ -90,6 +103,9 @@ class Records:
             "dropped": {k: int(v) for k, v in self.dropped.items()},
             "crs": self.crs,
             "record_crs": self.record_crs,
+            **({} if self.taxa is None else {"taxa": self.taxa}),
+            **({} if PRESENCE_COLUMN not in self.table.columns else
+               {"presences": int(self.n_kept - self.n_absences), "absences": self.n_absences}),
         }
 
 
@@ -332,6 +348,112 @@ def _status_kept(table: pd.DataFrame, keep_status) -> np.ndarray:
     return status.isin(keep).to_numpy(dtype=bool)
 
 
+_RANK_MARKERS = {"subsp.", "ssp.", "var.", "subvar.", "f.", "forma", "fo.", "cv.", "nothosubsp.", "nothovar."}
+_EPITHET = re.compile(r"^[a-z\u00df-\u00ff][a-z\u00df-\u00ff-]*$")
+_GENUS = re.compile(r"^[A-Z\u00c0-\u00de][a-z\u00df-\u00ff-]+$")
+
+
+def canonical_name(name) -> str:
+    """A taxon name compared without case and, where that is safe, without authorship.
+
+    When the name reads ``Genus epithet [[rank] epithet] ...`` (a capitalised genus, then
+    lower-case epithets), everything after the epithets is authorship and is left out:
+    ``"Aus bus (Linnaeus, 1758)"`` -> ``"aus bus"``, ``"Aus bus var. cus L."`` ->
+    ``"aus bus var. cus"``. Any other name is compared whole, lower-cased, with runs of
+    white space made single. Hybrid signs (×) are kept. Empty names give "".
+    """
+    if name is None or (isinstance(name, float) and np.isnan(name)):
+        return ""
+    words = str(name).replace("\u00d7", " \u00d7 ").split()
+    if not words:
+        return ""
+    kept = []
+    if _GENUS.match(words[0]):
+        kept.append(words[0])
+        rest = words[1:]
+        if rest and rest[0] == "\u00d7":
+            kept.append(rest.pop(0))
+        if rest and _EPITHET.match(rest[0]):
+            kept.append(rest.pop(0))
+            while rest:
+                if rest[0] in _RANK_MARKERS and len(rest) > 1 and _EPITHET.match(rest[1]):
+                    kept += rest[:2]
+                    rest = rest[2:]
+                elif _EPITHET.match(rest[0]) and rest[0] not in _RANK_MARKERS:
+                    kept.append(rest.pop(0))   # a zoological trinomial
+                else:
+                    break
+            return " ".join(kept).lower()
+    return " ".join(words).lower()
+
+
+def _taxon_columns(table):
+    return [c for c in (find_column(table, t) for t in DWC_TAXON_TERMS) if c is not None]
+
+
+def select_taxon(table: pd.DataFrame, species: str | None = None, *, source: str = "records",
+                 option: str = "--species"):
+    """Which records are of one taxon: a boolean mask and a description of the taxa found.
+
+    A record's taxon is the first of its ``species``, ``acceptedScientificName`` and
+    ``scientificName`` that is given (:data:`envelope.terms.DWC_TAXON_TERMS`), compared by
+    :func:`canonical_name` (case, and authorship where safe, ignored). With ``species``, a
+    record is kept when any of the three names matches it; without, every record is kept as
+    long as the records name one taxon (records without a name go with it). A table without
+    any of the columns is taken as one taxon.
+
+    Returns
+    -------
+    mask : numpy.ndarray of bool
+    taxa : dict or None
+        ``{"asked", "columns", "counts": {name: records}}`` (None without name columns); the
+        names are the spellings most used in the table, most frequent taxon first.
+
+    Raises
+    ------
+    InputError
+        Several taxa and no ``species`` (each taxon is named with its count), a ``species``
+        that matches no record (the nearest names are listed), or ``species`` given for a
+        table without name columns.
+    """
+    columns = _taxon_columns(table)
+    n = len(table)
+    if not columns:
+        if species:
+            raise InputError(f"{source}: {option} {species!r} given, but the records have no "
+                             f"{', '.join(DWC_TAXON_TERMS)} column to match it in")
+        return np.ones(n, dtype=bool), None
+    names = pd.Series([None] * n, dtype=object)
+    for column in columns:
+        values = table[column].astype("string").str.strip()
+        names = names.where(names.notna(), values.where(values.notna() & (values != ""), None).astype(object))
+    keys = names.map(canonical_name)
+    spelled = pd.DataFrame({"key": keys, "name": names}).loc[keys != ""]
+    counts = spelled["key"].value_counts()
+    display = {k: spelled.loc[spelled["key"] == k, "name"].value_counts().index[0] for k in counts.index}
+    taxa_counts = {display[k]: int(v) for k, v in counts.items()}
+
+    def shown(items):
+        return ", ".join(f"{display[k]} ({int(counts[k])})" for k in items)
+
+    if species:
+        query = str(species).strip()
+        query = canonical_name(query[:1].upper() + query[1:]) if query else ""
+        mask = np.zeros(n, dtype=bool)
+        for column in columns:
+            mask |= table[column].map(canonical_name).to_numpy() == query
+        if not mask.any():
+            close = difflib.get_close_matches(query, list(counts.index), n=5, cutoff=0.6)
+            near = shown(close) if close else shown(list(counts.index[:5]))
+            raise InputError(f"{source}: {option} {species!r} matches no record in column(s) {', '.join(columns)}; "
+                             f"nearest names: {near}")
+        return mask, {"asked": species, "columns": columns, "counts": taxa_counts}
+    if len(counts) > 1:
+        raise InputError(f"{source}: the records hold {len(counts)} taxa: {shown(list(counts.index))}; "
+                         f"choose one with {option} NAME")
+    return np.ones(n, dtype=bool), {"asked": None, "columns": columns, "counts": taxa_counts}
+
+
 def _check_years(years):
     try:
         start, end = years
@@ -361,12 +483,18 @@ def clean_occurrences(
     thin_km: float | None = None,
     one_per_cell: bool = True,
     keep_status=("present",),
+    species: str | None = None,
+    absences: bool = False,
+    species_option: str = "--species",
 ) -> Records:
     """Clean occurrence records against a grid and count every dropped record by reason.
 
     Checks run in the order of :data:`DROP_REASONS`; each record is counted under the first
     reason that applies:
 
+    ``other_taxon``
+        Not of the taxon ``species`` (:func:`select_taxon`). Without ``species`` the records
+        must name a single taxon, or the cleaning stops with the taxa and their counts.
     ``absent``
         ``occurrenceStatus`` is not in ``keep_status``; "absent", "0", "false", "no" mean
         absent, "present", "1", "true", "yes" and an empty status mean present.
@@ -385,9 +513,11 @@ def clean_occurrences(
     ``no_climate``
         Any variable is NaN at the record's cell.
     ``duplicate_cell``
-        Another record earlier in the table is in the same cell (``one_per_cell``).
+        Another record earlier in the table is in the same cell (``one_per_cell``); with
+        ``absences``, presences come first, so an absence in a cell with a presence goes.
     ``thinned``
-        Within ``thin_km`` of a record kept before it (:func:`thin_greedy` on cell centres).
+        Within ``thin_km`` of a record kept before it (:func:`thin_greedy` on cell centres;
+        with ``absences``, presences and absences are thinned separately).
 
     Parameters
     ----------
@@ -404,6 +534,13 @@ def clean_occurrences(
         Minimum distance between kept records, km.
     one_per_cell : bool, default=True
     keep_status : sequence of str, default=("present",)
+    species : str, optional
+        Keep the records of this taxon (:func:`select_taxon`).
+    absences : bool, default=False
+        Keep absence records too (``occurrenceStatus`` absent); the cleaned table then has
+        the column :data:`PRESENCE_COLUMN` (1 presence, 0 absence).
+    species_option : str, default="--species"
+        How messages name the species setting (a study file says ``records.species``).
 
     Returns
     -------
@@ -427,7 +564,12 @@ def clean_occurrences(
         mask = (code == 0) & np.asarray(mask, dtype=bool)
         code[mask] = DROP_REASONS.index(reason) + 1
 
+    taxon_mask, taxa = select_taxon(table, species, source=source, option=species_option)
+    drop(~taxon_mask, "other_taxon")
+    if absences:
+        keep_status = tuple(keep_status) + ("absent",)
     drop(~_status_kept(table, keep_status), "absent")
+    is_absence = ~_status_kept(table, ("present",)) if absences else np.zeros(n, dtype=bool)
 
     x_record, y_record = record_coordinates(table, source)
     bad = ~(np.isfinite(x_record) & np.isfinite(y_record))
@@ -487,8 +629,10 @@ def clean_occurrences(
     if one_per_cell:
         live = np.flatnonzero(code == 0)
         flat = rows[live] * grid.sizes["x"] + cols[live]
+        # presences first (stable), so an absence never displaces a presence of its cell
+        order = np.argsort(is_absence[live], kind="stable")
         duplicate = np.zeros(n, dtype=bool)
-        duplicate[live] = pd.Series(flat).duplicated(keep="first").to_numpy()
+        duplicate[live[order]] = pd.Series(flat[order]).duplicated(keep="first").to_numpy()
         drop(duplicate, "duplicate_cell")
 
     cx = np.full(n, np.nan)
@@ -500,7 +644,9 @@ def clean_occurrences(
         if not thin_km > 0:
             raise InputError(f"thin_km: {thin_km!r}; expected a positive distance in km")
         thinned = np.zeros(n, dtype=bool)
-        thinned[live] = ~thin_greedy(cx[live], cy[live], target, float(thin_km))
+        for group in (live[~is_absence[live]], live[is_absence[live]]):
+            if group.size:
+                thinned[group] = ~thin_greedy(cx[group], cy[group], target, float(thin_km))
         drop(thinned, "thinned")
 
     dropped = OrderedDict((reason, int(np.count_nonzero(code == k + 1))) for k, reason in enumerate(DROP_REASONS))
@@ -515,10 +661,14 @@ def clean_occurrences(
         "x_record": x_record[kept], "y_record": y_record[kept],
     })
     extra = table.loc[kept].drop(columns=[c for c in (MALFORMED_FLAG, "x_record", "y_record") if c in table.columns])
-    extra = extra.rename(columns={c: f"source_{c}" for c in extra.columns if c in OWN_COLUMNS})
+    own = OWN_COLUMNS + ((PRESENCE_COLUMN,) if absences else ())
+    extra = extra.rename(columns={c: f"source_{c}" for c in extra.columns if c in own})
     out = pd.concat([out, extra.reset_index(drop=True)], axis=1)
+    if absences:
+        out.insert(6, PRESENCE_COLUMN, (~is_absence[kept]).astype(np.int8))
     out.attrs = {"source": source, "crs": crs_label(target)}
-    return Records(table=out, n_read=n, dropped=dropped, crs=crs_label(target), record_crs=crs_label(record_crs))
+    return Records(table=out, n_read=n, dropped=dropped, crs=crs_label(target), record_crs=crs_label(record_crs),
+                   taxa=taxa)
 
 
 def _crs_hint(grid, target, record_crs, x, y, n_placed) -> str:

@@ -47,7 +47,7 @@ def test_every_reason_counted_exactly():
         [*centre(12, 15), None, 2005, None],        # kept: unknown uncertainty and status are kept
     ]
     records = clean_occurrences(dwc(rows), grid, max_uncertainty_m=1000, record_years=(1990, 2020), thin_km=10)
-    expected = {"absent": 2, "malformed": 3, "imprecise": 1, "outside_years": 2, "outside_grid": 1,
+    expected = {"other_taxon": 0, "absent": 2, "malformed": 3, "imprecise": 1, "outside_years": 2, "outside_grid": 1,
                 "no_climate": 1, "duplicate_cell": 1, "thinned": 1}
     assert dict(records.dropped) == expected
     assert list(records.dropped) == list(DROP_REASONS)

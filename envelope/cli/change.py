@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from envelope.cli.options import overwrite_opt
+from envelope.cli.options import overwrite_opt, polygons_opt
 
 _existing = click.Path(exists=True, dir_okay=False)
 
@@ -29,9 +29,10 @@ _existing = click.Path(exists=True, dir_okay=False)
               help="Elevation raster (m, same grid) for the mean elevation shift.")
 @click.option("--edge-percentile", type=float, default=95.0, show_default=True,
               help="Area-weighted percentile of poleward latitude taken as the leading edge.")
+@polygons_opt
 @overwrite_opt
 def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess, elevation,
-           edge_percentile, overwrite):
+           edge_percentile, polygons, overwrite):
     """Classify and measure range change between two suitability maps.
 
     Cells are absent, lost, stable, gained, or (with --mess) gained or stable in novel climate;
@@ -45,12 +46,13 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
       $ envelope change --now now.tif --future high_2070.tif --out change.tif --summary change.json
       $ envelope change --now now.tif --future f.tif --mess mess.tif --threshold 0.42 --out c.tif --summary c.json
       $ envelope change --now now.tif --scenarios suitability.csv --out-dir changes --table changes.csv
+      $ envelope change --now now.tif --future f.tif --out c.tif --summary c.json --polygons change.gpkg
     """
     from envelope.pipelines.change import range_change, range_change_batch
 
     if scenarios is not None:
         clash = [flag for flag, value in (("--future", future), ("--out", out), ("--summary", summary),
-                                          ("--mess", mess)) if value is not None]
+                                          ("--mess", mess), ("--polygons", polygons)) if value is not None]
         if clash:
             raise click.UsageError(f"{clash[0]} does not go with --scenarios (give future maps in the table)")
         if out_dir is None or table is None:
@@ -64,10 +66,10 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
     if out_dir is not None or table is not None:
         raise click.UsageError("--out-dir and --table go with --scenarios")
     result = range_change(now, future, out, summary, threshold=threshold, mess=mess, elevation=elevation,
-                          edge_percentile=edge_percentile, overwrite=overwrite)
+                          edge_percentile=edge_percentile, overwrite=overwrite, polygons=polygons)
     area = result["area_km2"]
     pct = result["range_change_pct"]
     click.echo(f"Range {result['range_km2']['now']:.1f} -> {result['range_km2']['future']:.1f} km² "
                f"({'n/a' if pct is None else f'{pct:+.1f}%'}); lost {area['lost']:.1f}, stable {area['stable_total']:.1f}, "
                f"gained {area['gained_total']:.1f} km²")
-    click.echo(f"Wrote {out} and {summary}")
+    click.echo(f"Wrote {out} and {summary}" + (f" and {result['polygons']}" if polygons else ""))

@@ -6,8 +6,8 @@ import click
 
 from envelope.models import BIAS_METHODS, METHOD_NAMES
 
-from envelope.cli.options import (climate_opt, overwrite_opt, positive_float, record_years_opt, record_years_value,
-                                  seed_opt, variables_opt)
+from envelope.cli.options import (absences_opt, climate_opt, overwrite_opt, positive_float, record_years_opt,
+                                  record_years_value, region_opt, seed_opt, species_opt, variables_opt)
 
 
 def _rule(ctx, param, value):
@@ -27,7 +27,8 @@ def _rule(ctx, param, value):
 
 @click.command()
 @click.option("--presences", required=True, type=click.Path(exists=True, dir_okay=False),
-              help="Occurrence records: Darwin Core CSV/TSV (decimalLongitude, decimalLatitude, ...).")
+              help="Occurrence records: Darwin Core CSV/TSV (decimalLongitude, decimalLatitude, ...) or a "
+                   "Darwin Core Archive zip.")
 @climate_opt()
 @click.option("--out", "out", required=True, type=click.Path(dir_okay=False), help="Model file to write (.envm).")
 @click.option("--summary", type=click.Path(dir_okay=False), default=None,
@@ -59,10 +60,16 @@ def _rule(ctx, param, value):
 @record_years_opt
 @click.option("--thin-km", type=float, callback=positive_float, default=None,
               help="Spatially thin records to this minimum distance.")
+@species_opt
+@absences_opt
+@region_opt(help="Study region (GeoPackage, GeoJSON or shapefile, any CRS): background is drawn inside it only.")
+@click.option("--background-buffer-km", type=float, callback=positive_float, default=None, metavar="KM",
+              help="Draw background only within KM of a record.")
 @seed_opt
 @overwrite_opt
 def fit(presences, climate, out, summary, method, background, bias, bias_method, variables, blocks_km, folds, cv,
-        features, threshold_rule, max_uncertainty_m, record_years, thin_km, seed, overwrite):
+        features, threshold_rule, max_uncertainty_m, record_years, thin_km, species, absences, region,
+        background_buffer_km, seed, overwrite):
     """Fit and cross-validate a presence/background model, and save it.
 
     Cleans the records against the baseline climate (every dropped record is counted by
@@ -72,6 +79,11 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
     10th-percentile omission), fits the final model on all data (the point-process model
     chooses its penalty and feature classes by the same spatial folds), chooses the
     threshold, and writes the model file, a fit summary JSON and a per-fold CSV.
+
+    Background comes from the whole grid, or only from inside --region and/or within
+    --background-buffer-km of a record. With --absences, surveyed absences
+    (occurrenceStatus absent) are kept: brt and forest are then fitted to presences
+    against absences; the other methods note them and keep the background.
 
     \b
     Examples:
@@ -84,6 +96,10 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
             --bias-method weighted --out weighted.envm
       $ envelope fit --presences records.csv --climate baseline.tif --features linear,quadratic \\
             --out smooth.envm
+      $ envelope fit --presences download.zip --species "Aus bus" --layers layers.csv \\
+            --region study_area.gpkg --background-buffer-km 200 --out model.envm
+      $ envelope fit --presences surveys.csv --absences --method brt --climate bio1=bio1.tif \\
+            --climate bio12=bio12.tif --out pa.envm
     """
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -91,13 +107,15 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
     from envelope.io.atomic import check_distinct, check_writable
     from envelope.pipelines.fit import FitOptions, fit_files, write_fit_outputs
 
-    check_distinct({"--out": out, "--summary": summary}, {"--presences": presences, "--climate": climate, "--bias": bias})
+    check_distinct({"--out": out, "--summary": summary},
+                   {"--presences": presences, "--climate": climate, "--bias": bias, "--region": region})
     check_writable(out, overwrite)
     console = Console(stderr=True)
     options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
                          folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed, features=features,
                          max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
-                         thin_km=thin_km, bias_method=bias_method)
+                         thin_km=thin_km, bias_method=bias_method, species=species, absences=absences,
+                         background_buffer_km=background_buffer_km)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True) as bar:
         tasks = {}
@@ -107,7 +125,7 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
                 tasks[stage] = bar.add_task(stage, total=total)
             bar.update(tasks[stage], completed=done)
 
-        result = fit_files(presences, list(climate), options=options, bias=bias, progress=progress)
+        result = fit_files(presences, list(climate), options=options, bias=bias, region=region, progress=progress)
     paths = write_fit_outputs(result, out, summary, overwrite=overwrite)
     print_fit_summary(result.summary, paths)
 
@@ -148,8 +166,9 @@ def print_fit_summary(summary: dict, paths: dict) -> None:
         console.print(f"features: {', '.join(fc['chosen'])} ({how})"
                       + (f"; CV AUC {'; '.join(parts)}" if parts else ""))
     thr = summary["threshold"]
-    console.print(f"threshold {thr['value']:.4f} ({thr['rule']}); {summary['n_presences']} presences, "
-                  f"{summary['n_background']} background")
+    against = (f"{summary['n_absences']} absences" if summary.get("training") == "presence-absence"
+               else f"{summary['n_background']} background")
+    console.print(f"threshold {thr['value']:.4f} ({thr['rule']}); {summary['n_presences']} presences, {against}")
     bg = summary.get("background") or {}
     if bg:
         line = f"background: {bg['draw']}; {bg['n_cells']} distinct cells; bias correction {bg['bias_correction']}"

@@ -14,6 +14,7 @@ from envelope.errors import EnvelopeError
 COMMANDS = {
     "info": "envelope.cli.info:info",
     "fit": "envelope.cli.fit:fit",
+    "evaluate": "envelope.cli.evaluate:evaluate",
     "inspect": "envelope.cli.inspect:inspect",
     "project": "envelope.cli.project:project",
     "change": "envelope.cli.change:change",
@@ -30,6 +31,7 @@ COMMANDS = {
 SUMMARIES = {
     "info": "Describe a grid: CRS, shape, variables, nodata share, true area.",
     "fit": "Fit and cross-validate a presence/background model.",
+    "evaluate": "Score a fitted model on independent records.",
     "inspect": "Print what a model file holds.",
     "project": "Project a model onto climate grids, with MESS.",
     "change": "Classify and measure range change between two suitability maps.",

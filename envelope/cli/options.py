@@ -4,15 +4,19 @@ Used by:
   output_opt     -- fit, project, change, reach, bioclim, delta
   overwrite_opt  -- every command that writes files
   scheduler_opt  -- project, reach, run
-  climate_opt    -- fit, project
+  climate_opt    -- records, fit, project, evaluate (--climate [NAME=]PATH[:BAND], repeatable, and --layers CSV)
   seed_opt       -- fit, reach
   json_opt       -- info, inspect
   reach_inputs_opt -- reach, target (optional there: --study can supply them)
   record_years_opt -- records, fit (--record-years; the old --years still works, with a warning)
+  species_opt, absences_opt -- records, fit, evaluate
+  region_opt     -- fit, project, reach
+  polygons_opt   -- change, reach
 """
 
 from __future__ import annotations
 
+import functools
 import re
 
 import click
@@ -74,6 +78,26 @@ def record_years_value(record_years):
     return click.get_current_context().meta.get("old_record_years")
 
 
+species_opt = click.option(
+    "--species", default=None, metavar="NAME",
+    help="Keep the records of this taxon (scientificName, acceptedScientificName or species; case and "
+         "authorship ignored). Needed when the records hold several taxa.")
+
+absences_opt = click.option(
+    "--absences", is_flag=True,
+    help="Keep records whose occurrenceStatus is absent, as absences (survey data).")
+
+polygons_opt = click.option(
+    "--polygons", type=click.Path(dir_okay=False), default=None, metavar="FILE.gpkg|FILE.geojson",
+    help="Also write one dissolved polygon per class (fields class, name, area_km2 = true area) in the "
+         "grid's CRS, for planning GIS; the format follows the suffix.")
+
+
+def region_opt(help="Study region: GeoPackage, GeoJSON or shapefile of polygons, in any CRS."):
+    return click.option("--region", type=click.Path(exists=True, dir_okay=False), default=None, metavar="FILE",
+                        help=help)
+
+
 overwrite_opt = click.option("--overwrite", is_flag=True, help="Replace output files that already exist.")
 
 json_opt = click.option("--json", "as_json", is_flag=True, help="Print JSON instead of a table.")
@@ -101,14 +125,30 @@ def output_opt(required=True, help="Output file."):
 
 
 def climate_opt(multiple=True, required=True):
-    return click.option(
-        "--climate",
-        "climate",
-        multiple=multiple,
-        required=required,
-        type=click.Path(exists=True),
-        help="Climate grid: multi-band GeoTIFF, single-band GeoTIFFs (repeat the option), or NetCDF.",
-    )
+    """--climate [NAME=]PATH[:BAND] (repeatable) and --layers LAYERS.csv, passed as one list ``climate``.
+
+    The list holds paths and named layers (see ``envelope.pipelines.inputs.climate_sources``);
+    ``required`` asks for at least one of the two options.
+    """
+    def decorate(f):
+        @functools.wraps(f)
+        def wrapper(*args, climate=(), layers=None, **kwargs):
+            from envelope.pipelines.inputs import climate_sources
+
+            if required and not climate and not layers:
+                raise click.UsageError("give the climate grid: --climate PATH or NAME=PATH[:BAND] (repeat it), "
+                                       "or --layers LAYERS.csv")
+            return f(*args, climate=climate_sources(climate, layers), **kwargs)
+
+        wrapper = click.option(
+            "--layers", "layers", type=click.Path(exists=True, dir_okay=False), default=None, metavar="LAYERS.csv",
+            help="Layer table naming each climate variable: CSV with columns name,path[,band].")(wrapper)
+        return click.option(
+            "--climate", "climate", multiple=True, metavar="[NAME=]PATH[:BAND]",
+            help="Climate grid: multi-band GeoTIFF, single-band GeoTIFFs or NetCDF (repeat the option); "
+                 "NAME=PATH names the variable a file holds, NAME=PATH:BAND one band of a multi-band file.")(wrapper)
+
+    return decorate
 
 
 positive_float = _positive_float

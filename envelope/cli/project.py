@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from envelope.cli.options import climate_opt, output_opt, overwrite_opt, scheduler_opt
+from envelope.cli.options import climate_opt, output_opt, overwrite_opt, region_opt, scheduler_opt
 
 MESS_AUTO = "__beside__"  # --mess given without a file (scenario batch: one MESS per scenario)
 
@@ -32,13 +32,15 @@ def _agreement(ctx, param, value):
               help="Folder for the scenario batch outputs.")
 @click.option("--agreement", type=float, default=2 / 3, show_default="2/3", callback=_agreement,
               help="Share of climate models that must call a cell suitable for the consensus map.")
+@region_opt(help="Study region (GeoPackage, GeoJSON or shapefile, any CRS): project only the cells inside it.")
 @scheduler_opt
 @overwrite_opt
-def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir, agreement, scheduler,
+def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir, agreement, region, scheduler,
             overwrite):
     """Project a model onto climate grids, with MESS.
 
-    Single grid: reads the model's variables by name from the climate grid, clamps them
+    Single grid: reads the model's variables by name from the climate grid (name layers
+    with --climate NAME=PATH[:BAND] or --layers when the files do not), clamps them
     to the training range (unless --no-clamp) and writes suitability 0-1 with the
     model's threshold and provenance in the raster tags. --mess adds the multivariate
     environmental similarity surface and prints the share of the area (true cell areas)
@@ -58,6 +60,8 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
       $ envelope project model.envm --climate future.tif --out suit.tif --binary suit01.tif
       $ envelope project model.envm --scenarios scenarios.csv --out-dir projections --mess
       $ envelope project model.envm --climate future.tif --out suit.tif --scheduler tcp://10.0.0.5:8786
+      $ envelope project model.envm --climate bio5=f_bio5.tif --climate bio12=f_stack.tif:12 --out suit.tif
+      $ envelope project model.envm --layers future_layers.csv --region park.gpkg --out suit.tif
     """
     if scenarios:
         if climate or out or binary:
@@ -71,7 +75,7 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
         with _progress_bar() as progress:
             result = project_scenarios(model_file, scenarios, out_dir, mess=mess is not None, agreement=agreement,
                                        clamp=not no_clamp, overwrite=overwrite, scheduler=scheduler,
-                                       progress=progress)
+                                       progress=progress, region=region)
         for row in result["rows"]:
             share = "" if row["novel_share"] is None else f"  novel climate {100 * row['novel_share']:.2f} % of area"
             click.echo(f"{row['name']}: {row['path']}{share}")
@@ -90,7 +94,7 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
 
     with _progress_bar() as progress:
         result = project_file(model_file, list(climate), out, mess_out=mess, binary_out=binary, clamp=not no_clamp,
-                              overwrite=overwrite, scheduler=scheduler, progress=progress)
+                              overwrite=overwrite, scheduler=scheduler, progress=progress, region=region)
     click.echo(f"suitability: {result['out']} ({result['method']}, threshold {result['threshold']:.4g})")
     if result["mess"]:
         click.echo(f"MESS: {result['mess']}; novel climate (MESS < 0): {100 * result['novel_share']:.2f} % of area")

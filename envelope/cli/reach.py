@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import click
 
-from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
+from envelope.cli.options import overwrite_opt, polygons_opt, reach_inputs_opt, region_opt, seed_opt
 
 
 @click.command()
@@ -18,10 +18,12 @@ from envelope.cli.options import overwrite_opt, reach_inputs_opt, seed_opt
 @click.option("--arrival", type=click.Path(dir_okay=False), default=None, help="Arrival-year raster.")
 @click.option("--probability", type=click.Path(dir_okay=False), default=None,
               help="Probability-of-reach raster: the share of runs (replicates) occupying each cell at the horizon.")
+@polygons_opt
+@region_opt(help="Study region (GeoPackage, GeoJSON or shapefile, any CRS): spread only through cells inside it.")
 @overwrite_opt
 def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years, now_year,
           step_years, rate, threshold, persistence_years, replicates, seed, out, summary, front, arrival, probability,
-          overwrite):
+          polygons, region, overwrite):
     """Habitat-gated dispersal through the transient climate.
 
     Starting from the cells occupied today, each step disperses propagules with the
@@ -42,6 +44,9 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
             --classes classes.csv --start occupied.tif --kernel 2dt --shape 3 \\
             --mean-distance-km 1:4 --replicates 50 --seed 1 --front front.geojson \\
             --arrival arrival.tif --probability reach_probability.tif --out reach.tif --summary reach.json
+      $ envelope reach --now now.tif --future f2080.tif --years 2080 --habitat habitat.tif \\
+            --start records.csv --mean-distance-km 2 --region park.gpkg \\
+            --out reach.tif --summary reach.json --polygons reach.gpkg
     """
     from rich.console import Console
     from rich.progress import Progress
@@ -52,9 +57,9 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     from envelope.pipelines.reach import as_run_set, run_reach, write_reach_outputs
 
     check_distinct({"--out": out, "--summary": summary, "--front": front, "--arrival": arrival,
-                    "--probability": probability},
+                    "--probability": probability, "--polygons": polygons},
                    {"--now": now, "--future": futures, "--habitat": habitat, "--start": start, "--classes": classes})
-    for p in (out, summary, front, arrival, probability):
+    for p in (out, summary, front, arrival, probability, polygons):
         if p:
             check_writable(p, overwrite)
     if len(years) != len(futures):
@@ -65,7 +70,7 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     inputs = build_reach_inputs(now, {None: list(zip(years, futures))}, habitat, start, settings=settings,
                                 classes=classes, align_habitat=align_habitat, threshold=threshold,
                                 now_year=now_year, step_years=step_years, rate=rate,
-                                persistence_years=persistence_years)
+                                persistence_years=persistence_years, region=region)
     console = Console(stderr=True)
     with Progress(console=console, transient=True) as bar:
         task = bar.add_task("dispersal steps", total=None)
@@ -73,7 +78,7 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
                            progress=lambda i, n: bar.update(task, completed=i, total=n))
     result = as_run_set(result)
     written = write_reach_outputs(result, out, summary, front=front, arrival=arrival, probability=probability,
-                                  overwrite=overwrite, tags={"software": "envelope"})
+                                  overwrite=overwrite, tags={"software": "envelope"}, polygons=polygons)
     _print(result.summary, written)
 
 

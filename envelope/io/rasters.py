@@ -12,6 +12,7 @@ import xarray as xr
 import rioxarray  # noqa: F401  (registers .rio)
 
 from envelope.errors import InputError
+from envelope.io.layers import ClimateLayer
 
 log = logging.getLogger(__name__)
 
@@ -353,7 +354,9 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
         A multi-band GeoTIFF (band descriptions name the variables; ``band_1``... with a
         warning when missing), several single-band GeoTIFFs (each file's stem names its
         variable; all must share one grid), or a CF-NetCDF file (each 2-D data variable is a
-        variable; lat/lon or projected x/y with a grid mapping).
+        variable; lat/lon or projected x/y with a grid mapping). Any item may be a
+        :class:`envelope.io.layers.ClimateLayer`: one band of a file under the name the
+        user gives it, whatever the file calls it.
     variables : list of str, optional
         Keep these variables, in this order.
     rename : dict, optional
@@ -387,7 +390,8 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
         raise InputError(f"climate: no files given ({_EXPECTED})")
     parts = []
     for path in items:
-        part = _read(path, time=time, chunks=chunks)
+        part = _read_named(path, time=time, chunks=chunks) if isinstance(path, ClimateLayer) else \
+            _read(path, time=time, chunks=chunks)
         if parts:
             check_same_grid(parts[0], part, ref_name=str(items[0]), other_name=str(path))
         parts.append(part)
@@ -419,6 +423,31 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
     stack.name = "climate"
     stack.attrs.pop("band_tags", None)
     return stack.rio.write_crs(parts[0].rio.crs)
+
+
+def _read_named(layer: ClimateLayer, *, time, chunks) -> xr.DataArray:
+    """One band of a file as a one-variable stack named ``layer.name``; only that band is ever read."""
+    part = _read(layer.path, time=time, chunks=chunks)
+    names = [str(v) for v in part["variable"].values]
+    band = layer.band
+    if band is None:
+        if len(names) != 1:
+            raise InputError(f"--climate {layer}: {layer.path} holds {len(names)} layers ({', '.join(names)}); "
+                             f"name one with {layer.name}={layer.path}:BAND (a band number or name)")
+        index = 0
+    elif isinstance(band, int):
+        if not 1 <= band <= len(names):
+            raise InputError(f"--climate {layer}: band {band} does not exist ({layer.path} has bands 1..{len(names)})")
+        index = band - 1
+    elif band in names:
+        index = names.index(band)
+    else:
+        raise InputError(f"--climate {layer}: {layer.path} has no band or variable {band!r} "
+                         f"(it holds {', '.join(names)})")
+    if len(names) > 1:
+        part = (part.isel(variable=[index]) if raster_format(layer.path) == "NetCDF"
+                else _read(layer.path, time=time, chunks=chunks, bands=[index]))
+    return part.assign_coords(variable=[layer.name])
 
 
 def _keep_variables(items, parts, per_file, wanted: set, *, time, chunks) -> list:

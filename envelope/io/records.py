@@ -1,7 +1,8 @@
-"""Reading occurrence tables (CSV/TSV, Darwin Core or user-named coordinate columns)."""
+"""Reading occurrence tables (CSV/TSV or Darwin Core Archive zip; Darwin Core or user-named coordinate columns)."""
 
 from __future__ import annotations
 
+import codecs
 import csv
 import os
 from pathlib import Path
@@ -11,6 +12,7 @@ import pandas as pd
 
 from envelope.errors import InputError
 from envelope.grids import crs_label, parse_crs
+from envelope.io.dwca import is_zip, read_core
 from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TERMS, MALFORMED_FLAG, to_float
 
 _CANDIDATE_DELIMITERS = (",", "\t", ";", "|")
@@ -41,7 +43,9 @@ def read_occurrences(
     Parameters
     ----------
     path : path-like
-        CSV, TSV or other delimited text, UTF-8 (a byte-order mark is allowed).
+        CSV, TSV or other delimited text, UTF-8 (a byte-order mark is allowed), or a Darwin
+        Core Archive: a zip whose ``meta.xml`` describes the core file
+        (:func:`envelope.io.dwca.read_core`; recognised by content, whatever the suffix).
     x_column, y_column : str, optional
         Coordinate columns when they are not Darwin Core; then ``crs`` is required.
     crs : str, optional
@@ -56,7 +60,9 @@ def read_occurrences(
     pandas.DataFrame
         Source columns (text, NaN where empty), then ``x_record``, ``y_record`` (float64),
         ``line`` (line number in the file) and ``malformed`` (bool). ``attrs`` holds
-        ``source`` (the path), ``crs``, ``x_column`` and ``y_column``.
+        ``source`` (the path), ``crs``, ``x_column``, ``y_column`` and ``read`` (what was
+        read: format, delimiter, encoding, byte-order mark or the archive's core file, row
+        type and ignored extensions, and the number of rows).
 
     Raises
     ------
@@ -86,30 +92,13 @@ def read_occurrences(
                          "(e.g. crs='EPSG:3035' or --crs EPSG:3035)")
     record_crs = parse_crs(crs if crs is not None else "EPSG:4326", str(path))
 
-    text = _read_text(path)
-    if not text.strip():
-        raise InputError(f"{path}: file is empty; expected a header line naming the columns "
-                         f"(e.g. {DWC_LONGITUDE},{DWC_LATITUDE})")
-    if delimiter is None:
-        delimiter = _sniff_delimiter(text, path)
-
-    reader = csv.reader(text.splitlines(keepends=True), delimiter=delimiter)
-    header = None
-    rows, lines, wrong_length = [], [], []
-    for fields in reader:
-        if not fields or all(not f.strip() for f in fields):
-            continue  # blank line
-        if header is None:
-            header = _header(fields, path)
-            continue
-        wrong_length.append(len(fields) != len(header))
-        # keep short rows padded and long rows cut, so other fields stay in their columns
-        fields = (fields + [""] * len(header))[: len(header)]
-        rows.append(fields)
-        lines.append(reader.line_num)
-    if not rows:
-        raise InputError(f"{path}: holds a header but no records; expected one record per line after the header")
-
+    if is_zip(path):
+        core = read_core(path)
+        header, rows, lines, wrong_length, read_info = core.columns, core.rows, core.lines, core.wrong_length, core.info
+        if not rows:
+            raise InputError(f"{path}: the archive's core file {core.info['core']} holds no records")
+    else:
+        header, rows, lines, wrong_length, read_info = _read_delimited(path, delimiter)
     table = pd.DataFrame(rows, columns=header, dtype=object)
     table = table.apply(lambda s: s.str.strip()).replace("", np.nan)
     table = _canonical_terms(table)
@@ -137,19 +126,51 @@ def read_occurrences(
     table["y_record"] = y
     table["line"] = np.asarray(lines, dtype=np.int64)
     table[MALFORMED_FLAG] = malformed
-    table.attrs = {"source": str(path), "crs": crs_label(record_crs), "x_column": x_column, "y_column": y_column}
+    table.attrs = {"source": str(path), "crs": crs_label(record_crs), "x_column": x_column, "y_column": y_column,
+                   "read": {**read_info, "rows": len(table)}}
     return table
+
+
+def _read_delimited(path: Path, delimiter):
+    """Header, rows, line numbers, wrong-length flags and a description of a delimited text file."""
+    text, bom = _read_text(path)
+    if not text.strip():
+        raise InputError(f"{path}: file is empty; expected a header line naming the columns "
+                         f"(e.g. {DWC_LONGITUDE},{DWC_LATITUDE})")
+    if delimiter is None:
+        delimiter = _sniff_delimiter(text, path)
+
+    reader = csv.reader(text.splitlines(keepends=True), delimiter=delimiter)
+    header = None
+    rows, lines, wrong_length = [], [], []
+    for fields in reader:
+        if not fields or all(not f.strip() for f in fields):
+            continue  # blank line
+        if header is None:
+            header = _header(fields, path)
+            continue
+        wrong_length.append(len(fields) != len(header))
+        # keep short rows padded and long rows cut, so other fields stay in their columns
+        fields = (fields + [""] * len(header))[: len(header)]
+        rows.append(fields)
+        lines.append(reader.line_num)
+    if not rows:
+        raise InputError(f"{path}: holds a header but no records; expected one record per line after the header")
+    info = {"format": "delimited text", "delimiter": delimiter, "encoding": "UTF-8", "byte_order_mark": bom}
+    return header, rows, lines, wrong_length, info
 
 
 def _read_text(path: Path) -> str:
     if not path.exists():
-        raise InputError(f"{path}: file not found; expected an occurrence table (CSV or TSV)")
+        raise InputError(f"{path}: file not found; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
     if path.is_dir():
-        raise InputError(f"{path}: is a folder; expected an occurrence table (CSV or TSV)")
+        raise InputError(f"{path}: is a folder; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
+    raw = path.read_bytes()
     try:
-        return path.read_text(encoding="utf-8-sig")
+        return raw.decode("utf-8-sig"), raw.startswith(codecs.BOM_UTF8)
     except UnicodeDecodeError as exc:
-        raise InputError(f"{path}: not UTF-8 text (byte {exc.start}); expected a UTF-8 CSV or TSV file") from None
+        raise InputError(f"{path}: not UTF-8 text (byte {exc.start}); expected a UTF-8 CSV or TSV file, "
+                         "or a Darwin Core Archive (zip with meta.xml)") from None
 
 
 def _sniff_delimiter(text: str, path: Path) -> str:

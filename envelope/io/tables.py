@@ -8,11 +8,15 @@ from pathlib import Path
 
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_output
+from envelope.io.layers import ClimateLayer, check_layer_name
 
-__all__ = ["SCENARIO_COLUMNS", "SUITABILITY_TABLE_COLUMNS", "SUITABILITY_TABLE_NAME", "Scenario", "group_scenarios",
+__all__ = ["SCENARIO_COLUMNS", "SCENARIO_LAYER_COLUMNS", "SUITABILITY_TABLE_COLUMNS", "SUITABILITY_TABLE_NAME", "Scenario", "group_scenarios",
            "read_class_table", "read_model_table", "read_scenarios", "suitability_paths", "write_suitability_table"]
 
 SCENARIO_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path")
+#: Optional scenario-table columns mapping each climate variable to its own file: one row per
+#: scenario and variable, ``band`` for one band of a multi-band file.
+SCENARIO_LAYER_COLUMNS = ("variable", "band")
 SUITABILITY_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "path", "mess_path",
                              "novel_share")
 SUITABILITY_TABLE_NAME = "suitability_table.csv"
@@ -32,6 +36,12 @@ class Scenario:
     path: Path
     mess_path: Path | None = None     # suitability tables only: the scenario's MESS raster
     novel_share: float | None = None  # suitability tables only: share of the area with MESS < 0
+    layers: tuple = ()                # one ClimateLayer per variable when the table maps variables to files
+
+    @property
+    def climate(self) -> list:
+        """What :func:`envelope.io.rasters.open_climate` opens: the named layers, or the one grid file."""
+        return list(self.layers) if self.layers else [self.path]
 
 
 def _rows_from_csv(path: Path) -> list[dict]:
@@ -77,7 +87,10 @@ def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
     Columns / keys: ``name, pathway, climate_model, horizon, path``. ``horizon`` is a
     year; ``path`` is a climate grid (or, ``what`` says, another raster such as a
     suitability map), relative to the table's folder unless absolute. Names must be
-    unique (they name the output files) and every grid must exist. The suitability table
+    unique (they name the output files) and every grid must exist. With the optional
+    column ``variable`` (and ``band``) a scenario takes one row per climate variable, each
+    naming that variable's file (and band): its rows share name, pathway, climate model
+    and horizon, and the scenario's grid is those named layers (``Scenario.layers``). The suitability table
     that ``envelope project --scenarios`` writes has the optional columns ``mess_path``
     (relative like ``path``) and ``novel_share``; this one reader reads it too.
 
@@ -98,13 +111,15 @@ def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
         raise InputError(f"{path}: scenario table suffix {path.suffix!r}; expected .csv or .toml")
     if not rows:
         raise InputError(f"{path}: the scenario table has no rows; expected at least one scenario")
-    scenarios, seen = [], set()
+    scenarios, seen, by_name = [], set(), {}
     for i, row in enumerate(rows, start=1):
         name = row["name"]
         if not name or any(c in name for c in "/\\") or name in (".", ".."):
             raise InputError(f"{path}: row {i} name {name!r}; expected a non-empty name without slashes")
-        if name in seen:
-            raise InputError(f"{path}: scenario name {name!r} appears twice; names must be unique")
+        variable = (row.get("variable") or "").strip()
+        if name in seen and not (variable and name in by_name):
+            raise InputError(f"{path}: scenario name {name!r} appears twice; names must be unique"
+                             + ("" if variable else " (or give each row a 'variable')"))
         seen.add(name)
         for key in ("pathway", "climate_model"):
             if not row[key]:
@@ -116,6 +131,22 @@ def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
         grid = _resolve(path, row["path"])
         if not row["path"] or not grid.is_file():
             raise InputError(f"{path}: row {i} ({name}) {what} {grid} not found")
+        if variable:
+            check_layer_name(variable, f"{path}: row {i} ({name}) variable")
+            band = (row.get("band") or "").strip()
+            layer = ClimateLayer(variable, grid, int(band) if band.isdigit() else (band or None))
+            if name in by_name:
+                first = by_name[name]
+                if (first.pathway, first.climate_model, first.horizon) != (row["pathway"], row["climate_model"], horizon):
+                    raise InputError(f"{path}: row {i} ({name}) has a different pathway, climate model or horizon "
+                                     "than the scenario's earlier rows")
+                if variable in {lay.name for lay in first.layers}:
+                    raise InputError(f"{path}: row {i}: scenario {name!r} lists variable {variable!r} twice")
+                updated = Scenario(first.name, first.pathway, first.climate_model, first.horizon, first.path,
+                                   layers=first.layers + (layer,))
+                scenarios[scenarios.index(first)] = updated
+                by_name[name] = updated
+                continue
         mess = _resolve(path, row["mess_path"]) if row.get("mess_path") else None
         if mess is not None and not mess.is_file():
             raise InputError(f"{path}: row {i} ({name}) column 'mess_path' names {row['mess_path']!r}, which is not a file")
@@ -124,7 +155,11 @@ def read_scenarios(path, *, what: str = "climate grid") -> list[Scenario]:
             novel = float(novel) if novel not in (None, "", "nan", "NaN") else None
         except ValueError:
             raise InputError(f"{path}: row {i} ({name}) novel_share {novel!r}; expected a share between 0 and 1") from None
-        scenarios.append(Scenario(name, row["pathway"], row["climate_model"], horizon, grid, mess, novel))
+        scenario = Scenario(name, row["pathway"], row["climate_model"], horizon, grid, mess, novel,
+                            layers=(layer,) if variable else ())
+        scenarios.append(scenario)
+        if variable:
+            by_name[name] = scenario
     return scenarios
 
 

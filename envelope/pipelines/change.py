@@ -15,7 +15,7 @@ from envelope.io.writing import write_raster
 from envelope.pipelines.inputs import resolve_threshold
 from envelope.provenance import json_text
 
-__all__ = ["range_change", "range_change_batch", "write_change_table"]
+__all__ = ["range_change", "range_change_batch", "write_change_table", "write_class_polygons"]
 
 
 def _open(path, *, what, band=None):
@@ -57,14 +57,16 @@ def _write_pair(classes, summary, raster_tmp, summary_tmp):
 
 
 def range_change(now, future, out, summary, *, threshold=None, mess=None, elevation=None,
-                 edge_percentile: float = 95.0, overwrite: bool = False) -> dict:
+                 edge_percentile: float = 95.0, overwrite: bool = False, polygons=None) -> dict:
     """Classify range change between suitability rasters ``now`` and ``future``; write map and summary.
 
     Writes the class raster ``out`` (uint8, categories in its tags) and the JSON ``summary``
-    together, atomically: after an error neither is written. Returns the summary dict.
-    See :func:`summarise_change` for the measures and docs/change.md for their definitions.
+    together, atomically: after an error neither is written. With ``polygons`` (.gpkg or
+    .geojson) also one dissolved polygon per class (:func:`write_class_polygons`). Returns
+    the summary dict. See :func:`summarise_change` for the measures and docs/change.md for
+    their definitions.
     """
-    for path in (out, summary):
+    for path in (out, summary) + ((polygons,) if polygons else ()):
         check_writable(path, overwrite)
     if Path(out).resolve() == Path(summary).resolve():
         raise InputError(f"{out}: the change map and the summary must be different files")
@@ -77,7 +79,23 @@ def range_change(now, future, out, summary, *, threshold=None, mess=None, elevat
                         "elevation": None if elevation is None else str(elevation)}
     with atomic_outputs([out, summary], overwrite) as (raster_tmp, summary_tmp):
         _write_pair(classes, result, raster_tmp, summary_tmp)
+        if polygons:
+            result["polygons"] = str(write_class_polygons(classes, CHANGE_CLASSES, CHANGE_NODATA, polygons,
+                                                          overwrite=overwrite))
     return result
+
+
+def write_class_polygons(classes, categories, nodata, path, *, overwrite=False):
+    """One dissolved (multi)polygon per class of ``classes`` with fields class, name, area_km2 (true area).
+
+    In the grid's CRS; ``.gpkg`` or ``.geojson`` by the suffix of ``path``.
+    """
+    from envelope.grids import grid_crs
+    from envelope.io.vectors import write_polygons
+    from envelope.polygons import class_polygons
+
+    features = class_polygons(classes, categories, nodata=nodata)
+    return write_polygons(features, path, grid_crs(classes), overwrite=overwrite)
 
 
 def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevation=None,

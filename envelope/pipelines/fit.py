@@ -17,6 +17,9 @@ log = logging.getLogger(__name__)
 MIN_RECORDS = 5       # below this no model is fitted
 FEW_RECORDS = 15      # below this a warning: CV metrics are very noisy
 COLLINEAR_R = 0.7     # Dormann et al. (2013) rule of thumb for |r| between predictors
+#: Methods that can be trained on presences and surveyed absences (classifiers of presence against
+#: absence); the point-process model and the climatic envelope are presence-only by construction.
+PRESENCE_ABSENCE_METHODS = ("brt", "forest")
 
 
 @dataclass
@@ -84,6 +87,9 @@ class FitOptions:
     permutation_repeats: int = 3
     bias_method: str = "auto"           # with a bias layer: "covariate", "weighted" or "auto" (see background.py)
     features: object = "cv"             # "cv" or a tuple of feature classes (point-process model)
+    species: str | None = None          # taxon to keep (records.species)
+    absences: bool = False              # keep surveyed absences (records.absences)
+    species_option: str = "--species"   # how messages name the species setting
 
 
 def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, mask=None,
@@ -141,7 +147,14 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     else:
         table = read_occurrences(records_path, x_column=opt.x_column, y_column=opt.y_column, crs=opt.crs)
     records = clean_occurrences(table, climate, crs=opt.crs, max_uncertainty_m=opt.max_uncertainty_m,
-                                record_years=opt.record_years, thin_km=opt.thin_km)
+                                record_years=opt.record_years, thin_km=opt.thin_km, species=opt.species,
+                                absences=opt.absences, species_option=opt.species_option)
+    records, absences = split_absences(records)
+    presence_absence = absences is not None and len(absences) > 0 and opt.method in PRESENCE_ABSENCE_METHODS
+    if absences is not None and len(absences) and not presence_absence:
+        notes.append(f"{len(absences)} surveyed absences were kept but not used: method {opt.method!r} is fitted "
+                     f"to presences and background; {', '.join(PRESENCE_ABSENCE_METHODS)} use absences "
+                     "(or use them to test the model with envelope evaluate)")
     bias_method = resolve_bias_method(opt.bias_method, opt.method, bias is not None)
     if bias_method == "covariate":
         records, unrecorded = drop_unrecorded(records, bias, climate)
@@ -170,14 +183,24 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     check_variables(np.vstack([X_pres, X_bg]), names)
     report("background", 1, 1)
 
-    X = np.vstack([X_pres, X_bg])
-    y = np.r_[np.ones(len(X_pres), dtype=int), np.zeros(len(X_bg), dtype=int)]
-    # quadrature weights of the background (draw counts); effort as a covariate when chosen
-    sample_weight = np.r_[np.ones(len(X_pres)), background["weight"].to_numpy()]
-    effort = None if drawn.effort is None else np.r_[drawn.effort_at(records.table["row"], records.table["col"]),
-                                                    drawn.effort]
-    px = np.r_[records.table["x"].to_numpy(), background["x"].to_numpy()]
-    py = np.r_[records.table["y"].to_numpy(), background["y"].to_numpy()]
+    if presence_absence:
+        # presences against surveyed absences: the background only describes the study area
+        negatives = absences.assign(weight=1.0)
+        X_neg = values_at(climate, negatives["row"].to_numpy(), negatives["col"].to_numpy())
+        check_variables(np.vstack([X_pres, X_neg]), names)
+        effort = None
+        if bias is not None:
+            notes.append("presence-absence fit: the bias layer is not used (absences come from surveys)")
+    else:
+        negatives, X_neg = background, X_bg
+        effort = None if drawn.effort is None else np.r_[drawn.effort_at(records.table["row"], records.table["col"]),
+                                                        drawn.effort]
+    X = np.vstack([X_pres, X_neg])
+    y = np.r_[np.ones(len(X_pres), dtype=int), np.zeros(len(X_neg), dtype=int)]
+    # quadrature weights of the background (draw counts), or 1 per absence; effort as a covariate when chosen
+    sample_weight = np.r_[np.ones(len(X_pres)), negatives["weight"].to_numpy()]
+    px = np.r_[records.table["x"].to_numpy(), negatives["x"].to_numpy()]
+    py = np.r_[records.table["y"].to_numpy(), negatives["y"].to_numpy()]
     crs = climate.rio.crs
 
     block_info = {}
@@ -186,7 +209,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         block_km = None
     elif opt.cv == "block":
         if opt.blocks_km is None:
-            block_km, block_info = evaluation.default_block_km(px[y == 0], py[y == 0], X_bg, crs=crs, names=names,
+            block_km, block_info = evaluation.default_block_km(px[y == 0], py[y == 0], X_neg, crs=crs, names=names,
                                                                seed=opt.seed)
             block_info = dict(block_info, rule="default (from the predictors' spatial autocorrelation)")
         else:
@@ -214,7 +237,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     # MESS compares against the training sample (presences + background), the same rows whose
     # range bounds the clamping (Elith, Kearney & Phillips 2010), each grid cell counted once
     cells = np.r_[records.table["row"].to_numpy() * climate.sizes["x"] + records.table["col"].to_numpy(),
-                  background["row"].to_numpy() * climate.sizes["x"] + background["col"].to_numpy()]
+                  negatives["row"].to_numpy() * climate.sizes["x"] + negatives["col"].to_numpy()]
     reference = reference_from_training(X, cells=cells)
     ranges = {n: (float(np.nanmin(X[:, j])), float(np.nanmax(X[:, j]))) for j, n in enumerate(names)}
     pct = np.nanpercentile(X_bg, reference.percentile_levels, axis=0)
@@ -251,12 +274,16 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         "grid": {"crs": crs.to_string() if crs is not None else None,
                  "resolution": [abs(transform.a), abs(transform.e)],
                  "shape": [climate.sizes["y"], climate.sizes["x"]]},
+        "training": "presence-absence" if presence_absence else "presence-background",
+        "species": None if records.taxa is None else (records.taxa["asked"] or next(iter(records.taxa["counts"]), None)),
         "provenance": {"inputs": inputs, "seed": opt.seed,
                        "records_dropped": dict(records.dropped)},
     }
     summary = {
         "n_presences": int(n_pres),
         "n_background": int(len(X_bg)),
+        "training": "presence-absence" if presence_absence else "presence-background",
+        **({} if absences is None else {"n_absences": int(len(absences))}),
         "bias_correction": drawn.bias_correction,
         "background": background_info,
         "method": opt.method,
@@ -264,7 +291,9 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         "threshold": {"value": float(threshold), "rule": rule},
         "cv": cv_block,
         "feature_classes": feature_classes_report(estimator),
-        "records": {"read": int(records.n_read), "kept": int(n_pres), "dropped": dict(records.dropped)},
+        "records": {"read": int(records.n_read), "kept": int(n_pres), "dropped": dict(records.dropped),
+                    **({} if records.taxa is None else {"taxa": records.taxa}),
+                    "input": dict(table.attrs.get("read", {}))},
         "collinear_pairs": collinear_pairs(X_bg, names),
         "permutation_importance": importance,
         "response_curves": curves_json,
@@ -274,6 +303,21 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     }
     return FitResult(estimator=estimator, metadata=metadata, summary=summary, per_fold=per_fold, warnings=notes)
 
+
+
+def split_absences(records):
+    """``(presence records, absence table or None)`` of cleaned records that may hold kept absences."""
+    import dataclasses
+
+    from envelope.records import PRESENCE_COLUMN
+
+    if PRESENCE_COLUMN not in records.table.columns:
+        return records, None
+    is_presence = records.table[PRESENCE_COLUMN].to_numpy() == 1
+    presences = records.table.loc[is_presence].reset_index(drop=True)
+    presences.attrs = dict(records.table.attrs)
+    return (dataclasses.replace(records, table=presences),
+            records.table.loc[~is_presence].reset_index(drop=True))
 
 
 def build_estimator(method: str, seed: int = 0, features="cv"):
@@ -351,14 +395,18 @@ def fit_options_from_study(study, method: str) -> FitOptions:
                       blocks_km=m.blocks_km, folds=m.folds, cv=m.cv, threshold_rule=m.threshold_rule, seed=m.seed,
                       bias_method=m.bias_method, features=m.features,
                       max_uncertainty_m=r.max_uncertainty_m, record_years=r.years, thin_km=r.thin_km or None,
-                      x_column=r.x_column, y_column=r.y_column, crs=r.crs)
+                      x_column=r.x_column, y_column=r.y_column, crs=r.crs, species=r.species or None,
+                      absences=r.absences, species_option="records.species",
+                      background_buffer_km=m.background_buffer_km)
 
 
-def fit_files(records_path, climate, *, options: FitOptions | None = None, bias=None, progress=None) -> FitResult:
-    """:func:`fit_model` on files: the records, the climate grid file(s) and an optional bias raster.
+def fit_files(records_path, climate, *, options: FitOptions | None = None, bias=None, region=None,
+              progress=None) -> FitResult:
+    """:func:`fit_model` on files: the records, the climate grid file(s), an optional bias raster and region.
 
     The bias raster must be on the climate grid (the message names ``--bias`` and the first
-    difference).
+    difference); the region (a vector file, :func:`envelope.io.vectors.region_mask`) limits
+    where background is drawn.
     """
     from envelope.grids import check_same_grid
     from envelope.io.rasters import open_climate, open_layer
@@ -368,5 +416,10 @@ def fit_files(records_path, climate, *, options: FitOptions | None = None, bias=
     bias_layer = None
     if bias:
         bias_layer = check_same_grid(stack, open_layer(bias), ref_name="climate", other_name=f"--bias {bias}")
-    return fit_model(records_path, stack, options=options, bias=bias_layer, climate_paths=climate, bias_path=bias,
-                     progress=progress)
+    mask = None
+    if region:
+        from envelope.io.vectors import region_mask
+
+        mask = region_mask(region, stack)
+    return fit_model(records_path, stack, options=options, bias=bias_layer, mask=mask, climate_paths=climate,
+                     bias_path=bias, progress=progress)

@@ -1,4 +1,4 @@
-"""Inputs several pipelines share: the suitability threshold from raster tags, and the reach model's inputs."""
+"""Inputs several pipelines share: climate layers by name, the suitability threshold from raster tags, the reach inputs."""
 
 from __future__ import annotations
 
@@ -13,7 +13,23 @@ import xarray as xr
 from envelope.errors import InputError
 from envelope.kernels.change import check_threshold
 
-__all__ = ["ReachInputs", "build_reach_inputs", "load_habitat", "load_start", "resolve_threshold"]
+__all__ = ["ReachInputs", "build_reach_inputs", "climate_sources", "load_habitat", "load_start", "resolve_threshold"]
+
+
+def climate_sources(climate=(), layers=None) -> list:
+    """The climate grid inputs of a command: ``--climate`` values and a ``--layers`` table, as one list.
+
+    Each ``--climate`` value is a path (the file names its variables) or ``NAME=PATH[:BAND]``
+    (:func:`envelope.io.layers.parse_layer`); the table's rows
+    (:func:`envelope.io.layers.read_layer_table`) follow. The list is what
+    :func:`envelope.io.rasters.open_climate` opens.
+    """
+    from envelope.io.layers import parse_layer, read_layer_table
+
+    sources = [parse_layer(value) for value in (climate or ())]
+    if layers:
+        sources += read_layer_table(layers)
+    return sources
 
 
 def _tag_threshold(tags: dict, name: str):
@@ -156,7 +172,7 @@ class ReachInputs:
 
 def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=None, align_habitat=False,
                        threshold=None, now_year=2020.0, step_years=1.0, rate=1.0, persistence_years=0.0,
-                       start_options=None, now_name=None, path_names=None, now_layer=None) -> ReachInputs:
+                       start_options=None, now_name=None, path_names=None, now_layer=None, region=None) -> ReachInputs:
     """Open and check the reach model's inputs.
 
     Parameters
@@ -177,6 +193,9 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
         How messages name a future raster (default ``--future PATH``).
     now_layer : DataArray, optional
         ``now`` already open.
+    region : path of a vector file, optional
+        Study region (:func:`envelope.io.vectors.region_mask`): habitat is set to 0 outside
+        it, so the spread colonises cells inside the region only.
     """
     from envelope.grids import check_same_grid
     from envelope.io.rasters import open_layer, read_tags
@@ -199,9 +218,15 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
             tags[str(p)] = read_tags(p)
     value, rule = resolve_threshold(tags, threshold)
     hab = load_habitat(habitat, now_layer, classes=classes, align=align_habitat)
+    if region is not None:
+        from envelope.io.vectors import region_mask
+
+        inside = region_mask(region, now_layer).values > 0
+        hab = hab.copy(data=np.where(inside, np.asarray(hab.values), 0).astype(hab.dtype))
     start_arr, start_info = load_start(start, now_layer, grid_name=now_name, **(start_options or {}))
     inputs = {"now": str(now), "futures": [str(p) for h in paths.values() for _, p in h],
-              "habitat": str(habitat), "classes": None if classes is None else str(classes)}
+              "habitat": str(habitat), "classes": None if classes is None else str(classes),
+              **({} if region is None else {"region": str(region)})}
     return ReachInputs(now=now_layer, now_name=now_name, futures=layers, habitat=hab, start=start_arr,
                        start_info=start_info, threshold=value, threshold_rule=rule, settings=settings,
                        now_year=float(now_year), step_years=float(step_years), rate=float(rate),

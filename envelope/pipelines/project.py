@@ -70,7 +70,7 @@ def projection_tags(model_file, method, sha256, metadata, climate, clamp) -> dic
 
 
 def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, clamp=True,
-                 overwrite=False, scheduler=None, chunks=None, progress=None) -> dict:
+                 overwrite=False, scheduler=None, chunks=None, progress=None, region=None) -> dict:
     """Project a model file onto climate grid file(s) and write suitability (and MESS, binary).
 
     Everything is streamed chunk by chunk in one pass: each window of the model's
@@ -97,6 +97,9 @@ def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, cl
         Spatial chunks of the streamed stack (default :data:`PROJECT_CHUNKS`).
     progress : callable(done, total), optional
         Called as blocks finish (local threads only).
+    region : path of a vector file, optional
+        Project only the cells inside this region (others are nodata);
+        :func:`envelope.io.vectors.region_mask`.
 
     Returns
     -------
@@ -114,8 +117,10 @@ def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, cl
     if mess_out is not None and not metadata.get("mess_reference"):
         raise InputError(f"{model_file}: model metadata has no mess_reference; cannot write MESS")
     bounds = training_range(metadata) if clamp else None
-    stack = open_model_climate(climate, variables, chunks=chunks)
+    stack = limit_to_region(open_model_climate(climate, variables, chunks=chunks), region)
     tags = projection_tags(model_file, method, sha, metadata, climate, clamp)
+    if region is not None:
+        tags["region"] = str(region)
     with scheduler_context(scheduler), atomic_outputs(targets, overwrite=overwrite) as tmps:
         names = ["out"] + (["mess"] if mess_out else []) + (["binary"] if binary_out else [])
         summary = write_projection(estimator, stack, variables, bounds, metadata, tags, dict(zip(names, tmps)),
@@ -138,6 +143,16 @@ def open_model_climate(climate, variables, *, chunks=None, source=None) -> xr.Da
     spec = {"band": -1, **(PROJECT_CHUNKS if chunks is None else chunks)}
     match_variables(open_climate(climate, chunks=spec), variables, source=source)  # names only, no reading
     return open_climate(climate, variables=list(variables), chunks=spec)
+
+
+def limit_to_region(stack: xr.DataArray, region) -> xr.DataArray:
+    """``stack`` with every cell outside the region (a vector file) set to NaN, lazily; unchanged without one."""
+    if region is None:
+        return stack
+    from envelope.io.vectors import region_mask
+
+    inside = region_mask(region, stack)
+    return stack.where(inside.assign_coords(x=stack["x"], y=stack["y"]) > 0)
 
 
 def write_projection(estimator, stack, variables, bounds, metadata, tags, paths, progress=None) -> dict:
@@ -198,7 +213,7 @@ def _all_paths(files) -> list[Path]:
 
 def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreement: float = DEFAULT_AGREEMENT,
                       clamp: bool = True, overwrite: bool = False, scheduler=None, chunks=None,
-                      progress=None, suffix: str = ".tif") -> dict:
+                      progress=None, suffix: str = ".tif", region=None) -> dict:
     """Project a model onto every scenario of a table and build the climate-model ensembles.
 
     Writes into ``out_dir`` (created if missing): ``<name>_suitability.tif`` (and
@@ -212,7 +227,11 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
     end or not at all.
 
     ``progress(done, total, what)``, when given, is called as dask tasks finish, with
-    ``what`` naming the scenario or ensemble being written.
+    ``what`` naming the scenario or ensemble being written. ``region`` (a vector file)
+    limits every projection to the cells inside it.
+
+    A scenario whose table rows map each variable to its own file (column ``variable``)
+    is opened as those named layers (:attr:`envelope.io.tables.Scenario.climate`).
 
     Returns
     -------
@@ -232,7 +251,8 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
     bounds = training_range(metadata) if clamp else None
     stacks, first = {}, None
     for sc in scenarios:
-        stack = open_model_climate(sc.path, variables, chunks=chunks, source=f"scenario {sc.name} ({sc.path})")
+        stack = open_model_climate(sc.climate, variables, chunks=chunks, source=f"scenario {sc.name} ({sc.path})")
+        stack = limit_to_region(stack, region)
         if first is None:
             first = sc
         else:
@@ -249,7 +269,7 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
     with scheduler_context(scheduler), atomic_outputs(_all_paths(files), overwrite=overwrite) as tmps:
         tmp = dict(zip(_all_paths(files), tmps))
         for sc in scenarios:
-            tags = projection_tags(model_file, method, sha, metadata, [sc.path], clamp)
+            tags = projection_tags(model_file, method, sha, metadata, sc.climate, clamp)
             tags.update(scenario=sc.name, pathway=sc.pathway, climate_model=sc.climate_model, horizon=sc.horizon)
             paths = {"out": tmp[files["suitability"][sc.name]]}
             if mess:

@@ -118,15 +118,16 @@ def write_uncertainty_partition(runs_tables, out, *, overwrite=False):
 
 
 def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, arrival=None, tags=None,
-                        overwrite=False, probability=None, runs=None) -> dict:
+                        overwrite=False, probability=None, runs=None, polygons=None) -> dict:
     """Write the reach-class raster, the summary JSON and optionally the front, arrival, probability and runs files.
 
     ``result`` is a :class:`envelope.reach.ReachResult` or a combined
     :class:`envelope.reach_runs.ReachRunSet`; ``probability`` (the share of runs reaching
-    each cell) and ``runs`` (a CSV, one row per run) need the latter. All files are checked
-    before any is written and each is written atomically.
+    each cell) and ``runs`` (a CSV, one row per run) need the latter. ``polygons`` (.gpkg or
+    .geojson) gets one dissolved polygon per reach class. All files are checked before any
+    is written and each is written atomically.
     """
-    targets = [p for p in (out, summary_path, front, arrival, probability, runs) if p]
+    targets = [p for p in (out, summary_path, front, arrival, probability, runs, polygons) if p]
     for p in targets:
         check_writable(p, overwrite)
     meta = dict(tags or {})
@@ -150,6 +151,11 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
         with atomic_output(front, overwrite=overwrite) as tmp:
             tmp.write_text(json.dumps(result.front))
         written["front"] = str(front)
+    if polygons:
+        from envelope.pipelines.change import write_class_polygons
+
+        written["polygons"] = str(write_class_polygons(result.classes, REACH_CLASSES, REACH_NODATA, polygons,
+                                                       overwrite=overwrite))
     write_raster(result.classes.rename("reach_class"), out, overwrite=overwrite, tags=meta,
                  categories=REACH_CLASSES, nodata=REACH_NODATA)
     written["classes"] = str(out)

@@ -11,23 +11,26 @@ __all__ = ["clean_records_file"]
 
 
 def clean_records_file(records_path, climate, *, x_column=None, y_column=None, crs=None, max_uncertainty_m=None,
-                       record_years=None, thin_km=None, out=None, overwrite=False) -> dict:
-    """Clean the records of ``records_path`` against the grid of ``climate`` (path or paths).
+                       record_years=None, thin_km=None, species=None, absences=False, out=None,
+                       overwrite=False) -> dict:
+    """Clean the records of ``records_path`` against the grid of ``climate`` (paths or named layers).
 
     Writes the cleaned table to ``out`` (CSV) when given. Returns the cleaning summary
-    (:meth:`envelope.records.Records.summary`) with ``source`` and ``out``.
+    (:meth:`envelope.records.Records.summary`) with ``source``, ``input`` (what the reader
+    read: format, delimiter, encoding, or the archive's core file) and ``out``.
     """
     if out is not None:
         check_writable(out, overwrite)  # refuse before any work is done
     table = read_occurrences(records_path, x_column=x_column, y_column=y_column, crs=crs)
     grid = open_climate(climate if isinstance(climate, (list, tuple)) else [climate])
     result = clean_occurrences(table, grid, max_uncertainty_m=max_uncertainty_m, record_years=record_years,
-                               thin_km=thin_km)
+                               thin_km=thin_km, species=species, absences=absences)
     if out is not None:
         with atomic_output(out, overwrite) as tmp:
             result.table.to_csv(tmp, index=False)
     summary = result.summary()
     summary["source"] = str(records_path)
+    summary["input"] = dict(table.attrs.get("read", {}))
     if out is not None:
         summary["out"] = str(out)
     return summary

@@ -165,7 +165,7 @@ def study_start_options(study) -> dict:
     """The record-cleaning options of the study, for a records start (a raster start ignores them)."""
     r = study.records
     return {"x_column": r.x_column, "y_column": r.y_column, "max_uncertainty_m": r.max_uncertainty_m,
-            "record_years": r.years, "crs": r.crs}
+            "record_years": r.years, "crs": r.crs, "species": r.species or None, "species_option": "records.species"}
 
 
 def study_reach_inputs(study, now, paths: dict, *, stochastic: bool, now_name=None, now_layer=None):
@@ -179,7 +179,8 @@ def study_reach_inputs(study, now, paths: dict, *, stochastic: bool, now_name=No
                               now_year=study.climate.now_year, step_years=d.step_years, rate=d.rate,
                               persistence_years=d.persistence_years, start_options=study_start_options(study),
                               now_name=now_name, now_layer=now_layer,
-                              path_names=lambda name, p: f"{name}: {p}")
+                              path_names=lambda name, p: f"{name}: {p}",
+                              region=study.region.path if study.region and study.region.clip else None)
 
 
 def reach_inputs_from_run(study, run_dir):

@@ -88,8 +88,14 @@ def _scenario_table(study, layout: RunLayout) -> Path:
     """The study's scenarios as a CSV (absolute paths) inside the run folder."""
     import pandas as pd
 
-    rows = [{"name": s.name, "pathway": s.pathway, "climate_model": s.climate_model, "horizon": s.horizon,
-             "path": str(s.path)} for s in study.scenarios]
+    rows = []
+    for s in study.scenarios:
+        base = {"name": s.name, "pathway": s.pathway, "climate_model": s.climate_model, "horizon": s.horizon}
+        if s.layers:  # one row per variable, as the scenario table gave them
+            rows += [{**base, "path": str(lay.path), "variable": lay.name, "band": "" if lay.band is None else lay.band}
+                     for lay in s.layers]
+        else:
+            rows.append({**base, "path": str(s.path)})
     target = layout.scenario_table
     text = pd.DataFrame(rows).to_csv(index=False)
     if not target.exists() or target.read_text() != text:
@@ -120,9 +126,13 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     say = progress or (lambda stage: None)
     baseline = list(study.climate.baseline)
     results = {"run_dir": str(run_dir), "methods": list(study.model.methods)}
+    region = study.region.path if study.region else None
+    clip = region if study.region and study.region.clip else None
+    baseline_files = [Path(b) for b in baseline]
 
     # 1. fit every method ------------------------------------------------------------
-    fit_inputs = [study.records.path, *baseline] + ([study.model.bias] if study.model.bias else [])
+    fit_inputs = [study.records.path, *baseline_files] + ([study.model.bias] if study.model.bias else []) \
+        + ([region] if region else [])
     for m in study.model.methods:
         model_path, summary_path = layout.model(m), layout.fit_summary(m)
 
@@ -131,12 +141,17 @@ def run_study(study, run_dir, *, progress=None) -> dict:
             model_path.parent.mkdir(exist_ok=True)
             stack = open_climate(baseline)
             bias = open_layer(study.model.bias) if study.model.bias else None
+            mask = None
+            if region:
+                from envelope.io.vectors import region_mask
+
+                mask = region_mask(region, stack, name="region.path")
             result = fit_model(study.records.path, stack, options=fit_options_from_study(study, m), bias=bias,
-                               climate_paths=baseline, bias_path=study.model.bias or None)
+                               mask=mask, climate_paths=baseline, bias_path=study.model.bias or None)
             write_fit_outputs(result, model_path, summary_path, overwrite=True)
 
         cache.run(f"fit:{m}", {"records": settings["records"], "model": settings["model"], "method": m,
-                               "climate": settings["climate"]}, fit_inputs,
+                               "climate": settings["climate"], "region": settings.get("region")}, fit_inputs,
                   [model_path, summary_path], do_fit)
     fit_summary = json.loads(layout.fit_summary().read_text())
     results["fit"] = fit_summary
@@ -151,20 +166,22 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     def do_now():
         say("project today")
         now_path.parent.mkdir(exist_ok=True)
-        project_file(model, baseline, now_path, overwrite=True)
+        project_file(model, baseline, now_path, overwrite=True, region=clip)
 
-    cache.run("project:now", {"clamp": True}, [model, *baseline], [now_path], do_now)
+    cache.run("project:now", {"clamp": True, **({"region": str(clip)} if clip else {})},
+              [model, *baseline_files] + ([clip] if clip else []), [now_path], do_now)
     table = _scenario_table(study, layout)
     suit_table = layout.suitability_table
 
     def do_scen():
         say("project scenarios")
         project_scenarios(model, table, layout.projections_dir, mess=study.outputs.mess,
-                          agreement=study.scenario_set.agreement, overwrite=True, suffix=layout.ext)
+                          agreement=study.scenario_set.agreement, overwrite=True, suffix=layout.ext, region=clip)
 
     cache.run("project:scenarios", {"mess": study.outputs.mess, "agreement": study.scenario_set.agreement,
-                                    "format": layout.ext},
-              [model, table] + [s.path for s in study.scenarios], [suit_table], do_scen)
+                                    "format": layout.ext, **({"region": str(clip)} if clip else {})},
+              [model, table] + [Path(p) for s in study.scenarios for p in s.climate] + ([clip] if clip else []),
+              [suit_table], do_scen)
     suitability = read_scenarios(suit_table, what="suitability raster")
     _project_more_methods(study, layout, cache, baseline, table, say)
 
@@ -276,11 +293,14 @@ def _run_reach_sets(study, layout: RunLayout, cache, threshold, say) -> list:
                 "threshold": threshold, "now_year": study.climate.now_year, "methods": methods,
                 "distances_km": distances, "design": "every climate path, combined",
                 "fragmentation": {"habitat_threshold": 0.5, "band_deg": 1.0}}
+    if study.region and study.region.clip:
+        settings["region"] = str(study.region.path)
     rows = []
     for name, by_method in _reach_paths(study, layout).items():
         files = layout.reach_set(name)
         inputs = [layout.method_now(m) for m in methods] + [study.habitat.path, start_path]
         inputs += [p for paths in by_method.values() for horizons in paths.values() for _, p in horizons]
+        inputs += [study.region.path] if study.region and study.region.clip else []
         if study.habitat.classes:
             inputs.append(study.habitat.classes)
 

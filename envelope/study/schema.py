@@ -19,7 +19,7 @@ from envelope.io.tables import SCENARIO_COLUMNS, Scenario, read_scenarios
 
 __all__ = [
     "ClimateSection", "ComputeSection", "DispersalSection", "HabitatSection", "ModelSection",
-    "OutputsSection", "RecordsSection", "ScenarioSection", "Study", "StudySection",
+    "OutputsSection", "RecordsSection", "RegionSection", "ScenarioSection", "Study", "StudySection",
     "load_study", "OUTPUT_FORMATS",
 ]
 
@@ -55,13 +55,19 @@ class RecordsSection:
     max_uncertainty_m: float | None = None
     years: tuple[int, int] | None = None
     thin_km: float = 0.0
+    species: str = ""
+    absences: bool = False
 
 
 @dataclass(frozen=True)
 class ClimateSection:
-    """``[climate]``: the baseline grid(s), the variables to use and the baseline year."""
+    """``[climate]``: the baseline grid(s) or named layers, the variables to use and the baseline year.
 
-    baseline: tuple[Path, ...]
+    ``baseline`` holds the files of ``climate.baseline`` (paths) followed by the named layers
+    of ``[climate.layers]`` (:class:`envelope.io.layers.ClimateLayer`).
+    """
+
+    baseline: tuple
     variables: tuple[str, ...] | None = None
     now_year: float = 2020
 
@@ -80,6 +86,16 @@ class ModelSection:
     threshold_rule: str | float = "max-sss"
     seed: int = 0
     features: str | tuple[str, ...] = "cv"
+    background_buffer_km: float | None = None
+
+
+@dataclass(frozen=True)
+class RegionSection:
+    """``[region]``: the study region (a vector file); background is drawn inside it, and with
+    ``clip`` the projections and the spread are limited to it too."""
+
+    path: Path
+    clip: bool = False
 
 
 @dataclass(frozen=True)
@@ -155,6 +171,7 @@ class Study:
     dispersal: DispersalSection | None
     outputs: OutputsSection
     compute: ComputeSection
+    region: RegionSection | None = None
 
     @property
     def name(self) -> str:
@@ -320,12 +337,14 @@ def _normalise(path: Path) -> str:
 
 
 # --------------------------------------------------------------------------- sections
-_TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispersal", "outputs", "compute")
+_TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispersal", "outputs", "compute", "region")
 _STUDY = ("name", "question", "species")
-_RECORDS = ("path", "x_column", "y_column", "crs", "max_uncertainty_m", "years", "thin_km")
-_CLIMATE = ("baseline", "variables", "now_year")
+_RECORDS = ("path", "x_column", "y_column", "crs", "max_uncertainty_m", "years", "thin_km", "species", "absences")
+_CLIMATE = ("baseline", "layers", "variables", "now_year")
 _MODEL = ("methods", "background", "bias", "bias_method", "blocks_km", "folds", "cv", "threshold_rule", "seed",
-          "features")
+          "features", "background_buffer_km")
+_REGION = ("path", "clip")
+_LAYER = ("path", "band")
 _SCENARIOS = ("table", "grid", "agreement")
 _HABITAT = ("path", "classes", "align")
 _DISPERSAL = ("kernel", "mean_distance_km", "shape", "step_years", "rate", "persistence_years",
@@ -373,25 +392,75 @@ def _records(c: _Checker, doc) -> RecordsSection:
             c.fail("records.years", f"expected [first, last] with first <= last, got {years}")
         years = (years[0], years[1])
     thin = float(c.number("records.thin_km", c.raw(t, "thin_km", 0.0), ge=0))
-    return RecordsSection(path, x_col, y_col, crs, max_unc, years, thin)
+    species = c.string("records.species", c.raw(t, "species", ""), allow_empty=True).strip()
+    absences = c.boolean("records.absences", c.raw(t, "absences", False))
+    return RecordsSection(path, x_col, y_col, crs, max_unc, years, thin, species, absences)
 
 
 def _climate(c: _Checker, doc) -> ClimateSection:
     t = c.table(doc, "climate", _CLIMATE, required=True)
-    base = c.required(t, "climate", "baseline", "a climate grid file, or an array of single-band files")
+    if "baseline" not in t and "layers" not in t:
+        c.fail("climate.baseline", "missing; expected a climate grid file, an array of single-band files, "
+                                   "or a [climate.layers] table naming each variable's file")
+    paths = ()
+    base = t.get("baseline")
     if isinstance(base, list):
         if not base:
             c.bad("climate.baseline", "a climate grid file, or a non-empty array of single-band files", base)
         paths = tuple(c.file(f"climate.baseline[{i + 1}]", p, what="a climate grid") for i, p in enumerate(base))
         if len(set(paths)) < len(paths):
             c.fail("climate.baseline", "a file is listed twice; expected each single-band file once")
-    else:
+    elif base is not None:
         paths = (c.file("climate.baseline", base, what="a climate grid"),)
+    paths += _climate_layers(c, t.get("layers"))
     variables = c.raw(t, "variables", None)
     if variables is not None:
         variables = c.string_list("climate.variables", variables)
     now_year = c.number("climate.now_year", c.raw(t, "now_year", 2020))
     return ClimateSection(paths, variables, now_year)
+
+
+def _climate_layers(c: _Checker, layers) -> tuple:
+    """``[climate.layers]``: NAME = "PATH", NAME = "PATH:BAND" or NAME = {path = "...", band = N}."""
+    from envelope.io.layers import ClimateLayer, check_layer_name
+
+    if layers is None:
+        return ()
+    if not isinstance(layers, dict) or not layers:
+        c.bad("climate.layers", "a table [climate.layers] of NAME = \"PATH\" entries", layers)
+    out = []
+    for name, value in layers.items():
+        key = f"climate.layers.{name}"
+        try:
+            check_layer_name(name, f"{c.source}: {key}")
+        except InputError as exc:
+            raise InputError(str(exc)) from None
+        band = None
+        if isinstance(value, dict):
+            c.keys(value, key, _LAYER)
+            path = c.file(f"{key}.path", c.required(value, key, "path", "the layer's raster file"),
+                          what="a climate layer")
+            band = value.get("band")
+            if band is not None and not (isinstance(band, str) and band.strip()):
+                band = c.number(f"{key}.band", band, integer=True, ge=1)
+        elif isinstance(value, str) and ":" in value and not (c.folder / value).is_file() \
+                and not Path(value).is_file():
+            head, _, tail = value.rpartition(":")
+            path = c.file(key, head, what="a climate layer")
+            band = int(tail) if tail.isdigit() else tail
+        else:
+            path = c.file(key, value, what="a climate layer")
+        out.append(ClimateLayer(name, path, band))
+    return tuple(out)
+
+
+def _region(c: _Checker, doc) -> RegionSection | None:
+    t = c.table(doc, "region", _REGION)
+    if t is None:
+        return None
+    path = c.file("region.path", c.required(t, "region", "path", "a GeoPackage, GeoJSON or shapefile of polygons"),
+                  what="a study region (vector file)")
+    return RegionSection(path, c.boolean("region.clip", t.get("clip", False)))
 
 
 def _model(c: _Checker, doc) -> ModelSection:
@@ -436,6 +505,8 @@ def _model(c: _Checker, doc) -> ModelSection:
         threshold_rule=rule,
         seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0),
         features=features,
+        background_buffer_km=(None if t.get("background_buffer_km") is None else
+                              float(c.number("model.background_buffer_km", t["background_buffer_km"], gt=0))),
     )
 
 
@@ -627,4 +698,4 @@ def load_study(path) -> Study:
     if dispersal is not None and dispersal.start is None:
         dispersal = replace(dispersal, start=records.path)
     return Study(file, study, records, climate, model, scenario_set, scenarios, habitat, dispersal,
-                 outputs, _compute(c, doc))
+                 outputs, _compute(c, doc), _region(c, doc))

@@ -64,7 +64,7 @@ def test_json_counts_and_cleaned_csv(tmp_path, grid_tif):
     assert result.exit_code == 0, result.output
     summary = json.loads(result.output)
     assert summary["read"] == 8 and summary["kept"] == 2
-    assert summary["dropped"] == {"absent": 1, "malformed": 1, "imprecise": 1, "outside_years": 1,
+    assert summary["dropped"] == {"other_taxon": 0, "absent": 1, "malformed": 1, "imprecise": 1, "outside_years": 1,
                                   "outside_grid": 1, "no_climate": 0, "duplicate_cell": 1, "thinned": 0}
     clean = pd.read_csv(out)
     assert clean["occurrenceID"].tolist() == ["r1", "r3"]
