@@ -434,7 +434,7 @@ def _model(c: _Checker, doc) -> ModelSection:
         folds=c.number("model.folds", t.get("folds", 5), integer=True, ge=2, le=20),
         cv=c.string("model.cv", t.get("cv", "block"), choices=CV_SCHEMES),
         threshold_rule=rule,
-        seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0),
+        seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0, le=2**32 - 1),
         features=features,
     )
 
@@ -571,6 +571,9 @@ def read_toml(path) -> dict:
         raise InputError(f"{path}: cannot read the study file ({exc}); expected a UTF-8 TOML file") from None
     try:
         return tomllib.loads(text)
+    except RecursionError:
+        raise InputError(f"{path}: not a study file: arrays or tables nested too deeply for the TOML reader; "
+                         "expected the tables of docs/study-file.md") from None
     except tomllib.TOMLDecodeError as exc:
         m = _TOML_WHERE.match(str(exc))
         detail = f"line {m['line']}: {m['msg']} at column {m['col']}" if m else str(exc)
