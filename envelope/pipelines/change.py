@@ -34,10 +34,25 @@ def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, e
     if mess_path is not None:
         # `envelope project --mess` writes two bands: the MESS value and the most dissimilar variable
         mess = _open(mess_path, what="MESS", band=1)
+        check_is_mess(mess_path, mess)
         mess = check_same_grid(now, mess, ref_name=str(now_path), other_name=str(mess_path))
     classes = classify_range_change(now, future, value, mess=mess)
     classes.attrs["mess"] = mess is not None
     return classes, value, rule
+
+
+def check_is_mess(path, layer) -> None:
+    """Refuse a raster that is not a MESS surface (a suitability map given as --mess, say).
+
+    `envelope project --mess` names its first band ``mess`` and tags the file with
+    ``most_dissimilar_variables``; a raster from elsewhere needs a first band named ``mess``.
+    """
+    tags = read_tags(path)
+    if "most_dissimilar_variables" in tags or str(layer.name).lower() == "mess":
+        return
+    seen = "a suitability raster (it has a 'threshold' tag)" if "threshold" in tags else f"band 1 is {layer.name!r}"
+    raise InputError(f"--mess {path}: not a MESS raster ({seen}); expected the MESS file of `envelope project "
+                     "--mess` (first band 'mess', tag 'most_dissimilar_variables')")
 
 
 def _open_elevation(now, now_path, elevation_path):

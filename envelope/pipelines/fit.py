@@ -192,7 +192,15 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     def make():
         return build_estimator(opt.method, opt.seed, features=features)
 
-    fit_params = {**_group_params(opt.method, folds), **({} if effort is None else {"effort": effort})}
+    inner = folds
+    if opt.folds == 2 and _group_params(opt.method, folds):
+        # With two folds each training half holds a single fold id, so the model's own CV (penalty
+        # and feature classes) cannot split it by fold: it splits by the spatial blocks instead
+        # (by five random folds under --cv random). Common practice, no source.
+        inner = blocks if opt.cv == "block" else evaluation.random_folds(len(y), 5, seed=opt.seed, stratify=y)
+        notes.append("--folds 2: the model's own penalty and feature-class CV splits each training half by "
+                     + ("spatial block" if opt.cv == "block" else "five random folds"))
+    fit_params = {**_group_params(opt.method, inner), **({} if effort is None else {"effort": effort})}
     per_fold, cv = evaluation.cross_validate(
         make, X, y, folds, sample_weight=sample_weight, threshold_rule=opt.threshold_rule,
         fit_params=fit_params, progress=lambda k: report("cross-validation", k + 1, opt.folds))
