@@ -60,8 +60,10 @@ def bioclim(tmin, tmax, prec, tmean, out, variables, gdd_base, wrap, ddof, cv_pl
       $ envelope bioclim --tmin tmin.tif --tmax tmax.tif --prec prec.tif --out bio.tif
       $ envelope bioclim --tmin t.nc --tmax T.nc --prec p.nc --out bio.tif --variables BIO1,BIO12,GDD5
     """
+    from envelope.io.atomic import check_distinct
     from envelope.pipelines.climate import write_bioclim
 
+    check_distinct({"--out": out}, {"--tmin": tmin, "--tmax": tmax, "--prec": prec, "--tmean": tmean})
     stack = write_bioclim({"tmin": tmin, "tmax": tmax, "prec": prec, "tmean": tmean}, out,
                           variables=variables, gdd_base=gdd_base, wrap=wrap, ddof=int(ddof),
                           cv_plus_one=cv_plus_one, overwrite=overwrite)

@@ -318,6 +318,15 @@ def permutation_importance_auc(estimator, X, y, names, *, repeats=3, seed=0) -> 
     return {n: round(float(m), 5) for n, m in zip(names, res.importances_mean)}
 
 
+def fit_output_paths(model_path, summary_path=None) -> dict:
+    """The files a fit writes, keyed by how the user names them: ``--out`` (the model), ``--summary``
+    (default ``<model stem>.fit.json`` beside it) and the per-fold table ``<summary stem>.folds.csv``."""
+    model_path = Path(model_path)
+    summary_path = Path(summary_path) if summary_path else model_path.with_name(model_path.stem + ".fit.json")
+    folds_path = summary_path.with_name(summary_path.name.removesuffix(".json") + ".folds.csv")
+    return {"--out": model_path, "--summary": summary_path, "per-fold table": folds_path}
+
+
 def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overwrite=False) -> dict:
     """Write the model file, the summary JSON and the per-fold CSV, all or nothing.
 
@@ -329,9 +338,7 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
     from envelope.io.atomic import atomic_outputs, check_writable
     from envelope.io.modelfile import save_model
 
-    model_path = Path(model_path)
-    summary_path = Path(summary_path) if summary_path else model_path.with_name(model_path.stem + ".fit.json")
-    folds_path = summary_path.with_name(summary_path.name.removesuffix(".json") + ".folds.csv")
+    model_path, summary_path, folds_path = fit_output_paths(model_path, summary_path).values()
     for p in (model_path, summary_path, folds_path):
         check_writable(p, overwrite)
     with atomic_outputs([summary_path, folds_path], overwrite=overwrite) as (tmp_summary, tmp_folds):

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 
-from envelope.io.atomic import atomic_output, check_writable
+from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.writing import write_raster
 from envelope.provenance import json_text
 from envelope.reach import REACH_CLASSES, REACH_NODATA, ReachResult, simulate_reach
@@ -30,27 +30,23 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
                         overwrite=False) -> dict:
     """Write the reach-class raster, the summary JSON and optionally the front and arrival files.
 
-    All files are checked before any is written and each is written atomically.
+    All files are checked before any is written; they appear together or not at all.
     """
-    targets = [p for p in (out, summary_path, front, arrival) if p]
-    for p in targets:
+    named = {"arrival": arrival, "front": front, "classes": out, "summary": summary_path}
+    named = {k: p for k, p in named.items() if p}
+    for p in named.values():
         check_writable(p, overwrite)
     meta = dict(tags or {})
     meta.update({"threshold": result.summary["threshold"], "kernel": result.summary["kernel"],
                  "mean_distance_km": result.summary["mean_distance_km"]})
-    written = {}
-    if arrival:
-        write_raster(result.arrival_year.rename("arrival_year"), arrival, overwrite=overwrite,
-                     tags={**meta, "units": "year", "meaning": "first year with occupancy >= 0.5"})
-        written["arrival"] = str(arrival)
-    if front:
-        with atomic_output(front, overwrite=overwrite) as tmp:
-            tmp.write_text(json.dumps(result.front))
-        written["front"] = str(front)
-    write_raster(result.classes.rename("reach_class"), out, overwrite=overwrite, tags=meta,
-                 categories=REACH_CLASSES, nodata=REACH_NODATA)
-    written["classes"] = str(out)
-    with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json_text(result.summary))
-    written["summary"] = str(summary_path)
-    return written
+    with atomic_outputs(list(named.values()), overwrite=overwrite) as tmps:
+        tmp = dict(zip(named, tmps))
+        if arrival:
+            write_raster(result.arrival_year.rename("arrival_year"), tmp["arrival"], overwrite=True,
+                         tags={**meta, "units": "year", "meaning": "first year with occupancy >= 0.5"})
+        if front:
+            tmp["front"].write_text(json.dumps(result.front))
+        write_raster(result.classes.rename("reach_class"), tmp["classes"], overwrite=True, tags=meta,
+                     categories=REACH_CLASSES, nodata=REACH_NODATA)
+        tmp["summary"].write_text(json_text(result.summary))
+    return {k: str(p) for k, p in named.items()}
