@@ -8,7 +8,7 @@ from pathlib import Path
 from envelope.change import (CHANGE_CLASSES, CHANGE_NODATA, LABEL_COLUMNS, change_table, classify_range_change, summarise_change)
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
-from envelope.io.atomic import atomic_output, atomic_outputs, check_writable
+from envelope.io.atomic import atomic_output, atomic_outputs, check_distinct, check_writable
 from envelope.io.rasters import open_layer, read_tags
 from envelope.io.tables import read_scenarios
 from envelope.io.writing import write_raster
@@ -115,6 +115,10 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
     outputs = []
     for row in rows:
         outputs += [out_dir / f"{row.name}.tif", out_dir / f"{row.name}.json"]
+    check_distinct({**{f"--out-dir file {p.name}": p for p in outputs}, "--table": table},
+                   {"--now": now, "--scenarios": scenarios, "--elevation": elevation,
+                    "a future map": [row.path for row in rows],
+                    "a MESS map": [row.mess_path for row in rows if row.mess_path is not None]})
     if out_dir.is_dir():
         for p in outputs:
             check_writable(p, overwrite)
