@@ -93,8 +93,9 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
 
     outputs = fit_output_paths(out, summary)
     check_distinct(outputs, {"--presences": presences, "--climate": climate, "--bias": bias})
-    for path in outputs.values():
-        check_writable(path, overwrite)
+    for path in [out, summary, *outputs.values()]:  # as given first: a trailing '/' is refused
+        if path is not None:
+            check_writable(path, overwrite)
     console = Console(stderr=True)
     options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
                          folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed, features=features,

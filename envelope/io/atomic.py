@@ -11,7 +11,7 @@ from pathlib import Path
 
 from envelope.errors import EnvelopeError, FileSystemError, InputError, OutputExistsError, os_error_message
 
-__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode"]
+__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode", "remove_empty_folder"]
 
 
 def file_mode() -> int:
@@ -157,3 +157,22 @@ def atomic_outputs(paths, overwrite: bool = False) -> Iterator[list[Path]]:
     with contextlib.ExitStack() as stack:
         tmps = [stack.enter_context(atomic_output(p, overwrite)) for p in paths]
         yield tmps
+
+
+def remove_empty_folder(path) -> bool:
+    """Remove the folder ``path`` if it holds no file at any depth (only empty folders); True if removed.
+
+    For a command that created an output folder and then failed before writing anything into it.
+    """
+    path = Path(path)
+    if path.is_symlink() or not path.is_dir():
+        return False
+    folders = []
+    for root, dirs, files in os.walk(path, topdown=False):
+        if files or any(Path(root, d).is_symlink() for d in dirs):
+            return False
+        folders.append(root)
+    for root in folders:  # deepest first
+        with contextlib.suppress(OSError):
+            os.rmdir(root)
+    return not path.exists()

@@ -180,12 +180,14 @@ def _rows(text: str, delimiter: str):
 
     A quoted field may hold line breaks, but a record that spans several lines and does not
     have as many fields as the header (a stray quote that swallowed the lines after it), or
-    that the csv module refuses (a field over its size limit), is broken: its first line
+    that the csv module refuses (a quote not closing its field, a field over the size limit), is broken: its first line
     is reported as one broken row and reading resumes on the next line.
     """
     lines = text.splitlines(keepends=True)
     source = _LineFeed(lines)
-    reader = csv.reader(source, delimiter=delimiter)
+    # strict: a closing quote must end its field, so a stray quote cannot pair up with another
+    # one lines later and pass for a record with line breaks in a field
+    reader = csv.reader(source, delimiter=delimiter, strict=True)
     width = None
     while source.pos < len(lines):
         start = source.pos
@@ -203,7 +205,7 @@ def _rows(text: str, delimiter: str):
             continue
         # broken: report the first line alone and read on from the line after it
         source.pos = start + 1
-        reader = csv.reader(source, delimiter=delimiter)
+        reader = csv.reader(source, delimiter=delimiter, strict=True)
         yield start + 1, _split_plain(lines[start], delimiter), True
 
 

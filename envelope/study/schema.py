@@ -560,9 +560,17 @@ def _compute(c: _Checker, doc) -> ComputeSection:
 
 
 # --------------------------------------------------------------------------- loading
+#: A study file is a few kilobytes of settings; anything this large is some other file.
+MAX_STUDY_BYTES = 10 * 2**20
+
 def read_toml(path) -> dict:
     """Parse a TOML file; InputError ``"<file>: not valid TOML (line N: ...)"`` when it is not."""
     path = Path(path)
+    if path.exists() and not path.is_file():  # a device (/dev/zero) or a pipe: never read whole
+        raise InputError(f"{path}: not a regular file; expected a study file (TOML)")
+    if path.is_file() and path.stat().st_size > MAX_STUDY_BYTES:
+        raise InputError(f"{path}: {path.stat().st_size:,} bytes is too large for a study file "
+                         f"(at most {MAX_STUDY_BYTES:,}); expected a TOML study file")
     try:
         text = path.read_bytes().decode("utf-8")
     except FileNotFoundError:
