@@ -128,6 +128,8 @@ def bioclim(
     ----------
     O'Donnell, M.S. & Ignizio, D.A. (2012) U.S. Geological Survey Data Series 691.
     """
+    if gdd_base is not None and not np.isfinite(gdd_base):
+        raise InputError(f"gdd_base (--gdd-base): got {gdd_base!r}; expected a finite temperature in degC")
     inputs = {"tmin": tmin, "tmax": tmax, "prec": prec, "tmean": tmean}
     check_monthly_grids(inputs)
     all_names = list(variable_names(gdd_base))

@@ -52,6 +52,36 @@ class DispersalSettings:
                 raise InputError(f"--mean-distance-km range must be 0 < low <= high, got {lo}:{hi}")
 
 
+def check_timing(now_year, years, step_years, rate, persistence_years) -> None:
+    """Refuse a time loop that cannot be what the user meant, before any grid is read.
+
+    Horizons must follow the start year; a step must be positive and no longer than the
+    whole span (a longer one would take no dispersal step at all before the last horizon);
+    the colonisation rate positive; persistence zero or more years. Every value finite.
+    """
+    values = {"--now-year": now_year, "--step-years": step_years, "--rate": rate,
+              "--persistence-years": persistence_years}
+    for flag, value in list(values.items()) + [("--years", y) for y in years]:
+        if not math.isfinite(float(value)):
+            raise InputError(f"{flag} must be a finite number, got {value!r}")
+    if not years:
+        raise InputError("reach needs at least one future suitability map (--future) and its year (--years)")
+    first, last = min(float(y) for y in years), max(float(y) for y in years)
+    if first <= now_year:
+        raise InputError(f"horizon year {first:g} is not after the start year {now_year:g} (--years)")
+    if not step_years > 0:
+        raise InputError(f"--step-years must be > 0, got {step_years!r}")
+    if step_years > last - now_year + 1e-9:
+        raise InputError(f"--step-years {step_years:g} is longer than the {last - now_year:g} years from the start "
+                         f"year {now_year:g} (--now-year) to the last horizon {last:g}; give at most "
+                         f"{last - now_year:g}")
+    if not rate > 0:
+        raise InputError(f"--rate must be > 0, got {rate!r}")
+    if persistence_years < 0:
+        raise InputError(f"--persistence-years must be >= 0 (years an occupied cell outlasts unsuitable climate), "
+                         f"got {persistence_years:g}")
+
+
 @dataclass
 class ReachResult:
     """Outputs of :func:`simulate_reach` on the climate grid."""
@@ -206,12 +236,7 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         raise InputError("reach needs at least one future suitability map (--future)")
     futures = sorted(futures, key=lambda t: float(t[0]))
     years = [float(y) for y, _ in futures]
-    if years[0] <= now_year:
-        raise InputError(f"horizon year {years[0]:g} is not after the start year {now_year:g} (--years)")
-    if not step_years > 0:
-        raise InputError(f"--step-years must be > 0, got {step_years!r}")
-    if not rate > 0:
-        raise InputError(f"--rate must be > 0, got {rate!r}")
+    check_timing(now_year, years, step_years, rate, persistence_years)
     if replicates < 0:
         raise InputError(f"--replicates must be >= 0, got {replicates}")
     geographic = is_geographic(now)

@@ -7,10 +7,18 @@ import click
 from envelope.cli.options import overwrite_opt, output_opt, variables_opt
 
 
+def _finite_temperature(ctx, param, value):
+    import math
+
+    if value is not None and not math.isfinite(value):
+        raise click.BadParameter(f"{value!r}: expected a finite temperature in degC, e.g. 5", ctx=ctx, param=param)
+    return value
+
+
 def convention_options(func):
     """The bioclim conventions, shared with ``envelope delta --bioclim``."""
     options = [
-        click.option("--gdd-base", type=float, default=5.0, show_default=True, metavar="DEGC",
+        click.option("--gdd-base", type=float, default=5.0, show_default=True, metavar="DEGC", callback=_finite_temperature,
                      help="Base temperature of growing degree days (GDD<base> layer)."),
         click.option("--wrap/--no-wrap", default=True, show_default=True,
                      help="Let quarters wrap round the year end (NDJ, DJF)."),
@@ -52,8 +60,10 @@ def bioclim(tmin, tmax, prec, tmean, out, variables, gdd_base, wrap, ddof, cv_pl
       $ envelope bioclim --tmin tmin.tif --tmax tmax.tif --prec prec.tif --out bio.tif
       $ envelope bioclim --tmin t.nc --tmax T.nc --prec p.nc --out bio.tif --variables BIO1,BIO12,GDD5
     """
+    from envelope.io.atomic import check_distinct
     from envelope.pipelines.climate import write_bioclim
 
+    check_distinct({"--out": out}, {"--tmin": tmin, "--tmax": tmax, "--prec": prec, "--tmean": tmean})
     stack = write_bioclim({"tmin": tmin, "tmax": tmax, "prec": prec, "tmean": tmean}, out,
                           variables=variables, gdd_base=gdd_base, wrap=wrap, ddof=int(ddof),
                           cv_plus_one=cv_plus_one, overwrite=overwrite)

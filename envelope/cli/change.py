@@ -48,7 +48,11 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
       $ envelope change --now now.tif --scenarios suitability.csv --out-dir changes --table changes.csv
       $ envelope change --now now.tif --future f.tif --out c.tif --summary c.json --polygons change.gpkg
     """
+    from envelope.io.atomic import check_distinct
     from envelope.pipelines.change import range_change, range_change_batch
+
+    inputs = {"--now": now, "--future": future, "--mess": mess, "--elevation": elevation, "--scenarios": scenarios}
+    check_distinct({"--out": out, "--summary": summary, "--table": table}, inputs)
 
     if scenarios is not None:
         clash = [flag for flag, value in (("--future", future), ("--out", out), ("--summary", summary),

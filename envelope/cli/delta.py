@@ -72,6 +72,7 @@ def delta(baselines, model_historical, model_future, out, model_variable, method
           --baseline prec=prec.tif --out-dir scenarios --bioclim
     """
     from envelope.errors import InputError
+    from envelope.io.atomic import check_distinct
     from envelope.pipelines.climate import delta_batch, delta_single
 
     if table is None:
@@ -80,6 +81,8 @@ def delta(baselines, model_historical, model_future, out, model_variable, method
         if not (model_historical and model_future and out) or len(baselines) != 1:
             raise InputError("single form needs one --baseline, --model-historical, --model-future and --out "
                              "(or use --table for the batch form)")
+        check_distinct({"--out": out}, {"--baseline": baselines, "--model-historical": model_historical,
+                                        "--model-future": model_future})
         done = delta_single(baselines[0], model_historical, model_future, out, model_variable=model_variable,
                             method=method, ratio_floor=ratio_floor, max_ratio=max_ratio, overwrite=overwrite)
         click.echo(f"Wrote {done['method']} delta-method monthly stack to {out}")

@@ -105,11 +105,13 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
     from envelope.io.atomic import check_distinct, check_writable
-    from envelope.pipelines.fit import FitOptions, fit_files, write_fit_outputs
+    from envelope.pipelines.fit import FitOptions, fit_files, fit_output_paths, write_fit_outputs
 
-    check_distinct({"--out": out, "--summary": summary},
-                   {"--presences": presences, "--climate": climate, "--bias": bias, "--region": region})
-    check_writable(out, overwrite)
+    outputs = fit_output_paths(out, summary)
+    check_distinct(outputs, {"--presences": presences, "--climate": climate, "--bias": bias, "--region": region})
+    for path in [out, summary, *outputs.values()]:  # as given first: a trailing '/' is refused
+        if path is not None:
+            check_writable(path, overwrite)
     console = Console(stderr=True)
     options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
                          folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed, features=features,

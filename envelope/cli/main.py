@@ -7,7 +7,7 @@ import logging
 import click
 
 from envelope import __version__
-from envelope.errors import EnvelopeError
+from envelope.errors import EnvelopeError, os_error_message
 
 # command name -> "module:function"; modules are imported only when the command runs,
 # so `envelope --help` stays instant (no xarray/matplotlib import).
@@ -60,12 +60,37 @@ class LazyGroup(click.Group):
         return getattr(importlib.import_module(module_name), attr)
 
     def invoke(self, ctx):
+        # Every failure a user can cause ends as one line on stderr and exit status 2; --debug
+        # shows the traceback instead. Operating-system errors (read-only folder, full disk,
+        # name too long, symlink loop) are told by their errno, naming the path.
+        def debug():  # set by the root callback, which runs inside super().invoke
+            return (ctx.obj or {}).get("debug")
+
         try:
             return super().invoke(ctx)
+        except click.UsageError as exc:
+            # one line for the error and one for the hint (click's own form adds the usage line)
+            if debug():
+                raise
+            hint = ""
+            if exc.ctx is not None and exc.ctx.command.get_help_option(exc.ctx) is not None:
+                hint = f"Try '{exc.ctx.command_path} {exc.ctx.help_option_names[0]}' for help."
+            click.echo(f"Error: {_one_line(exc.format_message())}" + (f"\n{hint}" if hint else ""), err=True)
+            ctx.exit(exc.exit_code)
         except EnvelopeError as exc:
-            if (ctx.obj or {}).get("debug"):
+            if debug():
                 raise
             click.echo(f"Error: {_one_line(exc)}", err=True)
+            ctx.exit(2)
+        except OSError as exc:
+            if debug():
+                raise
+            click.echo(f"Error: {_one_line(os_error_message(exc))}", err=True)
+            ctx.exit(2)
+        except MemoryError:
+            if debug():
+                raise
+            click.echo("Error: out of memory; give smaller inputs or run on a machine with more memory", err=True)
             ctx.exit(2)
 
     def format_commands(self, ctx, formatter):

@@ -102,7 +102,9 @@ overwrite_opt = click.option("--overwrite", is_flag=True, help="Replace output f
 
 json_opt = click.option("--json", "as_json", is_flag=True, help="Print JSON instead of a table.")
 
-seed_opt = click.option("--seed", type=int, default=0, show_default=True, help="Random seed (runs are reproducible).")
+# 0 .. 2**32 - 1: what numpy's SeedSequence and scikit-learn's random_state both take
+seed_opt = click.option("--seed", type=click.IntRange(min=0, max=2**32 - 1), default=0, show_default=True,
+                        help="Random seed, 0 to 4294967295 (runs are reproducible).")
 
 scheduler_opt = click.option(
     "--scheduler",

@@ -90,8 +90,10 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
         raise click.UsageError("--mess needs a file name for a single projection, e.g. --mess mess.tif")
     if out_dir:
         raise click.UsageError("--out-dir goes with --scenarios")
+    from envelope.io.atomic import check_distinct
     from envelope.pipelines.project import project_file
 
+    check_distinct({"--out": out, "--mess": mess, "--binary": binary}, {"MODEL_FILE": model_file, "--climate": climate})
     with _progress_bar() as progress:
         result = project_file(model_file, list(climate), out, mess_out=mess, binary_out=binary, clamp=not no_clamp,
                               overwrite=overwrite, scheduler=scheduler, progress=progress, region=region)

@@ -65,6 +65,10 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     if len(years) != len(futures):
         raise InputError(f"--years gives {len(years)} year(s) for {len(futures)} --future map(s); give one per map")
     mean_km, mean_range = mean_distance_km
+    if mean_range is not None and not replicates:
+        lo, hi = mean_range
+        raise InputError(f"--mean-distance-km {lo:g}:{hi:g} draws one distance per stochastic replicate, but "
+                         "--replicates is 0 (deterministic); add --replicates N, or give one distance")
     settings = {"kernel": kernel, "mean_distance_km": mean_km, "shape": shape,
                 "mean_distance_range_km": mean_range if replicates else None}
     inputs = build_reach_inputs(now, {None: list(zip(years, futures))}, habitat, start, settings=settings,

@@ -50,8 +50,10 @@ def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, r
       $ envelope records plots.tsv --climate tmean.tif --climate precip.tif \\
           --x-column easting --y-column northing --crs EPSG:3035 --json
     """
+    from envelope.io.atomic import check_distinct
     from envelope.pipelines.records import clean_records_file
 
+    check_distinct({"--out": out}, {"RECORDS.csv": records_path, "--climate": climate})
     summary = clean_records_file(records_path, list(climate), x_column=x_column, y_column=y_column, crs=crs,
                                  max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
                                  thin_km=thin_km, species=species, absences=absences, out=out, overwrite=overwrite)

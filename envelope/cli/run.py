@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import click
 
 
@@ -33,11 +35,19 @@ def execute(study, out):
     from envelope.pipelines.project import scheduler_context
     from envelope.study.runner import run_study
 
-    with scheduler_context(study.compute.scheduler), Progress(SpinnerColumn(), TextColumn("{task.description}"),
-                                                              TimeElapsedColumn(), console=Console(stderr=True),
-                                                              transient=True) as bar:
-        task = bar.add_task("starting", total=None)
-        return run_study(study, out, progress=lambda stage: bar.update(task, description=stage))
+    from envelope.io.atomic import remove_empty_folder
+
+    created = not os.path.lexists(out)
+    try:
+        with scheduler_context(study.compute.scheduler), Progress(SpinnerColumn(), TextColumn("{task.description}"),
+                                                                  TimeElapsedColumn(), console=Console(stderr=True),
+                                                                  transient=True) as bar:
+            task = bar.add_task("starting", total=None)
+            return run_study(study, out, progress=lambda stage: bar.update(task, description=stage))
+    except BaseException:
+        if created:  # a run that failed before its first result (a full disk, say) leaves no empty folder
+            remove_empty_folder(out)
+        raise
 
 
 def print_results(results):

@@ -109,7 +109,8 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
 
     check_distinct({"--out": out, "--table": table, "--summary": summary},
                    {"--now": now, "--future": futures, "--habitat": habitat, "--start": start, "--candidates": candidates,
-                    "--cost": cost, "--scenarios": scenario_table, "--study": study})
+                    "--cost": cost, "--scenarios": scenario_table, "--study": study, "--classes": classes,
+                    "--quality": quality if quality and not _is_number(quality) else None})
     for p in (out, table, summary):
         check_writable(p, overwrite)
     if not budget_km2 > 0:
@@ -134,6 +135,14 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
                                 max_patch_km2=max_patch_km2)
     written = write_target_outputs(result, out, table, summary, overwrite=overwrite, tags={"software": "envelope"})
     _print(result, written)
+
+
+def _is_number(text) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
 
 
 def _from_study(study_file, run_dir):

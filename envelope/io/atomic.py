@@ -3,14 +3,15 @@
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 
-from envelope.errors import InputError, OutputExistsError
+from envelope.errors import EnvelopeError, FileSystemError, InputError, OutputExistsError, os_error_message
 
-__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode"]
+__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode", "remove_empty_folder"]
 
 
 def file_mode() -> int:
@@ -47,13 +48,69 @@ def check_writable(path: str | os.PathLike, overwrite: bool = False) -> Path:
     This is the single place where the refusal message is worded, so every command says
     the same thing.
     """
+    given = os.fspath(path)
+    if given.endswith(("/", os.sep)):
+        raise InputError(f"{given}: names a folder (ends with {given[-1]!r}); expected a file name, "
+                         f"e.g. {given}out{_example_suffix(given)}")
     path = Path(path)
-    if path.exists() and not overwrite:
+    try:
+        if path.is_symlink():
+            os.path.realpath(path, strict=True)  # ELOOP for a link loop, ENOENT for a dangling link
+        for part in path.parts:
+            if len(os.fsencode(part)) > _name_max(path):
+                raise OSError(errno.ENAMETOOLONG, os.strerror(errno.ENAMETOOLONG), given)
+        exists = path.exists()
+    except OSError as exc:
+        raise FileSystemError(os_error_message(exc, given)) from None
+    if exists and not overwrite:
         raise OutputExistsError(f"{path}: file exists; add --overwrite to replace it")
+    if exists and path.is_dir():
+        raise InputError(f"{path}: is a folder; expected a file name")
     parent = path.parent if str(path.parent) else Path(".")
     if not parent.is_dir():
         raise InputError(f"{path}: folder {parent} does not exist")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise FileSystemError(f"{path}: folder {parent} is not writable; check its permissions or write elsewhere")
     return path
+
+
+def _name_max(path: Path) -> int:
+    """Longest file-name component the file system takes (255 bytes where it does not say)."""
+    try:
+        return os.pathconf(path.parent if str(path.parent) else ".", "PC_NAME_MAX")
+    except (OSError, ValueError, AttributeError):
+        return 255
+
+
+def _example_suffix(given: str) -> str:
+    return "".join(Path(given.rstrip("/" + os.sep)).suffixes) or ".tif"
+
+
+def _named_for_user(exc: BaseException, tmp: Path, path: Path) -> BaseException | None:
+    """The error to raise instead of ``exc`` raised while writing ``tmp``: it names ``path``, never ``tmp``.
+
+    An operating-system error becomes a :class:`FileSystemError` ("<path>: no space left on the
+    device ..."); one of ours that quotes the temporary name is re-worded with the user's.
+    """
+    if isinstance(exc, EnvelopeError) and str(tmp) in str(exc):
+        return type(exc)(str(exc).replace(str(tmp), str(path)))
+    if isinstance(exc, OSError) and not isinstance(exc, FileExistsError):
+        if not isinstance(exc.errno, int) and _nearly_full(path):
+            # GDAL reports a failed write without an errno; a full disk is the usual cause
+            exc = OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        if isinstance(exc.errno, int):
+            return FileSystemError(os_error_message(exc, path) + "; nothing was written")
+        return FileSystemError(f"{path}: cannot write ({str(exc).replace(str(tmp), str(path))}); nothing was written")
+    return None
+
+
+def _nearly_full(path: Path) -> bool:
+    import shutil
+
+    try:
+        return shutil.disk_usage(path.parent if str(path.parent) else ".").free < 1 << 20
+    except OSError:
+        return False
 
 
 @contextlib.contextmanager
@@ -69,8 +126,11 @@ def atomic_output(path: str | os.PathLike, overwrite: bool = False) -> Iterator[
     ...     tmp.write_text("{}")
     """
     path = check_writable(path, overwrite)
-    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + path.suffix,
-                                    dir=path.parent if str(path.parent) else ".")
+    try:
+        fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + path.suffix,
+                                        dir=path.parent if str(path.parent) else ".")
+    except OSError as exc:
+        raise FileSystemError(os_error_message(exc, path)) from None
     os.close(fd)
     tmp = Path(tmp_name)
     try:
@@ -81,10 +141,13 @@ def atomic_output(path: str | os.PathLike, overwrite: bool = False) -> Iterator[
         if tmp.exists():
             os.chmod(tmp, file_mode())  # mkstemp makes 0600; outputs follow the user's umask
         os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
+    except BaseException as exc:
+        with contextlib.suppress(OSError):
             tmp.unlink()
-        raise
+        better = _named_for_user(exc, tmp, path)
+        if better is None:
+            raise
+        raise better from exc
 
 
 @contextlib.contextmanager
@@ -94,3 +157,22 @@ def atomic_outputs(paths, overwrite: bool = False) -> Iterator[list[Path]]:
     with contextlib.ExitStack() as stack:
         tmps = [stack.enter_context(atomic_output(p, overwrite)) for p in paths]
         yield tmps
+
+
+def remove_empty_folder(path) -> bool:
+    """Remove the folder ``path`` if it holds no file at any depth (only empty folders); True if removed.
+
+    For a command that created an output folder and then failed before writing anything into it.
+    """
+    path = Path(path)
+    if path.is_symlink() or not path.is_dir():
+        return False
+    folders = []
+    for root, dirs, files in os.walk(path, topdown=False):
+        if files or any(Path(root, d).is_symlink() for d in dirs):
+            return False
+        folders.append(root)
+    for root in folders:  # deepest first
+        with contextlib.suppress(OSError):
+            os.rmdir(root)
+    return not path.exists()

@@ -16,6 +16,12 @@ from envelope.io.dwca import is_zip, read_core
 from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TERMS, MALFORMED_FLAG, to_float
 
 _CANDIDATE_DELIMITERS = (",", "\t", ";", "|")
+_SNIFF_BYTES = 1 << 16
+#: A table with more broken rows (wrong field count, broken quotes) than this share -- and more
+#: than MAX_BROKEN_ROWS of them -- is refused rather than cleaned: the delimiter or quoting is
+#: likely wrong, and dropping the rows would hide it. Common practice, no source.
+MAX_BROKEN_SHARE = 0.05
+MAX_BROKEN_ROWS = 2
 _SUFFIX_DELIMITERS = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": "\t"}
 
 
@@ -140,22 +146,30 @@ def _read_delimited(path: Path, delimiter):
     if delimiter is None:
         delimiter = _sniff_delimiter(text, path)
 
-    reader = csv.reader(text.splitlines(keepends=True), delimiter=delimiter)
     header = None
     rows, lines, wrong_length = [], [], []
-    for fields in reader:
+    for line, fields, broken in _rows(text, delimiter):
         if not fields or all(not f.strip() for f in fields):
             continue  # blank line
         if header is None:
+            if broken:
+                raise InputError(f"{path}, line {line}: the header line cannot be read as {_delimiter_name(delimiter)}"
+                                 "-separated fields (a stray quote?); expected column names")
             header = _header(fields, path)
             continue
-        wrong_length.append(len(fields) != len(header))
+        wrong_length.append(broken or len(fields) != len(header))
         # keep short rows padded and long rows cut, so other fields stay in their columns
         fields = (fields + [""] * len(header))[: len(header)]
         rows.append(fields)
-        lines.append(reader.line_num)
+        lines.append(line)
     if not rows:
         raise InputError(f"{path}: holds a header but no records; expected one record per line after the header")
+    n_broken = int(np.sum(wrong_length))
+    if n_broken > MAX_BROKEN_ROWS and n_broken > MAX_BROKEN_SHARE * len(rows):
+        first = lines[int(np.flatnonzero(wrong_length)[0])]
+        raise InputError(f"{path}: {n_broken} of {len(rows)} records have a wrong number of fields or broken quotes "
+                         f"(first at line {first}); expected {len(header)} {_delimiter_name(delimiter)}-separated "
+                         "fields per line. Is the delimiter or the quoting wrong?")
     info = {"format": "delimited text", "delimiter": delimiter, "encoding": "UTF-8", "byte_order_mark": bom}
     return header, rows, lines, wrong_length, info
 
@@ -165,12 +179,79 @@ def _read_text(path: Path) -> str:
         raise InputError(f"{path}: file not found; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
     if path.is_dir():
         raise InputError(f"{path}: is a folder; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
-    raw = path.read_bytes()
+    if not path.is_file():  # a device (/dev/zero), a pipe or a socket: never read whole
+        raise InputError(f"{path}: not a regular file; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
+    with open(path, "rb") as fh:
+        head = fh.read(_SNIFF_BYTES)
+        nul = head.find(b"\0")
+        if nul >= 0:
+            raise InputError(f"{path}: binary data (a NUL byte at byte {nul}), not text; "
+                             "expected a UTF-8 CSV or TSV file, or a Darwin Core Archive (zip with meta.xml)")
+        data = head + fh.read()
     try:
-        return raw.decode("utf-8-sig"), raw.startswith(codecs.BOM_UTF8)
+        return data.decode("utf-8-sig"), data.startswith(codecs.BOM_UTF8)
     except UnicodeDecodeError as exc:
         raise InputError(f"{path}: not UTF-8 text (byte {exc.start}); expected a UTF-8 CSV or TSV file, "
                          "or a Darwin Core Archive (zip with meta.xml)") from None
+
+
+def _rows(text: str, delimiter: str):
+    """``(line, fields, broken)`` for every record of ``text``, re-synchronised after a broken one.
+
+    A quoted field may hold line breaks, but a record that spans several lines and does not
+    have as many fields as the header (a stray quote that swallowed the lines after it), or
+    that the csv module refuses (a quote not closing its field, a field over the size limit), is broken: its first line
+    is reported as one broken row and reading resumes on the next line.
+    """
+    lines = text.splitlines(keepends=True)
+    source = _LineFeed(lines)
+    # strict: a closing quote must end its field, so a stray quote cannot pair up with another
+    # one lines later and pass for a record with line breaks in a field
+    reader = csv.reader(source, delimiter=delimiter, strict=True)
+    width = None
+    while source.pos < len(lines):
+        start = source.pos
+        try:
+            fields = next(reader)
+        except StopIteration:
+            return
+        except csv.Error:
+            fields = None
+        span = source.pos - start
+        if fields is not None and (span == 1 or width is None or len(fields) == width):
+            if width is None and fields and any(f.strip() for f in fields):
+                width = len(fields)
+            yield start + 1, fields, False
+            continue
+        # broken: report the first line alone and read on from the line after it
+        source.pos = start + 1
+        reader = csv.reader(source, delimiter=delimiter, strict=True)
+        yield start + 1, _split_plain(lines[start], delimiter), True
+
+
+class _LineFeed:
+    """The lines of a text, fed one by one to ``csv.reader``; ``pos`` is the next line to feed."""
+
+    def __init__(self, lines):
+        self.lines, self.pos = lines, 0
+
+    def __iter__(self):
+        return self
+
+    def __next__(self):
+        if self.pos >= len(self.lines):
+            raise StopIteration
+        self.pos += 1
+        return self.lines[self.pos - 1]
+
+
+def _split_plain(line: str, delimiter: str) -> list[str]:
+    """The fields of one broken line, split at the delimiter without quoting rules."""
+    return [f.strip().strip('"') for f in line.rstrip("\r\n").split(delimiter)]
+
+
+def _delimiter_name(delimiter: str) -> str:
+    return {",": "comma", "\t": "tab", ";": "semicolon", "|": "bar"}.get(delimiter, repr(delimiter))
 
 
 def _sniff_delimiter(text: str, path: Path) -> str:

@@ -65,6 +65,9 @@ def _rows_from_toml(path: Path) -> list[dict]:
         doc = tomllib.loads(path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
         raise InputError(f"{path}: cannot read the scenario table ({exc})") from None
+    except RecursionError:
+        raise InputError(f"{path}: cannot read the scenario table (nested too deeply); "
+                         "expected [[scenario]] tables") from None
     rows = doc.get("scenario")
     if not isinstance(rows, list) or not all(isinstance(r, dict) for r in rows):
         raise InputError(f"{path}: expected [[scenario]] tables with keys {', '.join(SCENARIO_COLUMNS)}")

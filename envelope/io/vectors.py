@@ -99,13 +99,14 @@ def region_mask(path, grid: xr.DataArray, *, name: str = "--region") -> xr.DataA
     return layer.rio.write_crs(grid.rio.crs)
 
 
-def write_polygons(features: list, path, crs, *, overwrite: bool = False) -> Path:
+def write_polygons(features: list, path, crs, *, overwrite: bool = False, layer: str | None = None) -> Path:
     """Write polygons with the fields ``class``, ``name``, ``area_km2``; the format follows the suffix.
 
     ``features`` are dicts with those keys and ``geometry`` (a shapely polygon or
     multipolygon, in ``crs``). ``.gpkg`` writes a GeoPackage, ``.geojson`` GeoJSON
     (RFC 7946 wants WGS84 longitudes/latitudes; a GeoJSON in the grid's CRS is written with
-    the CRS named, as GDAL does). Written atomically.
+    the CRS named, as GDAL does). The layer is named ``layer`` (default: the file's stem).
+    Written atomically.
     """
     import pyogrio
     import shapely
@@ -125,5 +126,5 @@ def write_polygons(features: list, path, crs, *, overwrite: bool = False) -> Pat
     with atomic_output(path, overwrite) as tmp:
         os.unlink(tmp)  # GDAL creates the file itself
         pyogrio.raw.write(tmp, geometry, data, fields, driver=driver, geometry_type="MultiPolygon", crs=wkt,
-                          layer=path.stem)
+                          layer=layer or path.stem)
     return path

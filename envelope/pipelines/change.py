@@ -8,7 +8,7 @@ from pathlib import Path
 from envelope.change import (CHANGE_CLASSES, CHANGE_NODATA, LABEL_COLUMNS, change_table, classify_range_change, summarise_change)
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
-from envelope.io.atomic import atomic_output, atomic_outputs, check_writable
+from envelope.io.atomic import atomic_output, atomic_outputs, check_distinct, check_writable
 from envelope.io.rasters import open_layer, read_tags
 from envelope.io.tables import read_scenarios
 from envelope.io.writing import write_raster
@@ -34,10 +34,25 @@ def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, e
     if mess_path is not None:
         # `envelope project --mess` writes two bands: the MESS value and the most dissimilar variable
         mess = _open(mess_path, what="MESS", band=1)
+        check_is_mess(mess_path, mess)
         mess = check_same_grid(now, mess, ref_name=str(now_path), other_name=str(mess_path))
     classes = classify_range_change(now, future, value, mess=mess)
     classes.attrs["mess"] = mess is not None
     return classes, value, rule
+
+
+def check_is_mess(path, layer) -> None:
+    """Refuse a raster that is not a MESS surface (a suitability map given as --mess, say).
+
+    `envelope project --mess` names its first band ``mess`` and tags the file with
+    ``most_dissimilar_variables``; a raster from elsewhere needs a first band named ``mess``.
+    """
+    tags = read_tags(path)
+    if "most_dissimilar_variables" in tags or str(layer.name).lower() == "mess":
+        return
+    seen = "a suitability raster (it has a 'threshold' tag)" if "threshold" in tags else f"band 1 is {layer.name!r}"
+    raise InputError(f"--mess {path}: not a MESS raster ({seen}); expected the MESS file of `envelope project "
+                     "--mess` (first band 'mess', tag 'most_dissimilar_variables')")
 
 
 def _open_elevation(now, now_path, elevation_path):
@@ -85,17 +100,18 @@ def range_change(now, future, out, summary, *, threshold=None, mess=None, elevat
     return result
 
 
-def write_class_polygons(classes, categories, nodata, path, *, overwrite=False):
+def write_class_polygons(classes, categories, nodata, path, *, overwrite=False, layer=None):
     """One dissolved (multi)polygon per class of ``classes`` with fields class, name, area_km2 (true area).
 
-    In the grid's CRS; ``.gpkg`` or ``.geojson`` by the suffix of ``path``.
+    In the grid's CRS; ``.gpkg`` or ``.geojson`` by the suffix of ``path``; the layer is
+    named ``layer`` (default: the file's stem).
     """
     from envelope.grids import grid_crs
     from envelope.io.vectors import write_polygons
     from envelope.polygons import class_polygons
 
     features = class_polygons(classes, categories, nodata=nodata)
-    return write_polygons(features, path, grid_crs(classes), overwrite=overwrite)
+    return write_polygons(features, path, grid_crs(classes), overwrite=overwrite, layer=layer)
 
 
 def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevation=None,
@@ -118,6 +134,10 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
     outputs = []
     for row in rows:
         outputs += [out_dir / f"{row.name}.tif", out_dir / f"{row.name}.json"]
+    check_distinct({**{f"--out-dir file {p.name}": p for p in outputs}, "--table": table},
+                   {"--now": now, "--scenarios": scenarios, "--elevation": elevation,
+                    "a future map": [row.path for row in rows],
+                    "a MESS map": [row.mess_path for row in rows if row.mess_path is not None]})
     if out_dir.is_dir():
         for p in outputs:
             check_writable(p, overwrite)

@@ -223,7 +223,15 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     def make():
         return build_estimator(opt.method, opt.seed, features=features)
 
-    fit_params = {**_group_params(opt.method, folds), **({} if effort is None else {"effort": effort})}
+    inner = folds
+    if opt.folds == 2 and _group_params(opt.method, folds):
+        # With two folds each training half holds a single fold id, so the model's own CV (penalty
+        # and feature classes) cannot split it by fold: it splits by the spatial blocks instead
+        # (by five random folds under --cv random). Common practice, no source.
+        inner = blocks if opt.cv == "block" else evaluation.random_folds(len(y), 5, seed=opt.seed, stratify=y)
+        notes.append("--folds 2: the model's own penalty and feature-class CV splits each training half by "
+                     + ("spatial block" if opt.cv == "block" else "five random folds"))
+    fit_params = {**_group_params(opt.method, inner), **({} if effort is None else {"effort": effort})}
     per_fold, cv = evaluation.cross_validate(
         make, X, y, folds, sample_weight=sample_weight, threshold_rule=opt.threshold_rule,
         fit_params=fit_params, progress=lambda k: report("cross-validation", k + 1, opt.folds))
@@ -363,6 +371,15 @@ def permutation_importance_auc(estimator, X, y, names, *, repeats=3, seed=0) -> 
     return {n: round(float(m), 5) for n, m in zip(names, res.importances_mean)}
 
 
+def fit_output_paths(model_path, summary_path=None) -> dict:
+    """The files a fit writes, keyed by how the user names them: ``--out`` (the model), ``--summary``
+    (default ``<model stem>.fit.json`` beside it) and the per-fold table ``<summary stem>.folds.csv``."""
+    model_path = Path(model_path)
+    summary_path = Path(summary_path) if summary_path else model_path.with_name(model_path.stem + ".fit.json")
+    folds_path = summary_path.with_name(summary_path.name.removesuffix(".json") + ".folds.csv")
+    return {"--out": model_path, "--summary": summary_path, "per-fold table": folds_path}
+
+
 def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overwrite=False) -> dict:
     """Write the model file, the summary JSON and the per-fold CSV, all or nothing.
 
@@ -374,9 +391,7 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
     from envelope.io.atomic import atomic_outputs, check_writable
     from envelope.io.modelfile import save_model
 
-    model_path = Path(model_path)
-    summary_path = Path(summary_path) if summary_path else model_path.with_name(model_path.stem + ".fit.json")
-    folds_path = summary_path.with_name(summary_path.name.removesuffix(".json") + ".folds.csv")
+    model_path, summary_path, folds_path = fit_output_paths(model_path, summary_path).values()
     for p in (model_path, summary_path, folds_path):
         check_writable(p, overwrite)
     with atomic_outputs([summary_path, folds_path], overwrite=overwrite) as (tmp_summary, tmp_folds):

@@ -8,7 +8,7 @@ import numpy as np
 
 from envelope.errors import InputError
 from envelope.habitat import fragmentation_by_latitude, fragmentation_summary
-from envelope.io.atomic import atomic_output, check_distinct, check_writable
+from envelope.io.atomic import atomic_outputs, check_distinct, check_writable
 from envelope.io.rasters import open_layer
 from envelope.pipelines.inputs import load_habitat
 from envelope.provenance import json_text
@@ -47,9 +47,8 @@ def fragmentation_files(habitat, out, *, summary=None, grid=None, classes=None, 
     result = fragmentation_summary(table, threshold=habitat_threshold, band_deg=band_deg, connectivity=conn,
                                    land=land_name)
     result["inputs"] = {"habitat": habitat, "classes": classes, "grid": grid}
-    with atomic_output(out, overwrite=overwrite) as tmp:
-        table.to_csv(tmp, index=False)
-    if summary:
-        with atomic_output(summary, overwrite=overwrite) as tmp:
-            tmp.write_text(json_text(result))
+    with atomic_outputs([p for p in (out, summary) if p], overwrite=overwrite) as tmps:
+        table.to_csv(tmps[0], index=False)
+        if summary:
+            tmps[1].write_text(json_text(result))
     return table, result

@@ -200,8 +200,10 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
     from envelope.grids import check_same_grid
     from envelope.io.rasters import open_layer, read_tags
 
-    from envelope.reach import DispersalSettings
+    from envelope.reach import DispersalSettings, check_timing
 
+    check_timing(now_year, [year for horizons in paths.values() for year, _ in horizons], step_years, rate,
+                 persistence_years)
     if isinstance(settings, dict):
         settings = DispersalSettings(**settings)
     now_name = now_name or f"--now {now}"

@@ -14,7 +14,7 @@ from envelope.errors import InputError
 from envelope.grids import cell_area_km2, check_same_grid, match_variables
 from envelope import __version__
 from envelope.io.modelfile import load_model, read_manifest
-from envelope.io.atomic import atomic_outputs, check_writable
+from envelope.io.atomic import atomic_outputs, check_distinct, check_writable
 from envelope.io.rasters import open_climate, open_layer
 from envelope.io.tables import SUITABILITY_TABLE_NAME, group_scenarios, read_scenarios, write_suitability_table
 from envelope.io.writing import RasterOutput, write_rasters
@@ -260,6 +260,8 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
                             other_name=f"scenario {sc.name} ({sc.path})")
         stacks[sc.name] = stack
     files = scenario_outputs(scenarios, out_dir, mess=mess, suffix=suffix)
+    check_distinct({f"--out-dir file {p.name}": p for p in _all_paths(files)},
+                   {"MODEL_FILE": model_file, "--scenarios": table, "a scenario grid": [sc.path for sc in scenarios]})
     if out_dir.is_dir():
         for p in _all_paths(files):
             check_writable(p, overwrite)

@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
 from dataclasses import replace
 
-from envelope.io.atomic import atomic_output, check_writable
+from envelope.io.atomic import atomic_output, atomic_outputs, check_writable
 from envelope.io.writing import write_raster
 from envelope.provenance import json_text
 from envelope.reach import REACH_CLASSES, REACH_NODATA, ReachResult, simulate_reach
@@ -125,41 +126,35 @@ def write_reach_outputs(result: ReachResult, out, summary_path, *, front=None, a
     :class:`envelope.reach_runs.ReachRunSet`; ``probability`` (the share of runs reaching
     each cell) and ``runs`` (a CSV, one row per run) need the latter. ``polygons`` (.gpkg or
     .geojson) gets one dissolved polygon per reach class. All files are checked before any
-    is written and each is written atomically.
+    is written; they appear together or not at all.
     """
-    targets = [p for p in (out, summary_path, front, arrival, probability, runs, polygons) if p]
-    for p in targets:
+    named = {"arrival": arrival, "front": front, "classes": out, "summary": summary_path,
+             "probability": probability, "runs": runs, "polygons": polygons}
+    named = {k: p for k, p in named.items() if p}
+    for p in named.values():
         check_writable(p, overwrite)
     meta = dict(tags or {})
     meta.update({"threshold": result.summary["threshold"], "kernel": result.summary["kernel"],
                  "mean_distance_km": result.summary["mean_distance_km"]})
-    written = {}
-    if probability:
-        write_raster(result.probability.rename("reach_probability"), probability, overwrite=overwrite,
-                     tags={**meta, "units": "1", "n_runs": result.summary["n_runs"],
-                           "meaning": "share of runs in which the cell is occupied (>= 0.5) at the last horizon"})
-        written["probability"] = str(probability)
-    if runs:
-        with atomic_output(runs, overwrite=overwrite) as tmp:
-            result.runs.to_csv(tmp, index=False)
-        written["runs"] = str(runs)
-    if arrival:
-        write_raster(result.arrival_year.rename("arrival_year"), arrival, overwrite=overwrite,
-                     tags={**meta, "units": "year", "meaning": "first year with occupancy >= 0.5"})
-        written["arrival"] = str(arrival)
-    if front:
-        with atomic_output(front, overwrite=overwrite) as tmp:
-            tmp.write_text(json.dumps(result.front))
-        written["front"] = str(front)
-    if polygons:
-        from envelope.pipelines.change import write_class_polygons
+    with atomic_outputs(list(named.values()), overwrite=overwrite) as tmps:
+        tmp = dict(zip(named, tmps))
+        if probability:
+            write_raster(result.probability.rename("reach_probability"), tmp["probability"], overwrite=True,
+                         tags={**meta, "units": "1", "n_runs": result.summary["n_runs"],
+                               "meaning": "share of runs in which the cell is occupied (>= 0.5) at the last horizon"})
+        if runs:
+            result.runs.to_csv(tmp["runs"], index=False)
+        if arrival:
+            write_raster(result.arrival_year.rename("arrival_year"), tmp["arrival"], overwrite=True,
+                         tags={**meta, "units": "year", "meaning": "first year with occupancy >= 0.5"})
+        if front:
+            tmp["front"].write_text(json.dumps(result.front))
+        if polygons:
+            from envelope.pipelines.change import write_class_polygons
 
-        written["polygons"] = str(write_class_polygons(result.classes, REACH_CLASSES, REACH_NODATA, polygons,
-                                                       overwrite=overwrite))
-    write_raster(result.classes.rename("reach_class"), out, overwrite=overwrite, tags=meta,
-                 categories=REACH_CLASSES, nodata=REACH_NODATA)
-    written["classes"] = str(out)
-    with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json_text(result.summary))
-    written["summary"] = str(summary_path)
-    return written
+            write_class_polygons(result.classes, REACH_CLASSES, REACH_NODATA, tmp["polygons"], overwrite=True,
+                                 layer=Path(polygons).stem)
+        write_raster(result.classes.rename("reach_class"), tmp["classes"], overwrite=True, tags=meta,
+                     categories=REACH_CLASSES, nodata=REACH_NODATA)
+        tmp["summary"].write_text(json_text(result.summary))
+    return {k: str(p) for k, p in named.items()}

@@ -9,7 +9,7 @@ import numpy as np
 
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
-from envelope.io.atomic import atomic_output, check_writable
+from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.rasters import open_layer
 from envelope.io.tables import suitability_paths
 from envelope.io.writing import write_raster
@@ -105,13 +105,12 @@ def reach_model_from_options(now, futures, years, scenario_table, habitat, class
 
 
 def write_target_outputs(result: TargetResult, out, table_path, summary_path, *, overwrite=False, tags=None) -> dict:
-    """Write the rank raster, the patch table (CSV) and the summary JSON; all checked first, each atomic."""
+    """Write the rank raster, the patch table (CSV) and the summary JSON; all checked first, all or nothing."""
     for p in (out, table_path, summary_path):
         check_writable(p, overwrite)
-    write_raster(result.rank, out, overwrite=overwrite, nodata=RANK_NODATA,
-                 tags={**(tags or {}), "meaning": "restoration priority rank (1 = first); 0 = not chosen"})
-    with atomic_output(table_path, overwrite=overwrite) as tmp:
-        result.table.to_csv(tmp, index=False)
-    with atomic_output(summary_path, overwrite=overwrite) as tmp:
-        tmp.write_text(json_text(result.summary))
+    with atomic_outputs([out, table_path, summary_path], overwrite=overwrite) as (rank_tmp, table_tmp, summary_tmp):
+        write_raster(result.rank, rank_tmp, overwrite=True, nodata=RANK_NODATA,
+                     tags={**(tags or {}), "meaning": "restoration priority rank (1 = first); 0 = not chosen"})
+        result.table.to_csv(table_tmp, index=False)
+        summary_tmp.write_text(json_text(result.summary))
     return {"priority": str(out), "table": str(table_path), "summary": str(summary_path)}

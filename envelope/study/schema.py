@@ -503,7 +503,7 @@ def _model(c: _Checker, doc) -> ModelSection:
         folds=c.number("model.folds", t.get("folds", 5), integer=True, ge=2, le=20),
         cv=c.string("model.cv", t.get("cv", "block"), choices=CV_SCHEMES),
         threshold_rule=rule,
-        seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0),
+        seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0, le=2**32 - 1),
         features=features,
         background_buffer_km=(None if t.get("background_buffer_km") is None else
                               float(c.number("model.background_buffer_km", t["background_buffer_km"], gt=0))),
@@ -628,9 +628,17 @@ def _compute(c: _Checker, doc) -> ComputeSection:
 
 
 # --------------------------------------------------------------------------- loading
+#: A study file is a few kilobytes of settings; anything this large is some other file.
+MAX_STUDY_BYTES = 10 * 2**20
+
 def read_toml(path) -> dict:
     """Parse a TOML file; InputError ``"<file>: not valid TOML (line N: ...)"`` when it is not."""
     path = Path(path)
+    if path.exists() and not path.is_file():  # a device (/dev/zero) or a pipe: never read whole
+        raise InputError(f"{path}: not a regular file; expected a study file (TOML)")
+    if path.is_file() and path.stat().st_size > MAX_STUDY_BYTES:
+        raise InputError(f"{path}: {path.stat().st_size:,} bytes is too large for a study file "
+                         f"(at most {MAX_STUDY_BYTES:,}); expected a TOML study file")
     try:
         text = path.read_bytes().decode("utf-8")
     except FileNotFoundError:
@@ -639,6 +647,9 @@ def read_toml(path) -> dict:
         raise InputError(f"{path}: cannot read the study file ({exc}); expected a UTF-8 TOML file") from None
     try:
         return tomllib.loads(text)
+    except RecursionError:
+        raise InputError(f"{path}: not a study file: arrays or tables nested too deeply for the TOML reader; "
+                         "expected the tables of docs/study-file.md") from None
     except tomllib.TOMLDecodeError as exc:
         m = _TOML_WHERE.match(str(exc))
         detail = f"line {m['line']}: {m['msg']} at column {m['col']}" if m else str(exc)

@@ -90,3 +90,18 @@ def test_batch_form(files):
     assert table.loc[0, "name"] == "a" and "area_km2.gained" in table.columns
     r = _run("change", "--now", files["now"], "--scenarios", d / "scen.csv", "--out-dir", d / "out")
     assert r.exit_code == 2 and "--scenarios needs --out-dir and --table" in r.output
+
+
+def test_netcdf_future_against_geotiff_now(tmp_path):
+    # Analytic: the same grid written as GeoTIFF and as CF-NetCDF by envelope's own writer is one
+    # grid; `change` compares them by transform and shape (issue 19, group 9), not by exact labels.
+    now = _layer([[0.9, 0.9, 0.1], [0.1, 0.1, 0.1]], lon0=0.1, lat0=10.3)
+    future = _layer([[0.9, 0.1, 0.9], [0.9, 0.1, 0.1]], lon0=0.1, lat0=10.3)
+    now_path = _write(now, tmp_path / "now.tif", threshold=0.5)
+    future_path = _write(future, tmp_path / "future.nc", threshold=0.5)
+    result = CliRunner().invoke(cli, ["change", "--now", now_path, "--future", future_path,
+                                      "--out", str(tmp_path / "c.tif"), "--summary", str(tmp_path / "c.json")])
+    assert result.exit_code == 0, result.output
+    summary = json.loads((tmp_path / "c.json").read_text())
+    # Analytic: by construction one cell stays suitable, one is lost and two are gained
+    assert summary["n_cells"]["stable"] == 1 and summary["n_cells"]["lost"] == 1 and summary["n_cells"]["gained"] == 2

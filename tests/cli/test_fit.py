@@ -130,3 +130,15 @@ def test_forced_feature_classes_reach_the_model_and_inspect(tmp_path):
     assert meta["feature_classes"]["rule"] == "given" and meta["feature_classes"]["chosen"] == ["linear", "quadratic"]
     shown = CliRunner().invoke(cli, ["inspect", str(out)])
     assert "Features     linear, quadratic (given)" in shown.output
+
+
+def test_two_folds_work_for_the_default_method(tmp_path):
+    # Common practice, no source: --folds accepts 2 (its documented minimum); with two folds the
+    # point-process model's own CV splits each training half by spatial block, and the summary says so
+    result = CliRunner().invoke(cli, ["fit", "--presences", str(DEMO / "presences.csv"), "--climate",
+                                      str(DEMO / "baseline.tif"), "--background", "1000", "--folds", "2",
+                                      "--features", "linear,quadratic", "--out", str(tmp_path / "m.envm")])
+    assert result.exit_code == 0, result.output
+    summary = json.loads((tmp_path / "m.fit.json").read_text())
+    assert summary["cv"]["n_folds"] == 2
+    assert any("--folds 2" in note for note in summary["notes"])

@@ -52,3 +52,59 @@ def test_atomic_outputs_all_or_nothing(tmp_path):
         ta.write_text("a")
         tb.write_text("b")
     assert a.read_text() == "a" and b.read_text() == "b"
+
+
+def test_full_disk_names_the_final_path_and_leaves_nothing(tmp_path):
+    # Common practice, no source: ENOSPC while writing the temporary file is told as the user's
+    # path (errno name and a fix), and the temporary file is removed
+    import errno
+    import os
+
+    from envelope.errors import FileSystemError
+
+    target = tmp_path / "out.csv"
+    with pytest.raises(FileSystemError) as info:
+        with atomic_output(target) as tmp:
+            tmp.write_text("partial")
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(tmp))
+    message = str(info.value)
+    assert message.startswith(f"{target}: no space left on the device (ENOSPC)") and ".part" not in message
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_our_errors_quoting_the_temporary_name_name_the_final_path(tmp_path):
+    # Common practice, no source: a writer that checks the path it was given names the user's path
+    target = tmp_path / "suit.xyz"
+    with pytest.raises(InputError) as info:
+        with atomic_output(target) as tmp:
+            raise InputError(f"{tmp}: unknown output format")
+    assert str(info.value) == f"{target}: unknown output format"
+
+
+@pytest.mark.parametrize("name, phrase", [
+    ("newdir/", "names a folder"),
+    ("n" * 300 + ".csv", "file name too long (ENAMETOOLONG)"),
+    ("loop-a", "symbolic-link loop (ELOOP)"),
+])
+def test_unusable_output_names_are_refused_up_front(tmp_path, monkeypatch, name, phrase):
+    # Common practice, no source: POSIX limits a path component to NAME_MAX (255 bytes on Linux file systems)
+    import os
+
+    from envelope.errors import EnvelopeError
+
+    os.symlink(tmp_path / "loop-b", tmp_path / "loop-a")
+    os.symlink(tmp_path / "loop-a", tmp_path / "loop-b")
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(EnvelopeError, match=phrase.replace("(", r"\(").replace(")", r"\)")):
+        check_writable(name)
+
+
+def test_remove_empty_folder_only_when_empty(tmp_path):
+    # Common practice, no source
+    from envelope.io.atomic import remove_empty_folder
+
+    (tmp_path / "a" / "b").mkdir(parents=True)
+    assert remove_empty_folder(tmp_path / "a") and not (tmp_path / "a").exists()
+    (tmp_path / "c" / "d").mkdir(parents=True)
+    (tmp_path / "c" / "d" / "kept.txt").write_text("x")
+    assert not remove_empty_folder(tmp_path / "c") and (tmp_path / "c" / "d" / "kept.txt").exists()

@@ -142,3 +142,49 @@ def test_duplicate_header_names(tmp_path):
     # Common practice, no source.
     with pytest.raises(InputError, match="column 'year' appears twice"):
         read_occurrences(write(tmp_path, "dup.csv", "decimalLongitude,decimalLatitude,year,year\n1,2,3,4\n"))
+
+
+def _rows(n):
+    return "".join(f"r{i},-149.{95 - i % 90:02d},44.55,30,2001,present\n" for i in range(n))
+
+
+def test_a_stray_quote_breaks_one_row_not_the_rest(tmp_path):
+    # Source: constructed file (issue 19: one stray quote once swallowed 454 of 459 rows); RFC 4180
+    # section 2: a field that opens with a quote runs to the matching closing quote.
+    rows = _rows(40).splitlines(keepends=True)
+    rows[5] = rows[5].replace(",", ',"', 1)  # r5,"-149.90,... : the quote never closes
+    table = read_occurrences(write(tmp_path, "stray.csv", HEADER + "\n" + "".join(rows)))
+    assert len(table) == 40
+    assert table["malformed"].tolist() == [i == 5 for i in range(40)]
+    assert table["line"].tolist() == list(range(2, 42))
+
+
+def test_a_quoted_line_break_is_one_record(tmp_path):
+    # Source: RFC 4180 section 2 rule 6: fields with line breaks are enclosed in double quotes.
+    text = HEADER + ',remarks\nr1,-149.95,44.95,30,2001,present,"seen at dusk\nnear the ridge"\n' \
+                    'r2,-149.85,44.85,30,2001,present,none\n'
+    table = read_occurrences(write(tmp_path, "remarks.csv", text))
+    assert table["occurrenceID"].tolist() == ["r1", "r2"]
+    assert table["remarks"].iloc[0] == "seen at dusk\nnear the ridge"
+    assert not table["malformed"].any()
+
+
+def test_many_broken_rows_stop_the_read(tmp_path):
+    # Common practice, no source: more than 5 % broken rows (and more than 2) means a wrong
+    # delimiter or quoting, refused with the first broken line named
+    rows = _rows(40).splitlines(keepends=True)
+    for i in (3, 9, 15):
+        rows[i] = rows[i].replace(",", ';', 2)
+    with pytest.raises(InputError, match=r"3 of 40 records have a wrong number of fields .*first at line 5") as info:
+        read_occurrences(write(tmp_path, "semi.csv", HEADER + "\n" + "".join(rows)))
+    one_line_error(info)
+
+
+def test_a_device_is_not_read(tmp_path):
+    # Common practice, no source: /dev/zero never ends; it is refused without reading it
+    with pytest.raises(InputError, match="/dev/zero: not a regular file"):
+        read_occurrences("/dev/zero")
+    path = tmp_path / "bin.csv"
+    path.write_bytes(b"decimalLongitude,decimalLatitude\n\x00\x01\x02")
+    with pytest.raises(InputError, match="bin.csv: binary data"):
+        read_occurrences(path)
