@@ -69,7 +69,9 @@ def describe_grid(path) -> dict:
 
 
 def describe_model(path) -> dict:
-    """What a model file holds, from its manifest only (:func:`envelope.io.modelfile.model_summary`)."""
-    from envelope.io.modelfile import model_summary, read_manifest
+    """What a model file holds (:func:`envelope.io.modelfile.model_summary`), after the same
+    checks as loading it for a projection (checksums, members, sizes, the skops allow-list),
+    so a file that ``project`` would refuse is refused here too."""
+    from envelope.io.modelfile import model_summary, open_model
 
-    return model_summary(read_manifest(path))
+    return model_summary(open_model(path)[1])

@@ -14,7 +14,7 @@ from envelope.ensemble import (COUNT_NODATA, CONSENSUS_CATEGORIES, DEFAULT_AGREE
 from envelope.errors import InputError
 from envelope.grids import cell_area_km2, check_same_grid, match_variables
 from envelope import __version__
-from envelope.io.modelfile import load_model, read_manifest
+from envelope.io.modelfile import open_model
 from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.rasters import open_climate, open_layer
 from envelope.io.tables import SUITABILITY_TABLE_NAME, group_scenarios, read_scenarios, write_suitability_table
@@ -52,8 +52,8 @@ def scheduler_context(address=None):
 def load_projection_model(model_file):
     """``(estimator, metadata, method, sha256)`` of a model file (errors name the file)."""
 
-    estimator, metadata = load_model(model_file)
-    method = read_manifest(model_file)["method"]
+    estimator, manifest = open_model(model_file)
+    metadata, method = manifest["metadata"], manifest["method"]
     variables = [str(v["name"]) for v in metadata["variables"]]
     threshold = metadata.get("threshold") or {}
     if not isinstance(threshold, dict) or threshold.get("value") is None:
