@@ -30,6 +30,7 @@ class RunLayout:
           change/<scenario>.tif|.json        range change per scenario, change/change_table.csv
           reach/<run>_reach<ext>             reach classes per pathway (+ _reach.json, _front.geojson, _arrival<ext>)
           report.html
+          .envelope-run.lock                 held by the run writing into the folder
     """
 
     run_dir: Path
@@ -58,6 +59,11 @@ class RunLayout:
     @property
     def manifest(self) -> Path:
         return self.run_dir / MANIFEST_NAME
+
+    @property
+    def lock(self) -> Path:
+        """The lock file a run holds while it writes into the folder (one run per folder)."""
+        return self.run_dir / ".envelope-run.lock"
 
     @property
     def scenario_table(self) -> Path:
@@ -106,6 +112,10 @@ class RunLayout:
     def change_map(self, scenario: str) -> Path:
         """The class raster ``range_change_batch`` writes for one scenario (always GeoTIFF)."""
         return self.change_dir / f"{scenario}.tif"
+
+    def change_summary(self, scenario: str) -> Path:
+        """The JSON summary ``range_change_batch`` writes beside each class raster."""
+        return self.change_dir / f"{scenario}.json"
 
     @property
     def reach_dir(self) -> Path:
