@@ -272,7 +272,12 @@ def default_block_km(x, y, values, *, crs, names=None, max_points: int = 1500, n
         xk, yk, vals = xk[pick], yk[pick], vals[pick]
     pts = np.column_stack([xk, yk])
 
-    side = min(np.ptp(xk), np.ptp(yk))
+    # a one-row or one-column study area has points on a line: its blocks cut the line
+    extents = [float(e) for e in (np.ptp(xk), np.ptp(yk)) if e > 0]
+    if not extents:
+        raise InputError("background: every point lies in one place, so no spatial blocks can be formed "
+                         "(expected a study area of more than one cell; give a block size or random folds)")
+    side = min(extents)
     nn = cKDTree(pts).query(pts, k=2)[0][:, 1]
     upper = side / 5.0
     lower = 2.0 * float(np.median(nn))

@@ -78,6 +78,22 @@ def is_geographic(da: xr.DataArray) -> bool:
     return bool(crs is not None and crs.is_geographic)
 
 
+def georeferenced_like(result: xr.DataArray, ref: xr.DataArray) -> xr.DataArray:
+    """``result`` (on ``ref``'s cells) with ``ref``'s CRS and, for a one-row or one-column
+    grid, ``ref``'s stated transform: such a grid cannot recover its cell size from
+    coordinate spacing, and an output without it would be written with an identity
+    geotransform."""
+    if ref.rio.crs is not None:
+        result = result.rio.write_crs(ref.rio.crs)
+    if min(ref.sizes["y"], ref.sizes["x"]) == 1:
+        from affine import Affine
+
+        stated = ref.rio.transform()  # the stored GeoTransform; identity when there is none
+        if stated != Affine.identity():
+            result = result.rio.write_transform(stated)
+    return result
+
+
 def grid_signature(da: xr.DataArray) -> dict:
     """What identifies a grid: CRS, resolution, shape (rows, columns), transform and bounds.
 

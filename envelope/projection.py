@@ -10,7 +10,7 @@ import numpy as np
 import xarray as xr
 
 from envelope.errors import InputError
-from envelope.grids import match_variables
+from envelope.grids import georeferenced_like, match_variables
 from envelope.kernels.predict import (AdditiveTable, compile_pointprocess, predict_cells,
                                       suitability_table)
 
@@ -108,7 +108,10 @@ def _suitability_block(block, members, lower, upper):
             with _openmp_controller().limit(limits=1, user_api="openmp"):
                 s = predict_cells(predict_proba, X, lower=lower, upper=upper, batch_cells=CELL_BATCH)
         total = s if weight is None else (weight * s if total is None else total + weight * s)
-    return total.astype(np.float32).reshape(shape)
+    total = total.astype(np.float32)
+    # clamping would turn ±inf into the training bounds: a non-finite climate value is nodata
+    total[~np.isfinite(X).all(axis=0)] = np.nan
+    return total.reshape(shape)
 
 
 def _members(estimator) -> list:
@@ -129,9 +132,7 @@ def _members(estimator) -> list:
 def _layer_like(result: xr.DataArray, stack: xr.DataArray, name: str, attrs: dict) -> xr.DataArray:
     result = result.rename(name)
     result.attrs = attrs
-    if stack.rio.crs is not None:
-        result = result.rio.write_crs(stack.rio.crs)
-    return result
+    return georeferenced_like(result, stack)
 
 
 def _predict_proba_of(estimator):
@@ -189,6 +190,7 @@ def _mess_block(block, reference):
     out = np.empty((2, X.shape[1]), dtype=np.float32)
     out[0] = values
     out[1] = np.where(index >= 0, index, np.nan)
+    out[:, ~np.isfinite(X).all(axis=0)] = np.nan  # ±inf climate is nodata, as for suitability
     return out.reshape((2,) + shape)
 
 
@@ -228,6 +230,11 @@ def project_mess(stack: xr.DataArray, variables, reference) -> xr.DataArray:
                                                 "variables": list(variables)})
 
 
+def infinite_cells(stack: xr.DataArray):
+    """Lazy count of cells where some variable is +inf or -inf (projected as nodata)."""
+    return np.isinf(stack).any("variable").sum().data
+
+
 def novel_area_sums(mess_values: xr.DataArray, cell_area: xr.DataArray) -> tuple:
     """Lazy (valid area, novel area): sums of true cell areas where MESS is defined and
     where MESS < 0 (area weighting, not cell counting)."""
@@ -255,9 +262,7 @@ def binary_map(suitability: xr.DataArray, threshold: float, *, nodata: int = 255
     out = xr.where(suitability.isnull(), nodata, (suitability >= threshold).astype(np.uint8)).astype(np.uint8)
     out = out.rename("suitable")
     out.attrs = {"long_name": "suitable at threshold", "threshold": float(threshold)}
-    if suitability.rio.crs is not None:
-        out = out.rio.write_crs(suitability.rio.crs)
-    return out
+    return georeferenced_like(out, suitability)
 
 
 # Spatial window of the streamed stack (rounded to whole file blocks when read): with 19

@@ -1,4 +1,4 @@
-"""`envelope inspect`: print what a model file holds, without loading the estimator."""
+"""`envelope inspect`: check a model file as loading does, and print what it holds."""
 
 from __future__ import annotations
 
@@ -18,8 +18,10 @@ def inspect(model_file, as_json):
     Shows the method, the variables with their units and training range, the threshold
     and its rule, the cross-validation summary, the feature classes of a point-process
     model (and how they were chosen) and the provenance (input checksums,
-    seed, software versions). Only the JSON manifest is read, so inspecting a file
-    never runs code from it.
+    seed, software versions). The file is checked exactly as `envelope project` checks
+    it (one checksum over every member, no repeated or oversized member, only allow-listed
+    types in the estimator), so a file that cannot be projected is refused here too, and
+    inspecting a file never runs code from it.
 
     \b
     Examples:

@@ -127,6 +127,9 @@ def cli(ctx, verbose, debug):
     """
     level = logging.WARNING - 10 * verbose
     logging.basicConfig(level=max(level, logging.DEBUG), format="%(levelname)s %(name)s: %(message)s")
+    from envelope.cli.logsetup import route_warnings
+
+    route_warnings()
     ctx.ensure_object(dict)
     ctx.obj["debug"] = debug
     ctx.obj["verbose"] = verbose

@@ -102,6 +102,8 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
         click.echo(f"MESS: {result['mess']}; novel climate (MESS < 0): {100 * result['novel_share']:.2f} % of area")
     if result["binary"]:
         click.echo(f"binary: {result['binary']}")
+    if result["n_infinite"]:
+        click.echo(f"nodata: {result['n_infinite']} cells with +inf/-inf climate values")
 
 
 class _progress_bar:

@@ -33,9 +33,7 @@ def execute(study, out):
     from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
     from envelope.pipelines.project import scheduler_context
-    from envelope.study.runner import run_study
-
-    from envelope.io.atomic import remove_empty_folder
+    from envelope.study.runner import remove_failed_run_folder, run_study
 
     created = not os.path.lexists(out)
     try:
@@ -46,7 +44,7 @@ def execute(study, out):
             return run_study(study, out, progress=lambda stage: bar.update(task, description=stage))
     except BaseException:
         if created:  # a run that failed before its first result (a full disk, say) leaves no empty folder
-            remove_empty_folder(out)
+            remove_failed_run_folder(out)
         raise
 
 

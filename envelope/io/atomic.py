@@ -4,14 +4,19 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import logging
 import os
+import re
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 
 from envelope.errors import EnvelopeError, FileSystemError, InputError, OutputExistsError, os_error_message
 
-__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode", "remove_empty_folder"]
+__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode",
+           "remove_empty_folder", "remove_stale_temporaries", "temporary_name_pattern"]
+
+log = logging.getLogger(__name__)
 
 
 def file_mode() -> int:
@@ -113,12 +118,61 @@ def _nearly_full(path: Path) -> bool:
         return False
 
 
+def temporary_name_pattern(path: Path) -> re.Pattern:
+    """Names of the temporary files :func:`atomic_output` makes for ``path``.
+
+    ``.<name>.<pid>-<random>.part<suffix>``, and anything a writer derives from such a name
+    (a GeoTIFF's staging file ``….part.tif.stage.tif`` and its ``.aux.xml``). The process id
+    says whose file it is, so a later writer of the same path can tell a stale file (its
+    process is gone, e.g. killed) from one a running process is still writing.
+    """
+    return re.compile(rf"^\.{re.escape(path.name)}\.(?P<pid>\d+)-[A-Za-z0-9_]+\.part")
+
+
+def _process_alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True  # another user's live process
+    return True
+
+
+def remove_stale_temporaries(path: str | os.PathLike) -> list[Path]:
+    """Remove temporary files of ``path`` left by writers that no longer run; return them.
+
+    A writer killed hard (SIGKILL, power cut) cannot delete its temporary files; the next
+    command that writes the same path removes them here. Files of live processes are kept.
+    """
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    pattern = temporary_name_pattern(path)
+    removed = []
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return removed
+    for entry in entries:
+        m = pattern.match(entry.name)
+        if m and not _process_alive(int(m["pid"])) and entry.is_file(follow_symlinks=False):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(entry.path)
+                removed.append(Path(entry.path))
+    if removed:
+        log.info("%s: removed %d stale temporary file(s) of an earlier, interrupted write", path, len(removed))
+    return removed
+
+
 @contextlib.contextmanager
 def atomic_output(path: str | os.PathLike, overwrite: bool = False) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; on success rename it onto ``path``.
 
     On any exception (including KeyboardInterrupt) the temporary file is removed and
-    ``path`` is left exactly as it was.
+    ``path`` is left exactly as it was. Temporary files of ``path`` left by an earlier
+    writer that was killed are removed first (:func:`remove_stale_temporaries`).
 
     Examples
     --------
@@ -126,8 +180,9 @@ def atomic_output(path: str | os.PathLike, overwrite: bool = False) -> Iterator[
     ...     tmp.write_text("{}")
     """
     path = check_writable(path, overwrite)
+    remove_stale_temporaries(path)
     try:
-        fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + path.suffix,
+        fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}-", suffix=".part" + path.suffix,
                                         dir=path.parent if str(path.parent) else ".")
     except OSError as exc:
         raise FileSystemError(os_error_message(exc, path)) from None

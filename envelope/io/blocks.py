@@ -6,7 +6,7 @@ import threading
 
 import numpy as np
 
-__all__ = ["WindowReader", "WindowWriter", "window_array"]
+__all__ = ["WindowReader", "WindowWriter", "stored_windows", "window_array"]
 
 
 class WindowReader:
@@ -110,3 +110,35 @@ def _band_range_and_window(key, shape):
     key = key + (slice(None),) * (3 - len(key))
     (b0, b1, _), (y0, y1, _), (x0, x1, _) = (k.indices(n) for k, n in zip(key, shape))
     return (b0, b1), Window(x0, y0, x1 - x0, y1 - y0)
+
+
+def stored_windows(path) -> tuple[list, int]:
+    """The file blocks of a tiled or striped GDAL raster that hold data, and how many blocks it has.
+
+    A sparse GeoTIFF (GDAL ``SPARSE_OK``) stores no bytes for a block that is nodata
+    everywhere; such a block is known from the file's block index alone (size 0 in every
+    band), without reading it. Without a nodata value an absent block reads as 0, which is
+    data, so then every block is returned.
+
+    Returns
+    -------
+    (list of rasterio Windows, total number of blocks)
+    """
+    import rasterio
+    from rasterio.errors import RasterBlockError
+
+    with rasterio.open(path) as src:
+        windows = [w for _, w in src.block_windows(1)]
+        if src.nodata is None:
+            return windows, len(windows)
+        bh, bw = src.block_shapes[0]
+
+        def stored(band, row, col) -> bool:
+            try:
+                return src.block_size(band, row, col) > 0
+            except RasterBlockError:  # GDAL: no offset recorded, i.e. a block never written
+                return False
+
+        kept = [w for w in windows if any(stored(b, int(w.row_off) // bh, int(w.col_off) // bw)
+                                          for b in range(1, src.count + 1))]
+    return kept, len(windows)

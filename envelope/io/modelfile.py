@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
+import logging
 import zipfile
 from pathlib import Path
 
@@ -15,11 +16,23 @@ from envelope.errors import InputError, ModelError
 from envelope.io.atomic import atomic_output
 from envelope.provenance import json_plain, software_versions
 
+log = logging.getLogger(__name__)
+
 FORMAT_NAME = "envelope-model"
-FORMAT_VERSION = 1
+#: 2: one SHA-256 over every member (the manifest included) in ``digest.sha256``;
+#: 1: a SHA-256 of the estimator only, in the manifest (still read, with a warning).
+FORMAT_VERSION = 2
 SUFFIX = ".envm"
 MANIFEST_NAME = "manifest.json"
 PAYLOAD_NAME = "estimator.skops"
+DIGEST_NAME = "digest.sha256"
+
+#: Largest uncompressed member sizes, checked from the zip directory before anything is
+#: read (a small compressed member can expand to gigabytes). The manifest holds variable
+#: ranges, CV scores and the MESS reference (kilobytes); the estimator of a large tree
+#: ensemble is tens of megabytes.
+MAX_MEMBER_BYTES = {MANIFEST_NAME: 16 * 2**20, DIGEST_NAME: 1024}
+MAX_PAYLOAD_BYTES = 1024 * 2**20
 
 # The only types a model file may hold beyond what skops trusts by default (plain
 # Python, NumPy arrays and scalars, and scikit-learn estimators/trees it knows are safe).
@@ -123,11 +136,28 @@ def save_model(path, estimator, metadata: dict, *, overwrite: bool = False) -> P
                     "bytes": len(payload)},
         "metadata": meta,
     }
+    members = {MANIFEST_NAME: json.dumps(manifest, indent=2, allow_nan=True).encode("utf-8"), PAYLOAD_NAME: payload}
     with atomic_output(path, overwrite=overwrite) as tmp:
         with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-            zf.writestr(MANIFEST_NAME, json.dumps(manifest, indent=2, allow_nan=True))
-            zf.writestr(PAYLOAD_NAME, payload)
+            for name, data in members.items():
+                zf.writestr(name, data)
+            zf.writestr(DIGEST_NAME, f"sha256 {members_digest(members)}\n")
     return Path(path)
+
+
+def members_digest(members: dict) -> str:
+    """SHA-256 (hex) over every member of a model file but the digest itself.
+
+    Members are taken in name order, each as its UTF-8 name, a NUL byte, its length as
+    8 bytes (big-endian) and its bytes, so no two different sets of members hash alike by
+    moving bytes from one member to the next.
+    """
+    h = hashlib.sha256()
+    for name in sorted(members):
+        data = members[name]
+        h.update(name.encode("utf-8") + b"\0" + len(data).to_bytes(8, "big"))
+        h.update(data)
+    return h.hexdigest()
 
 
 def _open_zip(path) -> zipfile.ZipFile:
@@ -142,15 +172,38 @@ def _open_zip(path) -> zipfile.ZipFile:
         raise ModelError(f"{path}: damaged model file ({exc})") from None
 
 
-def _read_member(zf: zipfile.ZipFile, name: str, path) -> bytes:
+def _check_directory(zf: zipfile.ZipFile, path) -> dict:
+    """The zip directory as ``{name: ZipInfo}``; ModelError for repeated or oversized members.
+
+    Sizes come from the directory, so nothing is decompressed before it is known to be
+    small enough (reading itself is capped too: the directory could lie).
+    """
+    infos = {}
+    for info in zf.infolist():
+        if info.filename in infos:
+            raise ModelError(f"{path}: member {info.filename!r} appears twice (expected each member once); "
+                             "the file was altered")
+        infos[info.filename] = info
+    return infos
+
+
+def _read_member(zf: zipfile.ZipFile, infos: dict, name: str, path, limit: int) -> bytes:
+    info = infos.get(name)
+    if info is None:
+        raise ModelError(f"{path}: not an envelope model file (no {name} inside)")
+    if info.file_size > limit:
+        raise ModelError(f"{path}: member {name} would expand to {info.file_size:,} bytes (at most {limit:,} "
+                         "expected); the file was altered or is not a model file")
     try:
-        return zf.read(name)
-    except KeyError:
-        raise ModelError(f"{path}: not an envelope model file (no {name} inside)") from None
+        with zf.open(info) as stream:
+            data = stream.read(limit + 1)
     except (zipfile.BadZipFile, OSError, EOFError, ValueError) as exc:
         raise ModelError(f"{path}: damaged model file ({name}: {exc})") from None
     except Exception as exc:  # zlib.error on a corrupted deflate stream
         raise ModelError(f"{path}: damaged model file ({name}: {exc})") from None
+    if len(data) > limit:
+        raise ModelError(f"{path}: member {name} expands past {limit:,} bytes; the file was altered")
+    return data
 
 
 def _parse_manifest(raw: bytes, path) -> dict:
@@ -173,14 +226,62 @@ def _parse_manifest(raw: bytes, path) -> dict:
     return manifest
 
 
+def _verified_members(path) -> tuple[dict, bytes]:
+    """``(manifest, payload bytes)`` of a model file after every container check.
+
+    Checked in this order, before any estimator is built: a zip; each member name once;
+    only the known members; sizes within :data:`MAX_MEMBER_BYTES` / :data:`MAX_PAYLOAD_BYTES`
+    (from the directory); a manifest of a known format; the digest of every member
+    (format 2) or the estimator's checksum (format 1, with a warning that the manifest is
+    not covered).
+    """
+    with _open_zip(path) as zf:
+        infos = _check_directory(zf, path)
+        manifest_raw = _read_member(zf, infos, MANIFEST_NAME, path, MAX_MEMBER_BYTES[MANIFEST_NAME])
+        manifest = _parse_manifest(manifest_raw, path)
+        info = manifest["payload"]
+        payload_name = info.get("name", PAYLOAD_NAME) if isinstance(info, dict) else PAYLOAD_NAME
+        if payload_name != PAYLOAD_NAME:
+            raise ModelError(f"{path}: manifest names the estimator {payload_name!r} (expected {PAYLOAD_NAME!r}); "
+                             "the file was altered")
+        version = manifest["format_version"]
+        known = {MANIFEST_NAME, payload_name} | ({DIGEST_NAME} if version >= 2 else set())
+        extra = sorted(set(infos) - known)
+        if extra:
+            raise ModelError(f"{path}: unexpected member {extra[0]!r} (a model file holds only "
+                             f"{', '.join(sorted(known))}); the file was altered")
+        for name in infos:
+            limit = MAX_PAYLOAD_BYTES if name == PAYLOAD_NAME else MAX_MEMBER_BYTES[name]
+            if infos[name].file_size > limit:
+                raise ModelError(f"{path}: member {name} would expand to {infos[name].file_size:,} bytes "
+                                 f"(at most {limit:,} expected); the file was altered or is not a model file")
+        payload = _read_member(zf, infos, payload_name, path, MAX_PAYLOAD_BYTES)
+        if version >= 2:
+            raw = _read_member(zf, infos, DIGEST_NAME, path, MAX_MEMBER_BYTES[DIGEST_NAME])
+            members = {MANIFEST_NAME: manifest_raw, PAYLOAD_NAME: payload}
+    if version >= 2:
+        stated = raw.decode("ascii", "replace").split()
+        if len(stated) != 2 or stated[0] != "sha256" or stated[1] != members_digest(members):
+            raise ModelError(f"{path}: checksum does not match the file's contents (manifest and estimator); "
+                             "the file was altered or damaged")
+    else:
+        log.warning("%s: model file format 1 (an older envelope): only its estimator is covered by a checksum, "
+                    "not its manifest (threshold, variables); fit it again to get a file that protects both", path)
+    expected = info.get("sha256") if isinstance(info, dict) else None
+    if hashlib.sha256(payload).hexdigest() != expected:
+        raise ModelError(f"{path}: estimator checksum does not match the manifest; the file was "
+                         "altered or damaged")
+    return manifest, payload
+
+
 def read_manifest(path) -> dict:
     """The manifest of a model file (format, versions, method, metadata), without the estimator.
 
-    Raises InputError if the file is missing and ModelError if it is not a model file of
-    a known format version.
+    Runs every container check of :func:`load_model` (members, sizes, checksums) but does
+    not build the estimator. Raises InputError if the file is missing and ModelError if
+    it is not an intact model file of a known format version.
     """
-    with _open_zip(path) as zf:
-        return _parse_manifest(_read_member(zf, MANIFEST_NAME, path), path)
+    return _verified_members(path)[0]
 
 
 # Modules whose classes moved: model files written before the move name the old module in
@@ -208,24 +309,26 @@ def _with_moved_modules(payload: bytes) -> bytes:
     return out.getvalue()
 
 
-def load_model(path):
-    """Open a model file safely: returns ``(estimator, metadata)``.
+def open_model(path):
+    """Open a model file safely: returns ``(estimator, manifest)``.
 
-    The payload's SHA-256 must match the manifest, and skops loads only
-    :data:`ALLOWED_TYPES` plus its own safe defaults; anything else — a wrong checksum,
-    an untrusted type, a non-zip or a foreign zip — raises ModelError naming the file.
+    Every check of :func:`read_manifest`, then skops loads only :data:`ALLOWED_TYPES`
+    plus its own safe defaults; anything else — a wrong checksum, a repeated or oversized
+    member, an untrusted type, a non-zip or a foreign zip — raises ModelError naming the file.
     """
+    import io
+
     import skops.io as sio
 
-    with _open_zip(path) as zf:
-        manifest = _parse_manifest(_read_member(zf, MANIFEST_NAME, path), path)
-        info = manifest["payload"]
-        name = info.get("name", PAYLOAD_NAME) if isinstance(info, dict) else PAYLOAD_NAME
-        payload = _read_member(zf, name, path)
-    expected = info.get("sha256") if isinstance(info, dict) else None
-    if hashlib.sha256(payload).hexdigest() != expected:
-        raise ModelError(f"{path}: estimator checksum does not match the manifest; the file was "
-                         "altered or damaged")
+    manifest, payload = _verified_members(path)
+    try:
+        with zipfile.ZipFile(io.BytesIO(payload)) as inner:
+            names = [i.filename for i in inner.infolist()]
+            inner_bytes = sum(i.file_size for i in inner.infolist())
+    except zipfile.BadZipFile as exc:
+        raise ModelError(f"{path}: estimator payload is not a skops file (BadZipFile: {exc})") from None
+    if len(set(names)) != len(names) or inner_bytes > MAX_PAYLOAD_BYTES:
+        raise ModelError(f"{path}: estimator payload has repeated or oversized members; the file was altered")
     try:
         payload = _with_moved_modules(payload)
         untrusted = sio.get_untrusted_types(data=payload)
@@ -243,6 +346,12 @@ def load_model(path):
 
     if type(estimator) not in METHODS.values():
         raise ModelError(f"{path}: holds a {type(estimator).__name__}, not an envelope estimator")
+    return estimator, manifest
+
+
+def load_model(path):
+    """Open a model file safely: returns ``(estimator, metadata)`` (see :func:`open_model`)."""
+    estimator, manifest = open_model(path)
     return estimator, manifest["metadata"]
 
 
@@ -268,6 +377,6 @@ def model_summary(manifest: dict) -> dict:
     }
 
 
-__all__ = ["ALLOWED_TYPES", "FORMAT_NAME", "FORMAT_VERSION", "SUFFIX", "load_model", "model_summary",
-           "read_manifest", "save_model"]
+__all__ = ["ALLOWED_TYPES", "DIGEST_NAME", "FORMAT_NAME", "FORMAT_VERSION", "MAX_MEMBER_BYTES", "MAX_PAYLOAD_BYTES",
+           "SUFFIX", "load_model", "members_digest", "model_summary", "open_model", "read_manifest", "save_model"]
 

@@ -143,7 +143,7 @@ def _read_gdal(path: Path, *, chunks, categorical: bool, name_from_stem: bool, b
     da = xr.DataArray(data, dims=("variable", "y", "x"),
                       coords={"variable": [names[b] for b in keep], "y": np.asarray(y[1], dtype=np.float64),
                               "x": np.asarray(x[0], dtype=np.float64)})
-    out = _normalised(da, crs, path)
+    out = _normalised(da, crs, path, resolution=(abs(transform.a), abs(transform.e)))
     out = out.assign_coords(units=("variable", [units[b] for b in keep]))
     out.attrs = {k: v for k, v in tags.items()}
     out.attrs["band_tags"] = json.dumps([band_tags[b] for b in keep])
@@ -186,8 +186,14 @@ def _window_chunks(chunks, reader, block_shape) -> tuple:
     return normalize_chunks(chunks, shape=shape, dtype=reader.dtype)
 
 
-def _normalised(da: xr.DataArray, crs, path) -> xr.DataArray:
-    """Clean (variable, y, x) array: north-up, -180..180 longitudes, CRS attached, no extra coords."""
+def _normalised(da: xr.DataArray, crs, path, resolution=None) -> xr.DataArray:
+    """Clean (variable, y, x) array: north-up, -180..180 longitudes, CRS attached, no extra coords.
+
+    ``resolution`` ((dx, dy), positive) is the cell size the file states (a GeoTIFF's
+    transform, a NetCDF file's cell bounds). A grid of one row or one column cannot tell
+    its cell size from coordinate spacing, so such a grid carries the stated transform
+    (rioxarray's ``GeoTransform``) and every later reader of ``rio.transform()`` gets it.
+    """
     geographic = bool(crs.is_geographic)
     x = np.asarray(da["x"].values, dtype=np.float64)
     if geographic and x.size and np.nanmax(x) > 180.0:
@@ -209,7 +215,24 @@ def _normalised(da: xr.DataArray, crs, path) -> xr.DataArray:
                                  "y": da["y"].values.astype(np.float64), "x": da["x"].values.astype(np.float64)},
                          name="climate")
     _check_regular(clean, path)
-    return clean.rio.write_crs(crs)
+    clean = clean.rio.write_crs(crs)
+    if min(clean.sizes["y"], clean.sizes["x"]) == 1:
+        clean = _with_stated_transform(clean, resolution, path)
+    return clean
+
+
+def _with_stated_transform(da: xr.DataArray, resolution, path) -> xr.DataArray:
+    """A one-row or one-column grid with its transform from the file's stated cell size."""
+    from affine import Affine
+
+    x, y = da["x"].values, da["y"].values
+    dx = resolution[0] if resolution and resolution[0] else (abs(x[1] - x[0]) if x.size > 1 else None)
+    dy = resolution[1] if resolution and resolution[1] else (abs(y[0] - y[1]) if y.size > 1 else None)
+    if not dx or not dy:
+        raise InputError(f"{path}: a grid of {y.size} row(s) x {x.size} column(s) without a stated cell size "
+                         "(expected a GeoTIFF transform, or cell bounds on the NetCDF coordinates)")
+    transform = Affine(float(dx), 0.0, float(x[0]) - dx / 2.0, 0.0, -float(dy), float(y[0]) + dy / 2.0)
+    return da.rio.write_transform(transform)
 
 
 def _check_regular(da: xr.DataArray, path) -> None:
@@ -327,10 +350,23 @@ def _read_netcdf(path: Path, *, time, chunks, categorical: bool) -> xr.DataArray
     stacked = xr.concat([lay.astype(lay.dtype if categorical else np.float32) for lay in layers],
                         dim="variable", coords="minimal", compat="override", join="exact")
     stacked = stacked.rename({xname: "x", yname: "y"}).assign_coords(variable=names)
-    out = _normalised(stacked, crs, path).assign_coords(units=("variable", units))
+    resolution = (_bounds_step(ds, xname), _bounds_step(ds, yname))
+    out = _normalised(stacked, crs, path, resolution=resolution).assign_coords(units=("variable", units))
     out.attrs = {k: v if isinstance(v, str) else json.dumps(v, default=str)
                  for k, v in ds.attrs.items() if isinstance(v, (str, int, float))}
     return out
+
+
+def _bounds_step(ds: xr.Dataset, dim: str):
+    """Cell size along ``dim`` from its CF cell bounds (``bounds`` attribute), or None."""
+    name = ds[dim].attrs.get("bounds") if dim in ds.variables else None
+    if not name or name not in ds.variables:
+        return None
+    edges = np.asarray(ds[name].values, dtype=np.float64)
+    if edges.ndim != 2 or edges.shape[-1] != 2 or not edges.size:
+        return None
+    step = float(abs(edges[0, 1] - edges[0, 0]))
+    return step or None
 
 
 def _read(path, *, time=None, chunks="auto", categorical=False, name_from_stem=True, bands=None) -> xr.DataArray:

@@ -90,6 +90,14 @@ def _prepare(output: RasterOutput, overwrite: bool) -> _Prepared:
         raise InputError(f"{path}: unknown output format {suffix or '(no suffix)'!r} (expected .tif, .tiff or .nc)")
     check_writable(path, overwrite)
     stack = _as_stack(output.data, path)
+    if min(stack.sizes["y"], stack.sizes["x"]) == 1:
+        from affine import Affine
+
+        if stack.rio.transform() == Affine.identity():
+            # one row or column: the cell size is not in the coordinates, and writing an
+            # identity geotransform would silently lose the georeferencing
+            raise InputError(f"{path}: a grid of {stack.sizes['y']} x {stack.sizes['x']} cells without a stored "
+                             "transform (expected the transform of the grid it was computed from)")
     dtype = np.dtype(output.dtype or stack.dtype)
     if dtype == np.float64 and stack.dtype != np.float64:
         dtype = np.dtype(np.float64)

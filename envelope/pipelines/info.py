@@ -8,7 +8,11 @@ import numpy as np
 
 
 def describe_grid(path) -> dict:
-    """Summarise a climate or layer file in one pass over its data.
+    """Summarise a climate or layer file in one pass over its data (bounded memory).
+
+    A GeoTIFF of more than :data:`STREAM_CELLS` cells is read block by block, and only the
+    blocks the file stores: a sparse grid of 200,000 x 200,000 cells is described from its
+    block index and its few stored blocks.
 
     Parameters
     ----------
@@ -37,23 +41,25 @@ def describe_grid(path) -> dict:
 
     stack = open_climate([path])
     sig = grid_signature(stack)
-    finite = np.isfinite(stack)
-    valid = valid_mask(stack)
-    area = cell_area_km2(stack)
-    mins = stack.min(dim=("y", "x"), skipna=True)
-    maxs = stack.max(dim=("y", "x"), skipna=True)
-    missing = 1.0 - finite.mean(dim=("y", "x"))
-    valid_area = area.where(valid).sum()
-    mins, maxs, missing, share_any, valid_area = dask.compute(
-        mins, maxs, missing, 1.0 - valid.mean(), valid_area)
+    n_cells = stack.sizes["y"] * stack.sizes["x"]
+    if raster_format(Path(path)) != "NetCDF" and n_cells > STREAM_CELLS:
+        mins, maxs, missing, share_any, valid_area = _stored_block_summary(path, stack)
+    else:
+        area = cell_area_km2(stack)
+        finite = np.isfinite(stack)
+        valid = valid_mask(stack)
+        lazy = (stack.min(dim=("y", "x"), skipna=True), stack.max(dim=("y", "x"), skipna=True),
+                1.0 - finite.mean(dim=("y", "x")), 1.0 - valid.mean(), area.where(valid).sum())
+        mins, maxs, missing, share_any, valid_area = (np.asarray(v.values, dtype=np.float64)
+                                                      for v in dask.compute(*lazy))
     units = stack["units"].values if "units" in stack.coords else [""] * stack.sizes["variable"]
     variables = []
     for i, name in enumerate(stack["variable"].values):
-        lo, hi = float(mins.values[i]), float(maxs.values[i])
+        lo, hi = float(mins[i]), float(maxs[i])
         variables.append({
             "name": str(name), "units": str(units[i]),
             "min": None if np.isnan(lo) else lo, "max": None if np.isnan(hi) else hi,
-            "nodata_share": float(missing.values[i]),
+            "nodata_share": float(missing[i]),
         })
     return {
         "path": str(path),
@@ -68,8 +74,69 @@ def describe_grid(path) -> dict:
     }
 
 
-def describe_model(path) -> dict:
-    """What a model file holds, from its manifest only (:func:`envelope.io.modelfile.model_summary`)."""
-    from envelope.io.modelfile import model_summary, read_manifest
+#: Above this many cells a GeoTIFF is summarised from the blocks the file stores (see
+#: :func:`envelope.io.blocks.stored_windows`), one block at a time: a sparse continental
+#: grid is then described from its block index and its few stored blocks.
+STREAM_CELLS = 2**26
 
-    return model_summary(read_manifest(path))
+
+def _stored_block_summary(path, stack):
+    """(mins, maxs, nodata share per variable, nodata share of any, valid area) from the
+    stored blocks only, one block in memory at a time; blocks the file does not store are
+    nodata (the file's nodata value) and add nothing but their cell count."""
+    import logging
+
+    from envelope.io.blocks import stored_windows
+
+    from envelope.io.rasters import open_climate
+
+    windows, n_blocks = stored_windows(path)
+    transform = stack.rio.transform(recalc=True)
+    if windows:
+        # chunks of exactly one file block, so a window read is one block, not a whole chunk
+        height, width = int(windows[0].height), int(windows[0].width)
+        stack = open_climate([path], chunks={"y": height, "x": width})
+    logging.getLogger(__name__).info("%s: %d of %d blocks hold data", path, len(windows), n_blocks)
+    n_var = stack.sizes["variable"]
+    mins, maxs = np.full(n_var, np.inf), np.full(n_var, -np.inf)
+    finite_count, valid_count, valid_area = np.zeros(n_var), 0, 0.0
+    for w in windows:
+        ys = slice(int(w.row_off), int(w.row_off + w.height))
+        xs = slice(int(w.col_off), int(w.col_off + w.width))
+        block = np.asarray(stack.data[:, ys, xs])
+        present = ~np.isnan(block)
+        mins = np.minimum(mins, np.where(present, block, np.inf).min(axis=(1, 2)))
+        maxs = np.maximum(maxs, np.where(present, block, -np.inf).max(axis=(1, 2)))
+        finite = np.isfinite(block)
+        finite_count += finite.sum(axis=(1, 2))
+        valid = finite.all(axis=0)
+        valid_count += int(valid.sum())
+        if valid.any():
+            valid_area += float(np.asarray(_window_areas(stack, ys, xs, transform))[valid].sum())
+    total = stack.sizes["y"] * stack.sizes["x"]
+    # a variable with no value at all has no range (None in the summary)
+    mins[np.isposinf(mins) & np.isneginf(maxs)] = np.nan
+    maxs[np.isnan(mins)] = np.nan
+    return mins, maxs, 1.0 - finite_count / total, 1.0 - valid_count / total, valid_area
+
+
+def _window_areas(stack, ys: slice, xs: slice, transform):
+    """True cell areas (km²) of one window, from its own coordinates (nothing else is computed)."""
+    import xarray as xr
+    from affine import Affine
+
+    from envelope.grids import cell_area_km2
+
+    ref = xr.DataArray(np.empty((ys.stop - ys.start, xs.stop - xs.start), np.float32), dims=("y", "x"),
+                       coords={"y": stack["y"].values[ys], "x": stack["x"].values[xs]})
+    ref = ref.rio.write_crs(stack.rio.crs).rio.write_transform(transform * Affine.translation(xs.start, ys.start))
+    return cell_area_km2(ref).values
+
+
+def describe_model(path) -> dict:
+    """What a model file holds (:func:`envelope.io.modelfile.model_summary`), after the same
+    checks as loading it for a projection (checksums, members, sizes, the skops allow-list),
+    so a file that ``project`` would refuse is refused here too."""
+    from envelope.io.modelfile import model_summary, open_model
+
+    return model_summary(open_model(path)[1])

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import contextlib
+import logging
 import os
 from pathlib import Path
 
@@ -13,16 +14,18 @@ from envelope.ensemble import (COUNT_NODATA, CONSENSUS_CATEGORIES, DEFAULT_AGREE
 from envelope.errors import InputError
 from envelope.grids import cell_area_km2, check_same_grid, match_variables
 from envelope import __version__
-from envelope.io.modelfile import load_model, read_manifest
+from envelope.io.modelfile import open_model
 from envelope.io.atomic import atomic_outputs, check_distinct, check_writable
 from envelope.io.rasters import open_climate, open_layer
 from envelope.io.tables import SUITABILITY_TABLE_NAME, group_scenarios, read_scenarios, write_suitability_table
 from envelope.io.writing import RasterOutput, write_rasters
-from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, binary_map, novel_area_sums, project_mess,
-                                 project_suitability, share_of, training_range)
+from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, binary_map, infinite_cells, novel_area_sums,
+                                 project_mess, project_suitability, share_of, training_range)
 from envelope.provenance import file_sha256
 
 PROJECT_CHUNKS = {"y": 512, "x": 1024}
+
+log = logging.getLogger(__name__)
 
 
 @contextlib.contextmanager
@@ -49,8 +52,8 @@ def scheduler_context(address=None):
 def load_projection_model(model_file):
     """``(estimator, metadata, method, sha256)`` of a model file (errors name the file)."""
 
-    estimator, metadata = load_model(model_file)
-    method = read_manifest(model_file)["method"]
+    estimator, manifest = open_model(model_file)
+    metadata, method = manifest["metadata"], manifest["method"]
     variables = [str(v["name"]) for v in metadata["variables"]]
     threshold = metadata.get("threshold") or {}
     if not isinstance(threshold, dict) or threshold.get("value") is None:
@@ -166,22 +169,31 @@ def write_projection(estimator, stack, variables, bounds, metadata, tags, paths,
     tags = dict(tags)
     threshold = float(tags["threshold"])
     suitability = project_suitability(estimator, stack, variables, bounds, clamp=bounds is not None)
-    outputs, also = [], ()
+    outputs, also = [], (infinite_cells(stack),)
     if "mess" in paths:
         mess_da = project_mess(stack, variables, metadata["mess_reference"])
         outputs.append(RasterOutput(mess_da, paths["mess"], tags={**tags, "most_dissimilar_variables": list(variables)},
                                     categories=dict(enumerate(variables))))
         mess_values = mess_da.sel(variable="mess")
-        also = novel_area_sums(mess_values, cell_area_km2(mess_values))
-    outputs.insert(0, RasterOutput(suitability, paths["out"],
-                                   tags=(lambda sums: {**tags, "novel_share": share_of(*sums)}) if also else tags))
+        also += novel_area_sums(mess_values, cell_area_km2(mess_values))
+
+    def suitability_tags(sums):
+        extra = {"infinite_climate_cells": int(sums[0])}
+        return {**tags, **extra, **({"novel_share": share_of(*sums[1:])} if len(sums) > 1 else {})}
+
+    outputs.insert(0, RasterOutput(suitability, paths["out"], tags=suitability_tags))
     if "binary" in paths:
         outputs.append(RasterOutput(binary_map(suitability, threshold, nodata=BINARY_NODATA), paths["binary"],
                                     tags={**tags, "nodata": BINARY_NODATA}, categories=BINARY_CATEGORIES,
                                     nodata=BINARY_NODATA))
     sums = write_rasters(outputs, overwrite=True, also=also, progress=progress)
-    return {"novel_share": share_of(*sums) if sums else None, "threshold": threshold, "method": tags["method"],
-            "n_cells": int(stack.sizes["y"] * stack.sizes["x"])}
+    n_infinite = int(sums[0])
+    if n_infinite:
+        log.warning("%s: %d cells hold +inf or -inf climate values; their suitability is nodata",
+                    tags["climate"][0] if len(tags["climate"]) == 1 else ", ".join(tags["climate"]), n_infinite)
+    return {"novel_share": share_of(*sums[1:]) if len(sums) > 1 else None, "threshold": threshold,
+            "method": tags["method"], "n_cells": int(stack.sizes["y"] * stack.sizes["x"]),
+            "n_infinite": n_infinite}
 
 
 

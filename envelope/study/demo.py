@@ -63,30 +63,49 @@ NICHE = {
 }
 
 
+#: Where a wheel carries the demo study inside the package (declared in setup.py).
+DEMO_PACKAGE_FOLDER = "demo_data"
+
+
+def _installed_demo() -> Path:
+    """``envelope/demo_data/demo`` of the installed package (a wheel carries it there)."""
+    from importlib.resources import files
+
+    return Path(str(files("envelope"))) / DEMO_PACKAGE_FOLDER / "demo"
+
+
 def demo_dir() -> Path:
     """Locate the bundled demo study.
 
     Returns
     -------
     pathlib.Path
-        The folder holding ``baseline.tif``, ``scenarios.csv``, ``presences.csv`` and the rest:
-        ``$ENVELOPE_DEMO_DIR`` if set, else ``sample_grids/demo`` of the source checkout.
+        The folder holding ``baseline.tif``, ``scenarios.csv``, ``presences.csv`` and the rest
+        (``study.toml`` is in its parent): ``$ENVELOPE_DEMO_DIR`` if set, else
+        ``sample_grids/demo`` of the source checkout, else the copy an installed wheel
+        carries in the package (``envelope/demo_data/demo``, found with
+        :mod:`importlib.resources`).
 
     Raises
     ------
     InputError
-        If the folder or its ``scenarios.csv`` is missing; the message says how to make it.
+        If no folder with a ``scenarios.csv`` is found; the message says how to make one.
     """
     override = os.environ.get(DEMO_DIR_ENV)
-    where = Path(override) if override else Path(__file__).resolve().parents[2] / "sample_grids" / "demo"
-    if not (where / "scenarios.csv").is_file():
-        source = f"${DEMO_DIR_ENV}" if override else "the source checkout"
-        raise InputError(
-            f"{where}: demo study not found (no scenarios.csv; looked in {source}); "
-            f"regenerate it with `python sample_grids/make_demo.py --out {where}` "
-            f"or set {DEMO_DIR_ENV} to a folder that holds it"
-        )
-    return where
+    if override:
+        candidates = [Path(override)]
+    else:
+        candidates = [Path(__file__).resolve().parents[2] / "sample_grids" / "demo", _installed_demo()]
+    for where in candidates:
+        if (where / "scenarios.csv").is_file():
+            return where
+    where = candidates[0]
+    source = f"${DEMO_DIR_ENV}" if override else "the source checkout or the installed package"
+    raise InputError(
+        f"{where}: demo study not found (no scenarios.csv; looked in {source}); "
+        f"regenerate it with `python sample_grids/make_demo.py --out {where}` "
+        f"or set {DEMO_DIR_ENV} to a folder that holds it"
+    )
 
 
 def _response(values, spec):

@@ -8,9 +8,11 @@ from pathlib import Path
 
 from envelope.errors import InputError
 
-__all__ = ["MANIFEST_NAME", "REACH_SET_FILES", "RunLayout", "reach_inputs_from_run", "study_dispersal", "study_start_options"]
+__all__ = ["LOCK_NAME", "MANIFEST_NAME", "REACH_SET_FILES", "RunLayout", "reach_inputs_from_run", "study_dispersal", "study_start_options"]
 
 MANIFEST_NAME = "manifest.json"
+#: The lock file a run holds in its folder (see envelope.study.runner.run_folder_lock).
+LOCK_NAME = ".envelope-run.lock"
 REACH_FILES = ("classes", "summary", "front", "arrival")
 #: Extra files of a pathway's reach run set (all climate models, methods, distances and replicates)
 REACH_SET_FILES = ("probability", "runs")
@@ -35,6 +37,7 @@ class RunLayout:
           reach/<pathway>_probability.tif    share of runs reaching each cell (+ _runs.csv, one row per run)
           uncertainty_partition.csv          variance shares of reachable gain and range change by source
           report.html
+          .envelope-run.lock                 held by the run writing into the folder
     """
 
     run_dir: Path
@@ -63,6 +66,11 @@ class RunLayout:
     @property
     def manifest(self) -> Path:
         return self.run_dir / MANIFEST_NAME
+
+    @property
+    def lock(self) -> Path:
+        """The lock file a run holds while it writes into the folder (one run per folder)."""
+        return self.run_dir / LOCK_NAME
 
     @property
     def scenario_table(self) -> Path:
@@ -125,6 +133,10 @@ class RunLayout:
     def change_map(self, scenario: str) -> Path:
         """The class raster ``range_change_batch`` writes for one scenario (always GeoTIFF)."""
         return self.change_dir / f"{scenario}.tif"
+
+    def change_summary(self, scenario: str) -> Path:
+        """The JSON summary ``range_change_batch`` writes beside each class raster."""
+        return self.change_dir / f"{scenario}.json"
 
     @property
     def reach_dir(self) -> Path:

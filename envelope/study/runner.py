@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import logging
@@ -18,8 +19,9 @@ class StepCache:
     """Content-hash cache of finished steps, kept in ``RUN_DIR/manifest.json``.
 
     A step's key is the SHA-256 of its settings (JSON) and of the bytes of every input file.
-    A step whose key matches the manifest and whose outputs all exist is skipped, so an
-    interrupted run resumes where it stopped. Outputs are written atomically by the steps
+    A step whose key matches the manifest and whose outputs all exist with the SHA-256 the
+    manifest recorded for them is skipped, so an interrupted run resumes where it stopped
+    and a deleted or altered output is rebuilt. Outputs are written atomically by the steps
     themselves, so a crash never leaves a half-written file behind.
     """
 
@@ -55,23 +57,46 @@ class StepCache:
             h.update(self._file_hash(p).encode())
         return h.hexdigest()
 
+    def _name(self, output: Path) -> str:
+        return str(output.relative_to(self.run_dir)) if output.is_relative_to(self.run_dir) else str(output)
+
+    def _intact(self, done: dict, outputs: list[Path]) -> bool:
+        """True when every output exists with the checksum recorded when the step ran.
+
+        Manifests written before checksums were recorded (a list of names) count as not
+        intact, so such steps run once more and record them.
+        """
+        recorded = done.get("outputs")
+        if not isinstance(recorded, dict) or set(recorded) != {self._name(o) for o in outputs}:
+            return False
+        for o in outputs:
+            if not o.is_file():
+                log.info("%s is missing; its step runs again", o)
+                return False
+            if self._file_hash(o) != recorded[self._name(o)]:
+                log.info("%s differs from the file this run wrote; its step runs again", o)
+                return False
+        return True
+
     def run(self, name: str, settings: dict, inputs, outputs, fn):
         """Run ``fn()`` unless step ``name`` is up to date; returns True when it ran."""
         outputs = [Path(o) for o in outputs]
         key = self.key(settings, inputs)
         done = self.manifest["steps"].get(name)
-        if done and done.get("key") == key and all(o.exists() for o in outputs):
+        if done and done.get("key") == key and self._intact(done, outputs):
             self.skipped.append(name)
             return False
         start = time.perf_counter()
         fn()
+        self._hashes = {k: v for k, v in self._hashes.items() if Path(k) not in outputs}
+        missing = [o for o in outputs if not o.is_file()]
+        if missing:
+            raise InputError(f"step {name}: did not write {missing[0]}; expected every output of the step")
         self.manifest["steps"][name] = {
             "key": key, "seconds": round(time.perf_counter() - start, 3),
             "inputs": {str(i): self._file_hash(i) for i in inputs},
-            "outputs": [str(o.relative_to(self.run_dir)) if o.is_relative_to(self.run_dir) else str(o)
-                        for o in outputs],
+            "outputs": {self._name(o): self._file_hash(o) for o in outputs},
         }
-        self._hashes = {k: v for k, v in self._hashes.items() if Path(k) not in outputs}
         self.save()
         self.ran.append(name)
         return True
@@ -113,14 +138,66 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     into medians, 5-95 % intervals and a probability of reach, plus a counterfactual with the
     climate held at today's; the uncertainty partition; figures; the HTML report. Every file name comes from :class:`RunLayout`. Returns a
     dict of key results and paths.
+
+    Before any work: the run folder must not be (or contain) a folder of the inputs, and
+    every grid must fit the baseline (:mod:`envelope.study.preflight`); then the run
+    holds the folder's lock, so a second run into the same folder is refused.
     """
+    from envelope.study.preflight import check_run_folder, check_study_grids
+
+    layout = RunLayout.of(study, run_dir)
+    run_dir = layout.run_dir
+    check_run_folder(study, run_dir)
+    check_study_grids(study)
+    if run_dir.exists() and not run_dir.is_dir():
+        raise InputError(f"--out {run_dir}: exists and is not a folder")
+    run_dir.mkdir(parents=True, exist_ok=True)
+    with run_folder_lock(layout):
+        return _run_locked(study, layout, progress)
+
+
+def remove_failed_run_folder(run_dir) -> bool:
+    """After a run that created ``run_dir`` failed before its first result: remove its lock file
+    and the folder, if nothing else is in it (a full disk, say, must not leave an empty folder)."""
+    from envelope.io.atomic import remove_empty_folder
+    from envelope.study.layout import LOCK_NAME
+
+    lock = Path(run_dir) / LOCK_NAME
+    others = [p for p in Path(run_dir).rglob("*") if p.is_file() and p != lock] if Path(run_dir).is_dir() else []
+    if others:
+        return False
+    with contextlib.suppress(OSError):
+        lock.unlink()
+    return remove_empty_folder(run_dir)
+
+
+@contextlib.contextmanager
+def run_folder_lock(layout: RunLayout):
+    """Hold the run folder's lock for the whole run; InputError when another run holds it.
+
+    The lock is an OS file lock (``filelock``), released by the system when the process
+    ends, however it ends, so a run killed hard never leaves the folder locked.
+    """
+    from filelock import FileLock, Timeout
+
+    lock = FileLock(layout.lock, timeout=0)
+    try:
+        lock.acquire()
+    except Timeout:
+        raise InputError(f"--out {layout.run_dir}: another `envelope run` is writing into this run folder "
+                         f"(it holds {layout.lock.name}); wait for it to finish, or give another --out") from None
+    try:
+        yield
+    finally:
+        lock.release()
+
+
+def _run_locked(study, layout: RunLayout, progress) -> dict:
     from envelope.io.rasters import open_climate, open_layer
     from envelope.io.tables import read_scenarios
     from envelope.pipelines.fit import fit_model, fit_options_from_study, write_fit_outputs
 
-    layout = RunLayout.of(study, run_dir)
     run_dir = layout.run_dir
-    run_dir.mkdir(parents=True, exist_ok=True)
     settings = study.to_dict()
     cache = StepCache(run_dir, settings)
     say = progress or (lambda stage: None)
@@ -152,7 +229,7 @@ def run_study(study, run_dir, *, progress=None) -> dict:
 
         cache.run(f"fit:{m}", {"records": settings["records"], "model": settings["model"], "method": m,
                                "climate": settings["climate"], "region": settings.get("region")}, fit_inputs,
-                  [model_path, summary_path], do_fit)
+                  [model_path, summary_path, layout.fit_folds(m)], do_fit)
     fit_summary = json.loads(layout.fit_summary().read_text())
     results["fit"] = fit_summary
     threshold = fit_summary["threshold"]["value"]
@@ -178,10 +255,13 @@ def run_study(study, run_dir, *, progress=None) -> dict:
         project_scenarios(model, table, layout.projections_dir, mess=study.outputs.mess,
                           agreement=study.scenario_set.agreement, overwrite=True, suffix=layout.ext, region=clip)
 
+    batch = layout.projections(study.scenarios, mess=study.outputs.mess)
+    batch_files = ([suit_table] + list(batch["suitability"].values()) + list(batch["mess"].values())
+                   + list(batch["ensemble"].values()))
     cache.run("project:scenarios", {"mess": study.outputs.mess, "agreement": study.scenario_set.agreement,
                                     "format": layout.ext, **({"region": str(clip)} if clip else {})},
               [model, table] + [Path(p) for s in study.scenarios for p in s.climate] + ([clip] if clip else []),
-              [suit_table], do_scen)
+              batch_files, do_scen)
     suitability = read_scenarios(suit_table, what="suitability raster")
     _project_more_methods(study, layout, cache, baseline, table, say)
 
@@ -194,7 +274,9 @@ def run_study(study, run_dir, *, progress=None) -> dict:
             layout.change_dir.mkdir(exist_ok=True)
             range_change_batch(now_path, suit_table, layout.change_dir, layout.change_table, overwrite=True)
 
-        cache.run("change", {"edge_percentile": 95.0}, [now_path, suit_table], [layout.change_table], do_change)
+        change_files = [layout.change_table] + [f for sc in suitability
+                                                 for f in (layout.change_map(sc.name), layout.change_summary(sc.name))]
+        cache.run("change", {"edge_percentile": 95.0}, [now_path, suit_table], change_files, do_change)
         results["change_table"] = str(layout.change_table)
 
     # 4. reach per pathway through the ensemble-mean suitability ------------------------

@@ -89,3 +89,38 @@ def test_text_shows_feature_classes_and_their_cv_scores(tmp_path):
     # a point-process file without the record (written before it existed) says so
     old = save_model(tmp_path / "old.envm", model, META)
     assert "Features     not recorded" in CliRunner().invoke(cli, ["inspect", str(old)]).output
+
+
+class Foreign:
+    """A class skops does not know: stands for any foreign object in a payload."""
+
+    def __init__(self):
+        self.values = [1, 2]
+
+
+def test_inspect_refuses_what_project_refuses(tmp_path):
+    # Source: skops.io trust model (get_untrusted_types): a payload with a foreign type is
+    # refused by loading, so inspect refuses it too, even with every checksum recomputed
+    import hashlib
+    import zipfile
+
+    import skops.io as sio
+
+    from envelope.io.modelfile import DIGEST_NAME, MANIFEST_NAME, PAYLOAD_NAME, members_digest
+
+    path = _model(tmp_path)
+    with zipfile.ZipFile(path) as zf:
+        manifest = json.loads(zf.read(MANIFEST_NAME))
+    blob = sio.dumps(Foreign())
+    assert sio.get_untrusted_types(data=blob)
+    manifest["payload"]["sha256"] = hashlib.sha256(blob).hexdigest()
+    members = {MANIFEST_NAME: json.dumps(manifest).encode(), PAYLOAD_NAME: blob}
+    with zipfile.ZipFile(tmp_path / "u.envm", "w") as zf:
+        for name, data in members.items():
+            zf.writestr(name, data)
+        zf.writestr(DIGEST_NAME, f"sha256 {members_digest(members)}\n")
+    for args in (["inspect", str(tmp_path / "u.envm")],
+                 ["project", str(tmp_path / "u.envm"), "--climate", str(path), "--out", str(tmp_path / "s.tif")]):
+        result = CliRunner().invoke(cli, args)
+        assert result.exit_code == 2, result.output
+        assert "u.envm: refusing to load untrusted type" in result.output

@@ -108,3 +108,46 @@ def test_remove_empty_folder_only_when_empty(tmp_path):
     (tmp_path / "c" / "d").mkdir(parents=True)
     (tmp_path / "c" / "d" / "kept.txt").write_text("x")
     assert not remove_empty_folder(tmp_path / "c") and (tmp_path / "c" / "d" / "kept.txt").exists()
+
+
+def _killed_writer(target, stage=False):
+    """A child process that starts an atomic write of ``target`` and is killed (SIGKILL) mid-way."""
+    import subprocess
+    import sys
+
+    code = ("import os, signal, sys; from pathlib import Path; from envelope.io.atomic import atomic_output\n"
+            f"with atomic_output({str(target)!r}, overwrite=True) as tmp:\n"
+            "    tmp.write_bytes(b'half' * 1000)\n"
+            + ("    Path(str(tmp) + '.stage.tif').write_bytes(b'stage')\n" if stage else "")
+            + "    os.kill(os.getpid(), signal.SIGKILL)\n")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True)
+    assert proc.returncode < 0  # the premise: it was killed, not finished
+
+
+def test_next_writer_removes_temporaries_of_a_killed_one(tmp_path):
+    # Common practice, no source: a SIGKILL cannot run clean-up code, so the next writer of
+    # the same path finds the dead writer's temporary files by name and removes them
+    target = tmp_path / "suit.tif"
+    _killed_writer(target, stage=True)
+    left = sorted(p.name for p in tmp_path.iterdir())
+    assert len(left) == 2 and all(n.startswith(".suit.tif.") and ".part" in n for n in left)
+    other = tmp_path / "suit.tif.json"  # a different output whose name starts alike is not touched
+    _killed_writer(other)
+    with atomic_output(target) as tmp:
+        tmp.write_text("done")
+    names = sorted(p.name for p in tmp_path.iterdir())
+    assert "suit.tif" in names and not any(n.startswith(".suit.tif.") and "json" not in n for n in names)
+    assert any(n.startswith(".suit.tif.json.") for n in names)
+
+
+def test_live_writers_temporaries_are_kept(tmp_path):
+    # Common practice, no source: a temporary file of a process that still runs (this one)
+    # belongs to a write in progress
+    import os
+
+    from envelope.io.atomic import remove_stale_temporaries
+
+    target = tmp_path / "a.tif"
+    mine = tmp_path / f".a.tif.{os.getpid()}-abc123.part.tif"
+    mine.write_bytes(b"x")
+    assert remove_stale_temporaries(target) == [] and mine.exists()

@@ -10,7 +10,8 @@ import pytest
 import skops.io as sio
 
 from envelope.errors import InputError, ModelError, OutputExistsError
-from envelope.io.modelfile import MANIFEST_NAME, PAYLOAD_NAME, load_model, read_manifest, save_model
+from envelope.io.modelfile import (DIGEST_NAME, MANIFEST_NAME, MAX_MEMBER_BYTES, PAYLOAD_NAME, load_model,
+                                   members_digest, read_manifest, save_model)
 from envelope.models import (BoostedTrees, DownsampledForest, PercentileEnvelope,
                              PointProcessModel, SkillWeightedEnsemble)
 
@@ -43,7 +44,7 @@ def test_round_trip_identical_predictions(tmp_path, estimator):
     np.testing.assert_array_equal(loaded.predict_proba(X), estimator.predict_proba(X))
     assert meta == META
     manifest = read_manifest(path)
-    assert manifest["format"] == "envelope-model" and manifest["format_version"] == 1
+    assert manifest["format"] == "envelope-model" and manifest["format_version"] == 2
 
 
 def test_refuses_overwrite_and_bad_metadata(tmp_path):
@@ -59,13 +60,19 @@ def test_refuses_overwrite_and_bad_metadata(tmp_path):
     assert not (tmp_path / "x.envm").exists()
 
 
-def _rewrite(path, out, manifest=None, payload=None):
+def _rewrite(path, out, manifest=None, payload=None, digest=True):
+    """Copy a model file with a new manifest or payload; ``digest`` recomputes the file's
+    digest as a careful forger would, so the checks behind it are what the test meets."""
     with zipfile.ZipFile(path) as zf:
         man = json.loads(zf.read(MANIFEST_NAME))
         pay = zf.read(PAYLOAD_NAME)
+        old_digest = zf.read(DIGEST_NAME)
+    members = {MANIFEST_NAME: json.dumps(manifest if manifest is not None else man).encode(),
+               PAYLOAD_NAME: payload if payload is not None else pay}
     with zipfile.ZipFile(out, "w") as zf:
-        zf.writestr(MANIFEST_NAME, json.dumps(manifest if manifest is not None else man))
-        zf.writestr(PAYLOAD_NAME, payload if payload is not None else pay)
+        for name, data in members.items():
+            zf.writestr(name, data)
+        zf.writestr(DIGEST_NAME, f"sha256 {members_digest(members)}\n" if digest else old_digest)
     return man, pay
 
 
@@ -200,3 +207,72 @@ def test_feature_classes_travel_in_the_manifest(tmp_path):
     assert fc["rule"] == "one-standard-error" and fc["chosen"] == list(model.expander_.classes_used_)
     assert [s["classes"] for s in fc["scores"]] == [["linear", "quadratic"], ["linear", "quadratic", "hinge"],
                                                     ["linear", "quadratic", "product", "hinge"]]
+
+
+# --------------------------------------------------------------------------- one digest over every member
+
+
+def test_edited_manifest_refused(saved, tmp_path):
+    # Common practice, no source: a SHA-256 over every member detects an edit of any of them
+    man, _ = _rewrite(saved, tmp_path / "copy.envm")
+    man["metadata"]["threshold"]["value"] = 0.01
+    _rewrite(saved, tmp_path / "edited.envm", manifest=man, digest=False)
+    for reader in (read_manifest, load_model):
+        with pytest.raises(ModelError, match="edited.envm: checksum does not match the file's contents"):
+            reader(tmp_path / "edited.envm")
+    # the digest itself is checked against hashlib's SHA-256 of the members as documented
+    with zipfile.ZipFile(saved) as zf:
+        members = {n: zf.read(n) for n in (MANIFEST_NAME, PAYLOAD_NAME)}
+        stated = zf.read(DIGEST_NAME).decode().split()
+    h = hashlib.sha256()  # Source: hashlib, over name, NUL, 8-byte length, bytes, in name order
+    for name in sorted(members):
+        h.update(name.encode() + b"\0" + len(members[name]).to_bytes(8, "big") + members[name])
+    assert stated == ["sha256", h.hexdigest()]
+
+
+def test_duplicate_member_refused(saved, tmp_path):
+    # Common practice, no source: zip allows two members of one name; readers differ on which wins
+    with zipfile.ZipFile(saved) as zf:
+        members = [(i.filename, zf.read(i)) for i in zf.infolist()]
+    with pytest.warns(UserWarning, match="Duplicate name"):
+        with zipfile.ZipFile(tmp_path / "dup.envm", "w") as zf:
+            for name, data in members:
+                zf.writestr(name, data)
+            zf.writestr(MANIFEST_NAME, members[0][1])
+    with pytest.raises(ModelError, match="dup.envm: member 'manifest.json' appears twice"):
+        load_model(tmp_path / "dup.envm")
+
+
+def test_oversized_member_refused_before_reading(saved, tmp_path, monkeypatch):
+    # Common practice, no source: a small compressed member that expands past the limit is
+    # refused from the zip directory, before it is decompressed
+    limit = MAX_MEMBER_BYTES[MANIFEST_NAME]
+    with zipfile.ZipFile(tmp_path / "bomb.envm", "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        zf.writestr(MANIFEST_NAME, b" " * (limit + 1))
+        zf.writestr(PAYLOAD_NAME, b"x")
+    assert (tmp_path / "bomb.envm").stat().st_size < limit // 100  # the premise: it compresses well
+    opened = []
+    monkeypatch.setattr(zipfile.ZipFile, "open", lambda self, *a, **k: opened.append(a) or (_ for _ in ()).throw(
+        AssertionError("a member was opened")))
+    with pytest.raises(ModelError, match="bomb.envm: member manifest.json would expand to"):
+        load_model(tmp_path / "bomb.envm")
+    assert not opened
+
+
+def test_unexpected_member_refused(saved, tmp_path):
+    # Common practice, no source
+    with zipfile.ZipFile(saved) as zf:
+        members = [(i.filename, zf.read(i)) for i in zf.infolist()]
+    with zipfile.ZipFile(tmp_path / "extra.envm", "w") as zf:
+        for name, data in members + [("notes.txt", b"hi")]:
+            zf.writestr(name, data)
+    with pytest.raises(ModelError, match="extra.envm: unexpected member 'notes.txt'"):
+        read_manifest(tmp_path / "extra.envm")
+
+
+def test_format_1_file_still_loads_with_a_warning(caplog):
+    # Common practice, no source: files of the previous format stay usable, checked the old way
+    with caplog.at_level("WARNING", logger="envelope.io.modelfile"):
+        model, _ = load_model(OLD_FILE)
+    assert "model file format 1" in caplog.text and "not its manifest" in caplog.text
+    assert read_manifest(OLD_FILE)["format_version"] == 1

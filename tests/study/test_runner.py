@@ -271,3 +271,127 @@ def test_reach_runs_every_method_and_distance_and_partitions_them(tmp_path):
     assert "method" in set(part["source"])
     for _, g in part.groupby("quantity"):
         assert g["share"].sum() == pytest.approx(1.0, abs=1e-5)
+
+
+# --------------------------------------------------------------------------- run folders
+
+
+def test_second_concurrent_run_is_refused_and_touches_nothing(full_run, tmp_path):
+    # Common practice, no source: an OS file lock held by one process (here a child that
+    # holds the run folder's lock, as a running `envelope run` does) refuses a second one
+    from envelope.study.layout import RunLayout
+
+    study_path, _, _ = full_run
+    run_dir = tmp_path / "busy"
+    run_dir.mkdir()
+    stray = run_dir / ".now_suitability.tif.abc123.part.tif"  # the first run's temporary file
+    stray.write_bytes(b"partial")
+    lock = RunLayout.of(load_study(study_path), run_dir).lock
+    holder = subprocess.Popen([sys.executable, "-c", "import sys, time; from filelock import FileLock; "
+                               f"held = FileLock({str(lock)!r}); held.acquire(); print('held', flush=True); time.sleep(60)"],
+                              stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(run_dir)])
+    finally:
+        holder.kill()
+        holder.wait()
+    assert result.exit_code == 2
+    assert "another `envelope run` is writing into this run folder" in result.output
+    assert len(result.output.strip().splitlines()) == 1
+    assert stray.exists()  # the running run's temporary files are left alone
+    assert not (run_dir / "manifest.json").exists()
+
+
+def test_deleted_or_altered_outputs_are_rebuilt(full_run, tmp_path):
+    # Common practice, no source: a cached step is skipped only when its outputs match the
+    # SHA-256 recorded in the manifest; otherwise it runs again and restores them
+    # (in the shared run folder itself: step keys hold the run folder's paths, so a copy
+    # of the folder would rebuild everything; a working cache restores it as it was)
+    study_path, copy, _ = full_run
+    expected = digests(copy)
+    (copy / "projection" / "scenarios" / "low_2050_suitability.tif").unlink()
+    (copy / "change" / "high_2080.json").write_text("{}")
+    result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(copy)])
+    assert result.exit_code == 0, result.output
+    last = json.loads((copy / "manifest.json").read_text())["last_run"]
+    assert {"project:scenarios", "change"} <= set(last["ran"])
+    assert "fit:pointprocess" in last["skipped"] and "project:now" in last["skipped"]
+    assert digests(copy) == expected
+
+
+def test_out_in_the_input_folder_is_refused(tmp_path):
+    # Common practice, no source: a run cleans and replaces files in its folder, so it must
+    # not share one with its inputs (the study file's folder here, or a folder around it)
+    folder = tmp_path / "inputs"
+    folder.mkdir()
+    study_path = small_study(folder)
+    for out in (folder, tmp_path):
+        result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(out)])
+        assert result.exit_code == 2, result.output
+        assert "a run folder must not hold the study's inputs" in result.output
+        assert "study file" in result.output
+    assert sorted(p.name for p in tmp_path.rglob("*")) == ["inputs", "study.toml"]
+
+
+def test_grids_are_checked_before_any_work(tmp_path):
+    # Common practice, no source: a bias layer off the baseline grid, or a scenario without
+    # a variable the model uses, is refused before the run folder exists, naming key and file
+    import numpy as np
+
+    from envelope.io.rasters import open_climate, open_layer
+    from envelope.io.writing import write_raster
+
+    folder = tmp_path / "inputs"
+    folder.mkdir()
+    effort = open_layer(DEMO / "effort.tif")
+    write_raster(effort.isel(y=slice(0, -1)), folder / "effort_cut.tif")
+    scen = open_climate(DEMO / "scenarios" / "low_model-a_2050.tif")
+    write_raster(scen.sel(variable=["bio5", "bio6", "gdd5"]), folder / "no_bio12.tif")
+    base = small_study(folder).read_text()
+    cases = {
+        "bias": (base.replace("[model]\n", f'[model]\nbias = "{folder / "effort_cut.tif"}"\n'),
+                 ["model.bias", "effort_cut.tif", "shape"]),
+        "scenario": (base.replace(str(DEMO / "scenarios" / "high_model-a_2080.tif"), str(folder / "no_bio12.tif")),
+                     ["scenarios.grid[4]", "no_bio12.tif", "'bio12'"]),
+        "variables": (base.replace('"gdd5"]', '"gdd5", "bio99"]'), ["climate.variables", "'bio99'"]),
+    }
+    for name, (text, phrases) in cases.items():
+        study_path = folder / f"{name}.toml"
+        study_path.write_text(text)
+        out = tmp_path / f"run_{name}"
+        result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(out)])
+        assert result.exit_code == 2, (name, result.output)
+        for phrase in phrases:
+            assert phrase in result.output, (name, phrase, result.output)
+        assert not out.exists(), name
+    assert np.isfinite(effort.values).any()  # the premise: the uncut layer is a real grid
+
+
+def test_runs_killed_at_random_moments_resume_to_the_clean_result(full_run, tmp_path):
+    # Common practice, no source: every output is written atomically and every step is
+    # cached by content, so a run killed (SIGKILL) at any moment and run again ends with
+    # exactly the outputs of an uninterrupted run. The moments are drawn from a seeded
+    # generator, so a failure can be replayed.
+    import numpy as np
+
+    study_path, run_dir, _ = full_run
+    resumed = tmp_path / "killed"
+    cmd = [sys.executable, "-m", "envelope.cli.main", "run", str(study_path), "--out", str(resumed)]
+    rng = np.random.default_rng(19)
+    # seconds after start, ascending so that each resumed run gets further (an uninterrupted
+    # run of this study takes about 15-20 s here: start-up and fit, then projection, change, reach)
+    moments = np.sort(rng.uniform(5.0, 15.0, size=3))
+    for delay in moments:
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        try:
+            proc.wait(timeout=delay)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+        # a hard kill leaves at most hidden temporary files, never a visible partial result
+        assert all(p.name.startswith(".") for p in resumed.rglob("*.part*"))
+    result = CliRunner().invoke(cli, ["run", str(study_path), "--out", str(resumed)])
+    assert result.exit_code == 0, result.output
+    assert not list(resumed.rglob("*.part*"))
+    assert digests(resumed) == digests(run_dir)
