@@ -11,6 +11,7 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from envelope.errors import InputError
+from envelope.grids import continuous_longitudes
 
 __all__ = ["gridded_variables", "open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "MONTH_VARIABLES",
            "kind_of_units"]
@@ -212,12 +213,14 @@ def _open_netcdf(path, chunks, name, variable):
 
 
 def _normalise(da):
-    """North-up rows and -180..180 longitudes, the project-wide grid conventions."""
+    """North-up rows and continuous west-to-east longitudes, the project-wide grid conventions."""
     crs = da.rio.crs
     if da.sizes["y"] > 1 and float(da["y"][0]) < float(da["y"][-1]):
         da = da.isel(y=slice(None, None, -1))
-    if crs is not None and crs.is_geographic and float(da["x"].max()) > 180.0:
-        da = da.assign_coords(x=((da["x"].values + 180.0) % 360.0) - 180.0).sortby("x")
+    if crs is not None and crs.is_geographic and da.sizes["x"] > 1:
+        da = continuous_longitudes(da)   # 0-360 or split at 180 deg: one west-to-east run
+    elif da.sizes["x"] > 1 and float(da["x"][0]) > float(da["x"][-1]):
+        da = da.isel(x=slice(None, None, -1))
     return da.rio.write_crs(crs)
 
 

@@ -186,17 +186,10 @@ def _window_chunks(chunks, reader, block_shape) -> tuple:
 
 
 def _normalised(da: xr.DataArray, crs, path) -> xr.DataArray:
-    """Clean (variable, y, x) array: north-up, -180..180 longitudes, CRS attached, no extra coords."""
-    geographic = bool(crs.is_geographic)
+    """Clean (variable, y, x) array: north-up, continuous longitudes (-180..180 unless over 180°), CRS attached."""
     x = np.asarray(da["x"].values, dtype=np.float64)
-    if geographic and x.size and np.nanmax(x) > 180.0:
-        # 0-360 longitudes -> -180..180, then columns sorted west to east
-        x = np.where(x > 180.0, x - 360.0, x)
-        da = da.assign_coords(x=x).sortby("x")
-        step = np.diff(da["x"].values)
-        if step.size > 1 and not np.allclose(step, step[0], rtol=1e-5, atol=0):
-            raise InputError(f"{path}: 0–360 longitudes of a grid that spans the 180° meridian cannot be "
-                             f"normalised to -180..180 (expected a global grid, or one on one side of 180°)")
+    if crs.is_geographic and x.size > 1:
+        da = _continuous_columns(da)
     elif x.size > 1 and x[1] < x[0]:
         da = da.isel(x=slice(None, None, -1))
     y = np.asarray(da["y"].values)
@@ -209,6 +202,17 @@ def _normalised(da: xr.DataArray, crs, path) -> xr.DataArray:
                          name="climate")
     _check_regular(clean, path)
     return clean.rio.write_crs(crs)
+
+
+def _continuous_columns(da: xr.DataArray) -> xr.DataArray:
+    """Longitude columns west to east in one run: 0–360 and split −180/180 axes made continuous.
+
+    A grid over the 180° meridian keeps longitudes beyond 180 (170…190); see
+    :func:`envelope.grids.continuous_longitudes`.
+    """
+    from envelope.grids import continuous_longitudes
+
+    return continuous_longitudes(da)
 
 
 def _check_regular(da: xr.DataArray, path) -> None:
