@@ -76,7 +76,7 @@ def expand_paths(values, *, option: str = "input") -> list[Path]:
         if glob.has_magic(text):
             found = sorted(glob.glob(text))
             if not found:
-                raise InputError(f"{option} {text!r}: the pattern matches no file")
+                raise InputError(f"{text!r}: the pattern matches no file ({option})")
             paths = [Path(f) for f in found]
         else:
             paths = [Path(text)]
@@ -299,8 +299,10 @@ def open_monthly_series(paths, *, name: str, units: str | None = None, variable:
     """
     files = expand_paths(paths, option=name)
     role = role or name
-    if len(files) == 1 and period is None and _is_climatology(files[0], role, variable, hint):
-        return open_monthly(files[0], name=name, units=units, variable=variable, chunks=chunks)
+    if len(files) == 1 and period is None:
+        twelve, picked = _twelve_months(files[0], role, variable, hint)
+        if twelve:
+            return open_monthly(files[0], name=name, units=units, variable=picked, chunks=chunks)
     where = str(files[0]) if len(files) == 1 else f"{files[0]} (+{len(files) - 1} files)"
     var_name, calendar, unit = _check_files(files, role, variable, hint)
     with _header(files[0]) as ds:
@@ -372,18 +374,17 @@ def _series_crs(ds, var_name, xdim, ydim, where):
     raise InputError(f"{where}: projected x/y but no grid mapping; expected a CF grid_mapping")
 
 
-def _is_climatology(path: Path, role, variable, hint) -> bool:
-    """True for a file :func:`open_monthly` reads (GeoTIFF, 12 months, M01..M12); False for a longer series."""
+def _twelve_months(path: Path, role, variable, hint):
+    """(True, variable) for a file :func:`open_monthly` reads (GeoTIFF, 12 months, M01..M12); (False, None) for a series."""
     if path.suffix.lower() not in (".nc", ".nc4", ".netcdf", ".cdf"):
-        return True
+        return True, variable
     with _header(path) as ds:
-        gridded = _gridded(ds)
-        if not gridded:
-            return True
+        if not _gridded(ds):
+            return True, variable
         try:
             name = series_variable(ds, path, role=role, requested=variable, hint=hint)
         except InputError:
-            return True   # let open_monthly name the problem as it always has
+            return True, variable   # let open_monthly name the problem as it always has
         var = ds[name]
         tdim = next((d for d in var.dims if str(d).lower() == "time"), None)
-        return tdim is None or var.sizes[tdim] == 12
+        return (tdim is None or var.sizes[tdim] == 12), name
