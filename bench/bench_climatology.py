@@ -3,7 +3,8 @@
 Run:  .venv/bin/python bench/bench_climatology.py [--size 1000] [--years 30] [--repeats 1] [--keep DIR]
 
 The data are fictional: three variables (tasmin, tasmax in K, pr in kg m-2 s-1) of a
-``--years`` monthly series on a ``--size`` x ``--size`` geographic grid with 0-360 longitudes,
+``--years`` monthly series on a ``--size`` x ``--size`` geographic grid with 0-360 longitudes
+(165..195 E, 30..45 N: open North Pacific across the 180° meridian),
 noleap calendar, each variable split into one file per decade (as climate-model archives
 deliver them), written uncompressed to a temporary folder (``--keep`` keeps them there).
 Values are smooth random fields (``numpy.random.default_rng(0)``) plus a seasonal cycle.
@@ -54,8 +55,8 @@ def write_series(folder: Path, size: int, years: int) -> dict:
 
     rng = np.random.default_rng(0)
     field = rng.normal(size=(size, size)).astype(np.float32)
-    lat = np.linspace(60.0, 40.0, size)
-    lon = np.linspace(150.0, 210.0, size)   # 0-360 longitudes over the 180 deg meridian
+    lat = np.linspace(45.0, 30.0, size)
+    lon = np.linspace(165.0, 195.0, size)   # 0-360 longitudes over the 180 deg meridian, open North Pacific
     files = {v: [] for v in VARIABLES}
     for start in range(FIRST_YEAR, FIRST_YEAR + years, 10):
         stop = min(start + 10, FIRST_YEAR + years)
