@@ -352,3 +352,40 @@ def test_virtual_species_on_an_island_over_180_is_recovered_as_on_another_island
     assert auc_control > 0.9
     # Common practice, no source: the same island and records shifted by 330 deg score alike (within 0.01 AUC)
     assert auc_seam == pytest.approx(auc_control, abs=0.01)
+
+
+# ------------------------------------------------------------------ delta method and aligned layers
+
+
+@pytest.mark.parametrize("model_lon", [
+    np.arange(160.0, 201.0, 2.0),                                          # regional, 0-360, over 180
+    np.concatenate([np.arange(160.0, 180.0, 2.0), np.arange(-180.0, -159.0, 2.0)]),   # split at 180
+])
+def test_delta_change_interpolated_across_the_seam(model_lon):
+    from envelope.delta import delta
+
+    def monthly(values, x, y):
+        return xr.DataArray(np.broadcast_to(values, (12,) + values.shape).astype("float32"), dims=("month", "y", "x"),
+                            coords={"month": np.arange(1, 13), "y": y, "x": x}).rio.write_crs("EPSG:4326")
+
+    lat = np.arange(42.0, 31.0, -2.0)
+    cont = np.where(model_lon < 0, model_lon + 360.0, model_lon)          # continuous 160 … 200
+    hist = monthly(np.zeros((lat.size, model_lon.size)), model_lon, lat)
+    fut = monthly(np.tile(cont - 160.0, (lat.size, 1)), model_lon, lat)  # a change linear in longitude
+    base = _layer(np.zeros((NY, NX)), 170.0)
+    baseline = monthly(base.values, base["x"].values, base["y"].values)
+    out = delta(baseline, hist, fut, method="additive").values
+    # Analytic: bilinear interpolation reproduces a field linear in longitude exactly -> change = x - 160
+    np.testing.assert_allclose(out[0], np.tile(base["x"].values - 160.0, (NY, 1)), atol=1e-4)
+
+
+def test_align_to_a_grid_over_180_from_a_global_layer():
+    from envelope.grids import align_to
+
+    lon = -180.0 + 0.1 * (np.arange(3600) + 0.5)
+    lat = LAT_TOP - 0.1 * (np.arange(60) + 0.5)
+    src = xr.DataArray(np.tile(np.where(lon < 0, lon + 360.0, lon), (60, 1)).astype("float32"), dims=("y", "x"),
+                       coords={"y": lat, "x": lon}).rio.write_crs("EPSG:4326")
+    out = align_to(src, _layer(np.zeros((NY, NX)), 170.0), resampling="average")
+    # Source: GDAL warp (rioxarray reproject_match) -- the mean of 0-360 longitudes over each 1-degree cell
+    np.testing.assert_allclose(out.values[0], 170.5 + np.arange(NX), atol=1e-3)

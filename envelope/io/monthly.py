@@ -250,7 +250,7 @@ def open_monthly(path, *, name: str, variable: str | None = None, units: str | N
     Returns
     -------
     DataArray (month, y, x), float32, NaN nodata, CRS attached, north-up, longitudes in
-    -180..180; coordinate ``month`` = 1..12; ``attrs["units"]`` ("" if unknown) and
+    -180..180 (continuous beyond 180 for a grid over the 180° meridian); coordinate ``month`` = 1..12; ``attrs["units"]`` ("" if unknown) and
     ``attrs["source"]`` (the file).
 
     Raises

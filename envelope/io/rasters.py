@@ -369,8 +369,9 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
     Returns
     -------
     DataArray (variable, y, x)
-        float32, NaN nodata, north-up (y descending), longitudes -180..180, CRS attached,
-        dask-backed; coordinate ``variable`` (names) and non-dim ``units`` ("" if unknown).
+        float32, NaN nodata, north-up (y descending), longitudes -180..180 (continuous beyond
+        180 for a grid over the 180° meridian), CRS attached, dask-backed; coordinate
+        ``variable`` (names) and non-dim ``units`` ("" if unknown).
 
     Raises
     ------
