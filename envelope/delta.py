@@ -9,6 +9,7 @@ from scipy.interpolate import RegularGridInterpolator
 
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
+from envelope.kernels.longitude import continuous_axis, wrap_longitude
 
 __all__ = ["METHODS", "change_factors", "change_factor_kernel", "bilinear_kernel", "interpolate_factors",
            "apply_delta", "delta"]
@@ -55,7 +56,7 @@ def change_factor_kernel(historical, future, *, method: str, ratio_floor: float 
 
 
 def _model_axes(field: xr.DataArray):
-    """Model grid as ascending 1-D axes and values (y, x, month); longitudes wrapped to -180..180.
+    """Model grid as ascending 1-D axes and values (y, x, month); longitudes in one continuous run.
 
     A global longitude axis gets one cyclic column on each side so points between the last
     and the first column (the seam) interpolate across it.
@@ -66,11 +67,15 @@ def _model_axes(field: xr.DataArray):
     x = np.asarray(field["x"].values, dtype=float)
     values = np.asarray(field.transpose("y", "x", "month").values, dtype=float)
     if geographic:
-        x = ((x + 180.0) % 360.0) - 180.0
-    ox, oy = np.argsort(x), np.argsort(y)
-    x, y, values = x[ox], y[oy], values[oy][:, ox]
+        ox, x = continuous_axis(x)   # 0-360, split at 180 deg or over it: one west-to-east run
+    else:
+        ox = np.argsort(x)
+        x = x[ox]
+    oy = np.argsort(y)
+    y, values = y[oy], values[oy][:, ox]
     if len(x) < 2 or len(y) < 2:
         raise InputError(f"model grid has {len(y)} x {len(x)} cells; expected at least 2 x 2 for bilinear interpolation")
+    west = float(x[0] - 0.5 * (x[1] - x[0]))
     dx = np.diff(x)
     periodic = geographic and np.allclose(dx, dx[0], rtol=1e-6) and abs(len(x) * dx[0] - 360.0) < 1e-6 * 360
     if periodic:
@@ -79,7 +84,7 @@ def _model_axes(field: xr.DataArray):
     # edges: half a cell beyond the outermost centres
     edges = (y[0] - (y[1] - y[0]) / 2.0, y[-1] + (y[-1] - y[-2]) / 2.0,
              x[0] - (x[1] - x[0]) / 2.0, x[-1] + (x[-1] - x[-2]) / 2.0)
-    return y, x, values, geographic, edges
+    return y, x, values, geographic, edges, west
 
 
 def bilinear_kernel(y_axis, x_axis, values, py, px, edges) -> np.ndarray:
@@ -140,7 +145,7 @@ def interpolate_factors(factors: xr.DataArray, target: xr.DataArray, *, model_na
     """
     from pyproj import Transformer
 
-    y_axis, x_axis, values, geographic, edges = _model_axes(factors.load())
+    y_axis, x_axis, values, geographic, edges, west = _model_axes(factors.load())
     model_crs = factors.rio.crs or "EPSG:4326"
     target_crs = target.rio.crs or "EPSG:4326"
     transformer = Transformer.from_crs(target_crs, model_crs, always_xy=True)
@@ -152,7 +157,7 @@ def interpolate_factors(factors: xr.DataArray, target: xr.DataArray, *, model_na
     rx, ry = transformer.transform(ring_x[::step], ring_y[::step])
     rx = np.asarray(rx)
     if geographic:
-        rx = ((rx + 180.0) % 360.0) - 180.0
+        rx = wrap_longitude(rx, west)   # target longitudes on the model's own run
     outside = ~((ry >= edges[0]) & (ry <= edges[1]) & (rx >= edges[2]) & (rx <= edges[3]))
     if outside.any():
         i = int(np.argmax(outside))
@@ -164,7 +169,7 @@ def interpolate_factors(factors: xr.DataArray, target: xr.DataArray, *, model_na
         px, py = transformer.transform(xx, yy)
         px = np.asarray(px, dtype=float)
         if geographic:
-            px = ((px + 180.0) % 360.0) - 180.0
+            px = wrap_longitude(px, west)
         return bilinear_kernel(y_axis, x_axis, values, np.asarray(py, dtype=float), px, edges).astype(np.float32)
 
     yy, xx = xr.broadcast(target["y"].astype(float), target["x"].astype(float))

@@ -20,6 +20,7 @@ import matplotlib.patheffects as path_effects
 
 from envelope import palettes
 from envelope.errors import GridMismatchError, InputError
+from envelope.kernels.longitude import label_longitude
 
 __all__ = [
     "map_continuous",
@@ -75,7 +76,8 @@ def _is_geographic(da) -> bool:
     if crs is not None:
         return bool(crs.is_geographic)
     x, y = np.asarray(da["x"]), np.asarray(da["y"])
-    return bool(np.all(np.abs(x) <= 180.0) and np.all(np.abs(y) <= 90.0))
+    # continuous longitudes of a grid over the 180 deg meridian may run past 180
+    return bool(np.all(np.abs(y) <= 90.0) and np.all(np.abs(x) <= 540.0) and np.ptp(x) <= 360.0)
 
 
 def _thin(da):
@@ -119,9 +121,19 @@ def cartopy_ready() -> bool:
     return True
 
 
-def _use_cartopy(use_cartopy) -> bool:
+def _over_antimeridian(extent, geographic: bool) -> bool:
+    """True when a lon/lat map's columns run across the 180° meridian (x beyond ±180)."""
+    return geographic and (extent[0] < -180.0 - 1e-9 or extent[1] > 180.0 + 1e-9)
+
+
+def _use_cartopy(use_cartopy, over_antimeridian: bool = False) -> bool:
+    # A grid over the 180 deg meridian is drawn on plain axes in its own continuous
+    # longitudes (labelled -180..180); cartopy's PlateCarree would cut it at the seam.
     if use_cartopy is None:
-        return cartopy_ready()
+        return cartopy_ready() and not over_antimeridian
+    if use_cartopy and over_antimeridian:
+        raise InputError("use_cartopy=True: the grid runs across the 180° meridian, which the cartopy map "
+                         "would cut in two; pass use_cartopy=None for a continuous plain map")
     if use_cartopy and not cartopy_ready():
         raise InputError("use_cartopy=True: cartopy is not installed; install envelope's dependencies "
                          "(pip install envelope) or pass use_cartopy=False")
@@ -174,8 +186,11 @@ def _degree_step(span: float) -> float:
 
 
 def _lon_label(v: float, _pos=None) -> str:
-    v = round(v, 6)
-    hemi = "W" if v < 0 else ("E" if v > 0 and v < 180 else "")
+    """Degrees of longitude in −180…180 with E/W, also for axes in continuous longitudes (190 -> 170°W)."""
+    v = round(float(label_longitude(round(v, 6))), 6)
+    if abs(v) == 180.0:
+        return "180°"
+    hemi = "W" if v < 0 else ("E" if v > 0 else "")
     return f"{abs(v):g}°{hemi}"
 
 
@@ -287,7 +302,7 @@ def _add_map_axes(fig, where, da, title: str, use_cartopy, north_arrow: bool, la
     """One map panel at subplot position ``where``: cartopy axes in the grid's CRS when available."""
     geographic = _is_geographic(da)
     extent = _extent(da)
-    if _use_cartopy(use_cartopy):
+    if _use_cartopy(use_cartopy, _over_antimeridian(extent, geographic)):
         projection = grid_projection(da)
         ax = fig.add_subplot(*where, projection=projection)
         ax.set_extent(extent, crs=projection)

@@ -1,4 +1,4 @@
-"""Grid identity: the CRS helpers, grid comparison and alignment, true cell areas, validity masks and variable matching."""
+"""Grid identity: the CRS helpers, longitude ranges, grid comparison and alignment, true cell areas, validity masks and variable matching."""
 
 from __future__ import annotations
 
@@ -11,6 +11,7 @@ import rioxarray  # noqa: F401  (registers .rio)
 
 from envelope.errors import GridMismatchError, InputError
 from envelope.kernels.areas import ellipsoid_band_area
+from envelope.kernels.longitude import continuous_axis, wrap_longitude
 
 log = logging.getLogger(__name__)
 
@@ -92,6 +93,58 @@ def georeferenced_like(result: xr.DataArray, ref: xr.DataArray) -> xr.DataArray:
         if stated != Affine.identity():
             result = result.rio.write_transform(stated)
     return result
+
+
+def lon_west(grid: xr.DataArray) -> float:
+    """West edge (degrees) of a geographic grid's columns, from its x coordinates and transform."""
+    x = np.asarray(grid["x"].values, dtype=np.float64)
+    dx = abs(float(x[1] - x[0])) if x.size > 1 else abs(_steps(grid)[0] or 0.0)
+    return float(x.min() - 0.5 * dx)
+
+
+def spans_globe(grid: xr.DataArray) -> bool:
+    """True for a geographic grid whose columns circle the globe (width 360° within 1e-6 of a cell).
+
+    On such a grid the x axis is periodic: the east edge meets the west edge.
+    """
+    if not is_geographic(grid) or grid.sizes.get("x", 0) < 2:
+        return False
+    x = np.asarray(grid["x"].values, dtype=np.float64)
+    dx = abs(float(x[1] - x[0]))
+    return bool(abs(dx * x.size - 360.0) <= 1e-6 * dx)
+
+
+def crosses_antimeridian(grid: xr.DataArray) -> bool:
+    """True for a geographic grid whose columns run across the 180° meridian (x beyond ±180)."""
+    if not is_geographic(grid) or spans_globe(grid):
+        return False
+    west = lon_west(grid)
+    dx = abs(float(grid["x"][1] - grid["x"][0])) if grid.sizes["x"] > 1 else 0.0
+    return bool(west + dx * grid.sizes["x"] > 180.0 + 1e-9 or west < -180.0 - 1e-9)
+
+
+def lon_into_grid(grid: xr.DataArray, lon):
+    """Longitudes moved by whole turns into the grid's range (west edge … west edge + 360°).
+
+    Records given in −180…180 then fall on the right columns of a grid over the 180° meridian
+    (x = 170…190): −179.5 becomes 180.5. Non-geographic grids: ``lon`` unchanged.
+    """
+    if not is_geographic(grid):
+        return np.asarray(lon, dtype=np.float64)
+    return wrap_longitude(lon, lon_west(grid))
+
+
+def continuous_longitudes(da: xr.DataArray) -> xr.DataArray:
+    """A geographic grid's columns in one continuous west-to-east run (:func:`envelope.kernels.longitude.continuous_axis`).
+
+    0–360 axes and axes split at 180° become continuous; a grid over the 180° meridian keeps
+    longitudes beyond 180 (170…190), a globe-circling grid runs −180…180. Columns are only
+    re-ordered (lazily) when they are not in order already.
+    """
+    order, values = continuous_axis(da["x"].values)
+    if not np.array_equal(order, np.arange(order.size)):
+        da = da.isel(x=order)
+    return da.assign_coords(x=values)
 
 
 def grid_signature(da: xr.DataArray) -> dict:

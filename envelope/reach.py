@@ -11,6 +11,8 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.kernels import dispersal
+from envelope.grids import spans_globe
+from envelope.kernels.longitude import split_at_antimeridian
 from envelope.kernels.spread import DEFAULT_PRESSURE_FLOOR, SpreadOperator
 from envelope.kernels.transient import ClimatePath, run_transient
 
@@ -154,9 +156,13 @@ def kernels_for_grid(grid: xr.DataArray, settings: DispersalSettings, mean_km: f
 
 def build_operator(grid: xr.DataArray, settings: DispersalSettings, mean_km: float | None = None,
                    geographic: bool = True) -> SpreadOperator:
-    """Discretise the kernel on ``grid`` (:func:`kernels_for_grid`) and build its spread operator."""
+    """Discretise the kernel on ``grid`` (:func:`kernels_for_grid`) and build its spread operator.
+
+    On a geographic grid that circles the globe the x axis is periodic: spread wraps round
+    in longitude instead of stopping at the grid's east and west edges.
+    """
     kernels, _ = kernels_for_grid(grid, settings, mean_km, geographic)
-    return SpreadOperator((grid.sizes["y"], grid.sizes["x"]), kernels)
+    return SpreadOperator((grid.sizes["y"], grid.sizes["x"]), kernels, periodic_x=spans_globe(grid))
 
 
 def reach_classes(now_suitable, future_suitable, habitat, reached, valid) -> np.ndarray:
@@ -258,11 +264,11 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         draw = np.random.default_rng(np.random.SeedSequence(seed).spawn(replicates + 1)[-1])
         means = draw.uniform(lo, hi, size=replicates)
         built = [kernels_for_grid(now, settings, m, geographic) for m in means]
-        operators = [SpreadOperator(now_arr.shape, k) for k, _ in built]
+        operators = [SpreadOperator(now_arr.shape, k, periodic_x=spans_globe(now)) for k, _ in built]
         tail_mass = max(t for _, t in built)
     else:
         kernels, tail_mass = kernels_for_grid(now, settings, None, geographic)
-        operators = SpreadOperator(now_arr.shape, kernels)
+        operators = SpreadOperator(now_arr.shape, kernels, periodic_x=spans_globe(now))
 
     climate = ClimatePath([now_year] + years, maps)
     persistence_steps = int(math.ceil(persistence_years / step_years - 1e-9)) if persistence_years > 0 else 0
@@ -433,10 +439,19 @@ def cell_lonlat(grid: xr.DataArray):
     return np.asarray(lat), np.asarray(lon)
 
 
+def _unwrap_degrees(lon: np.ndarray) -> np.ndarray:
+    """Longitudes along a line made continuous (no 360° jumps between neighbouring vertices)."""
+    if lon.size < 2:
+        return lon
+    return np.rad2deg(np.unwrap(np.deg2rad(lon)))
+
+
 def front_geojson(grid: xr.DataArray, occupancy: dict, level: float = 0.5) -> dict:
     """The expansion front: the ``level`` occupancy contour at each snapshot year, as GeoJSON.
 
-    Lines are in longitude/latitude (RFC 7946); each feature carries its ``year`` and ``level``.
+    Lines are in longitude/latitude (RFC 7946), longitudes in −180…180; a line that crosses the
+    180° meridian is cut in two there (RFC 7946 §3.1.9). Each feature carries its ``year``
+    and ``level``.
     """
     import contourpy
 
@@ -457,7 +472,11 @@ def front_geojson(grid: xr.DataArray, occupancy: dict, level: float = 0.5) -> di
             x, y = transform * (cols, rows)
             if to_lonlat is not None:
                 x, y = to_lonlat(x, y)
-            lines.append([[round(float(a), 6), round(float(b), 6)] for a, b in zip(x, y)])
+                x = _unwrap_degrees(np.asarray(x, dtype=np.float64))
+            # longitudes in -180..180, a line over the 180 deg meridian cut there (RFC 7946 3.1.9)
+            for px, py in split_at_antimeridian(x, y):
+                if px.size > 1:
+                    lines.append([[round(float(a), 6), round(float(b), 6)] for a, b in zip(px, py)])
         features.append({"type": "Feature", "properties": {"year": float(year), "level": level},
                          "geometry": {"type": "MultiLineString", "coordinates": lines}})
     return {"type": "FeatureCollection", "features": features}

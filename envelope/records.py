@@ -14,7 +14,8 @@ import pyproj
 import xarray as xr
 
 from envelope.errors import GridMismatchError, InputError
-from envelope.grids import check_grid_dims, check_same_shape, crs_label, grid_crs, parse_crs, valid_cells
+from envelope.grids import (check_grid_dims, check_same_shape, crs_label, grid_crs, lon_into_grid, parse_crs,
+                            valid_cells)
 from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TAXON_TERMS, MALFORMED_FLAG, to_float
 
 log = logging.getLogger(__name__)
@@ -149,6 +150,8 @@ def values_at(stack: xr.DataArray, rows, cols) -> np.ndarray:
 def cells_of(grid: xr.DataArray, x, y):
     """Row and column of the cells holding points ``(x, y)`` given in the grid's CRS.
 
+    On geographic grids longitudes are first moved by whole turns into the grid's range, so
+    a record at -179.5 falls on a grid over the 180° meridian (x = 170 … 190) at 180.5.
     Cells are half-open: a point on the edge between two cells belongs to the cell on its
     right (east) and, on north-up grids, below it (south); the grid's east and south outer
     edges are outside. Fractional indices are rounded to 1e-9 of a cell first so that
@@ -161,7 +164,7 @@ def cells_of(grid: xr.DataArray, x, y):
     """
     # inverse affine (col, row) = A^-1 (x, y), written out: Affine's array `*` is deprecated
     a, b, c, d, e, f = tuple(~grid.rio.transform())[:6]
-    x = np.asarray(x, dtype=np.float64)
+    x = lon_into_grid(grid, x)   # geographic grids: longitudes by whole turns into the grid's range
     y = np.asarray(y, dtype=np.float64)
     colf = np.floor(np.round(a * x + b * y + c, 9))
     rowf = np.floor(np.round(d * x + e * y + f, 9))

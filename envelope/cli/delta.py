@@ -27,8 +27,16 @@ def _parse_baselines(values):
 @click.command()
 @click.option("--baseline", "baselines", multiple=True, required=True, metavar="[VAR=]PATH",
               help="Observed 12-month baseline; with --table repeat as VAR=PATH (tmin, tmax, prec, tmean).")
-@click.option("--model-historical", type=click.Path(dir_okay=False), help="Model climatology, historical period.")
-@click.option("--model-future", type=click.Path(dir_okay=False), help="Model climatology, future period.")
+@click.option("--model-historical", type=click.Path(dir_okay=False), multiple=True,
+              help="Model climatology, historical period; or a monthly CF series (repeat the option for "
+                   "several files, or give a quoted glob pattern).")
+@click.option("--model-future", type=click.Path(dir_okay=False), multiple=True,
+              help="Model climatology, future period; or a monthly CF series (repeatable, or a glob).")
+@click.option("--period", default=None, metavar="FIRST-LAST",
+              help="Years of the historical model series averaged into its climatology, e.g. 1991-2020 "
+                   "(default: every year the files hold).")
+@click.option("--future-period", default=None, metavar="FIRST-LAST",
+              help="Single form: years of the future model series, e.g. 2041-2070 (default: every year).")
 @output_opt(required=False, help="Future monthly stack on the baseline grid (single form).")
 @click.option("--variable", "model_variable", default=None, metavar="NAME",
               help="Single form: NetCDF variable to read from the model files (default: the only one, "
@@ -45,8 +53,8 @@ def _parse_baselines(values):
               help="Batch form: also write BIO layers per scenario and a scenario table pointing at them.")
 @convention_options
 @overwrite_opt
-def delta(baselines, model_historical, model_future, out, model_variable, method, ratio_floor, max_ratio, table, out_dir,
-          with_bioclim, gdd_base, wrap, ddof, cv_plus_one, overwrite):
+def delta(baselines, model_historical, model_future, period, future_period, out, model_variable, method, ratio_floor,
+          max_ratio, table, out_dir, with_bioclim, gdd_base, wrap, ddof, cv_plus_one, overwrite):
     """Build scenario grids by the delta (change-factor) method.
 
     For each month the climate model's change between its historical and future
@@ -55,7 +63,15 @@ def delta(baselines, model_historical, model_future, out, model_variable, method
     baseline. Model grids may be coarse, in another CRS, with 0..360 longitudes.
 
     A model file holding several variables is read at --variable, or by default at the
-    variable named like the baseline file (tmin.tif -> tmin).
+    variable named like the baseline file (tmin.tif -> tmin, or tasmin, or the variable
+    whose CF standard_name and cell_methods say minimum air temperature).
+
+    Raw model output is read directly: monthly CF-NetCDF series split over several files
+    (repeat --model-historical / --model-future, or quote a glob pattern), in any CF
+    calendar, reduced to the mean per calendar month over --period (historical) and
+    --future-period (future); kelvin becomes degC and kg m-2 s-1 mm per month with each
+    month's days in the series' calendar. Mixed calendars, a period the files do not cover,
+    missing months and a variable without units stop the command.
 
     The batch form reads a table of climate models x pathways x horizons (one row per
     scenario and variable; an optional model_variable column names the NetCDF variable
@@ -70,6 +86,8 @@ def delta(baselines, model_historical, model_future, out, model_variable, method
           --out tmin_2050.tif
       $ envelope delta --table models.csv --baseline tmin=tmin.tif --baseline tmax=tmax.tif \\
           --baseline prec=prec.tif --out-dir scenarios --bioclim
+      $ envelope delta --baseline tmin.tif --model-historical 'tasmin_hist_*.nc' --period 1991-2020 \\
+          --model-future 'tasmin_ssp245_*.nc' --future-period 2041-2070 --out tmin_2041-2070.tif
     """
     from envelope.errors import InputError
     from envelope.io.atomic import check_distinct
@@ -83,18 +101,20 @@ def delta(baselines, model_historical, model_future, out, model_variable, method
                              "(or use --table for the batch form)")
         check_distinct({"--out": out}, {"--baseline": baselines, "--model-historical": model_historical,
                                         "--model-future": model_future})
-        done = delta_single(baselines[0], model_historical, model_future, out, model_variable=model_variable,
-                            method=method, ratio_floor=ratio_floor, max_ratio=max_ratio, overwrite=overwrite)
+        done = delta_single(baselines[0], list(model_historical), list(model_future), out,
+                            model_variable=model_variable, method=method, ratio_floor=ratio_floor,
+                            max_ratio=max_ratio, period=period, future_period=future_period, overwrite=overwrite)
         click.echo(f"Wrote {done['method']} delta-method monthly stack to {out}")
         return
-    if model_historical or model_future or out or method or model_variable:
-        raise InputError("--model-historical/--model-future/--out/--method/--variable belong to the single form; "
+    if model_historical or model_future or out or method or model_variable or future_period:
+        raise InputError("--model-historical/--model-future/--future-period/--out/--method/--variable belong to the "
+                         "single form; "
                          "with --table the table names the model files (and their model_variable) "
                          "and --out-dir the output folder")
     if not out_dir:
         raise InputError("--table needs --out-dir DIR for the outputs")
     done = delta_batch(table, _parse_baselines(baselines), Path(out_dir), ratio_floor=ratio_floor, max_ratio=max_ratio,
-                       with_bioclim=with_bioclim,
+                       with_bioclim=with_bioclim, period=period,
                        conventions={"gdd_base": gdd_base, "wrap": wrap, "ddof": int(ddof), "cv_plus_one": cv_plus_one},
                        overwrite=overwrite)
     click.echo(f"Wrote {done['n_scenarios']} scenarios to {out_dir}"

@@ -11,6 +11,7 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from envelope.errors import InputError
+from envelope.grids import continuous_longitudes
 
 __all__ = ["gridded_variables", "open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "MONTH_VARIABLES",
            "kind_of_units"]
@@ -20,10 +21,10 @@ log = logging.getLogger(__name__)
 TEMPERATURE = "temperature"
 PRECIPITATION = "precipitation"
 
-_CELSIUS = {"degc", "°c", "c", "celsius", "deg_c", "degrees_c", "degree_c", "degrees_celsius",
+CELSIUS_UNITS = {"degc", "°c", "c", "celsius", "deg_c", "degrees_c", "degree_c", "degrees_celsius",
             "degree_celsius", "degrees c", "deg c", "oc"}
-_KELVIN = {"k", "kelvin", "degk", "deg_k"}
-_MM = {"mm", "millimeter", "millimeters", "millimetre", "millimetres", "mm/month", "mm month-1",
+KELVIN_UNITS = {"k", "kelvin", "degk", "deg_k"}
+MM_UNITS = {"mm", "millimeter", "millimeters", "millimetre", "millimetres", "mm/month", "mm month-1",
        "mm/mon", "kg m-2", "kg/m2", "kg m**-2"}
 
 
@@ -32,16 +33,16 @@ MONTH_VARIABLES = [f"M{m:02d}" for m in range(1, 13)]
 
 _GEOTIFF = {".tif", ".tiff"}
 _NETCDF = {".nc", ".nc4", ".netcdf", ".cdf"}
-_Y_NAMES = ("y", "lat", "latitude", "rlat", "northing")
-_X_NAMES = ("x", "lon", "longitude", "rlon", "easting")
+Y_NAMES = ("y", "lat", "latitude", "rlat", "northing")
+X_NAMES = ("x", "lon", "longitude", "rlon", "easting")
 
 
 def kind_of_units(units: str) -> str | None:
     """``"temperature"`` for °C or kelvin, ``"precipitation"`` for mm per month, else None."""
     u = (units or "").strip().lower()
-    if u in _CELSIUS or u in _KELVIN:
+    if u in CELSIUS_UNITS or u in KELVIN_UNITS:
         return TEMPERATURE
-    if u in _MM:
+    if u in MM_UNITS:
         return PRECIPITATION
     return None
 
@@ -53,15 +54,15 @@ def _check_units(da, path, expect):
         return da, units
     u = units.lower()
     if expect == TEMPERATURE:
-        if u in _CELSIUS:
+        if u in CELSIUS_UNITS:
             return da, "degC"
-        if u in _KELVIN:
+        if u in KELVIN_UNITS:
             log.info("%s: converting kelvin to degC", path)
             out = da - np.float32(273.15)
             out.attrs = dict(da.attrs)
             return out, "degC"
         raise InputError(f"{path}: units {units!r}; expected a temperature in degC (or K)")
-    if u in _MM:
+    if u in MM_UNITS:
         return da, "mm"
     raise InputError(f"{path}: units {units!r}; expected monthly precipitation totals in mm "
                      "(convert rates such as kg m-2 s-1 to mm per month first)")
@@ -90,7 +91,7 @@ def _open_geotiff(path, chunks):
     return da
 
 
-def _find_dim(da, candidates, what, path):
+def find_dim(da, candidates, what, path):
     found = next((d for d in da.dims if str(d).lower() in candidates), None)
     if found is None:
         raise InputError(f"{path}: dims {da.dims}; expected a {what} dim named one of {', '.join(candidates)}")
@@ -174,8 +175,8 @@ def _open_netcdf(path, chunks, name, variable):
         ds.close()
         return _open_month_variables(path, chunks)
     da = _pick_variable(ds, path, name, variable)
-    xdim = _find_dim(da, _X_NAMES, "x", path)
-    ydim = _find_dim(da, _Y_NAMES, "y", path)
+    xdim = find_dim(da, X_NAMES, "x", path)
+    ydim = find_dim(da, Y_NAMES, "y", path)
     geographic = str(xdim).lower() in ("lon", "longitude") or str(ydim).lower() in ("lat", "latitude")
     mdim = "month" if "month" in da.dims else ("time" if "time" in da.dims else None)
     if mdim is None or ydim not in da.dims or xdim not in da.dims:
@@ -211,13 +212,15 @@ def _open_netcdf(path, chunks, name, variable):
     return da.rio.write_crs(crs)
 
 
-def _normalise(da):
-    """North-up rows and -180..180 longitudes, the project-wide grid conventions."""
+def normalise_axes(da):
+    """North-up rows and continuous west-to-east longitudes, the project-wide grid conventions."""
     crs = da.rio.crs
     if da.sizes["y"] > 1 and float(da["y"][0]) < float(da["y"][-1]):
         da = da.isel(y=slice(None, None, -1))
-    if crs is not None and crs.is_geographic and float(da["x"].max()) > 180.0:
-        da = da.assign_coords(x=((da["x"].values + 180.0) % 360.0) - 180.0).sortby("x")
+    if crs is not None and crs.is_geographic and da.sizes["x"] > 1:
+        da = continuous_longitudes(da)   # 0-360 or split at 180 deg: one west-to-east run
+    elif da.sizes["x"] > 1 and float(da["x"][0]) > float(da["x"][-1]):
+        da = da.isel(x=slice(None, None, -1))
     return da.rio.write_crs(crs)
 
 
@@ -247,7 +250,7 @@ def open_monthly(path, *, name: str, variable: str | None = None, units: str | N
     Returns
     -------
     DataArray (month, y, x), float32, NaN nodata, CRS attached, north-up, longitudes in
-    -180..180; coordinate ``month`` = 1..12; ``attrs["units"]`` ("" if unknown) and
+    -180..180 (continuous beyond 180 for a grid over the 180° meridian); coordinate ``month`` = 1..12; ``attrs["units"]`` ("" if unknown) and
     ``attrs["source"]`` (the file).
 
     Raises
@@ -265,7 +268,7 @@ def open_monthly(path, *, name: str, variable: str | None = None, units: str | N
         da = _open_netcdf(path, {} if chunks == "auto" else chunks, name, variable)
     else:
         raise InputError(f"{path}: suffix {path.suffix!r}; expected a GeoTIFF (.tif) or NetCDF (.nc) file")
-    da = _normalise(da.transpose("month", "y", "x"))
+    da = normalise_axes(da.transpose("month", "y", "x"))
     da, unit_text = _check_units(da, path, units)
     crs = da.rio.crs
     keep = [c for c in da.coords if c in ("month", "y", "x")]

@@ -187,23 +187,16 @@ def _window_chunks(chunks, reader, block_shape) -> tuple:
 
 
 def _normalised(da: xr.DataArray, crs, path, resolution=None) -> xr.DataArray:
-    """Clean (variable, y, x) array: north-up, -180..180 longitudes, CRS attached, no extra coords.
+    """Clean (variable, y, x) array: north-up, continuous longitudes (-180..180 unless over 180°), CRS attached.
 
     ``resolution`` ((dx, dy), positive) is the cell size the file states (a GeoTIFF's
     transform, a NetCDF file's cell bounds). A grid of one row or one column cannot tell
     its cell size from coordinate spacing, so such a grid carries the stated transform
     (rioxarray's ``GeoTransform``) and every later reader of ``rio.transform()`` gets it.
     """
-    geographic = bool(crs.is_geographic)
     x = np.asarray(da["x"].values, dtype=np.float64)
-    if geographic and x.size and np.nanmax(x) > 180.0:
-        # 0-360 longitudes -> -180..180, then columns sorted west to east
-        x = np.where(x > 180.0, x - 360.0, x)
-        da = da.assign_coords(x=x).sortby("x")
-        step = np.diff(da["x"].values)
-        if step.size > 1 and not np.allclose(step, step[0], rtol=1e-5, atol=0):
-            raise InputError(f"{path}: 0–360 longitudes of a grid that spans the 180° meridian cannot be "
-                             f"normalised to -180..180 (expected a global grid, or one on one side of 180°)")
+    if crs.is_geographic and x.size > 1:
+        da = _continuous_columns(da)
     elif x.size > 1 and x[1] < x[0]:
         da = da.isel(x=slice(None, None, -1))
     y = np.asarray(da["y"].values)
@@ -233,6 +226,17 @@ def _with_stated_transform(da: xr.DataArray, resolution, path) -> xr.DataArray:
                          "(expected a GeoTIFF transform, or cell bounds on the NetCDF coordinates)")
     transform = Affine(float(dx), 0.0, float(x[0]) - dx / 2.0, 0.0, -float(dy), float(y[0]) + dy / 2.0)
     return da.rio.write_transform(transform)
+
+
+def _continuous_columns(da: xr.DataArray) -> xr.DataArray:
+    """Longitude columns west to east in one run: 0–360 and split −180/180 axes made continuous.
+
+    A grid over the 180° meridian keeps longitudes beyond 180 (170…190); see
+    :func:`envelope.grids.continuous_longitudes`.
+    """
+    from envelope.grids import continuous_longitudes
+
+    return continuous_longitudes(da)
 
 
 def _check_regular(da: xr.DataArray, path) -> None:
@@ -404,8 +408,9 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
     Returns
     -------
     DataArray (variable, y, x)
-        float32, NaN nodata, north-up (y descending), longitudes -180..180, CRS attached,
-        dask-backed; coordinate ``variable`` (names) and non-dim ``units`` ("" if unknown).
+        float32, NaN nodata, north-up (y descending), longitudes -180..180 (continuous beyond
+        180 for a grid over the 180° meridian), CRS attached, dask-backed; coordinate
+        ``variable`` (names) and non-dim ``units`` ("" if unknown).
 
     Raises
     ------

@@ -48,7 +48,8 @@ class SpreadOperator:
     kernel's real FFT on a zero-padded shape (``scipy.fft.next_fast_len``) so each step costs
     one forward and one inverse FFT. The padding (grid plus one kernel half-width per axis,
     enough for the cropped output to be free of wrap-around) makes the convolution linear on
-    the grid, not circular: propagules leaving the domain are lost (absorbing edge).
+    the grid, not circular: propagules leaving the domain are lost (absorbing edge). With
+    ``periodic_x`` the convolution is circular in x (period = the grid's width) and linear in y.
 
     Model (per step t -> t+1; see docs/dispersal.md):
 
@@ -79,6 +80,9 @@ class SpreadOperator:
         values are still clipped).
     workers : int, default=2
         Threads for scipy.fft.
+    periodic_x : bool, default=False
+        The x axis is periodic (a geographic grid that circles the globe): propagules leaving
+        the east edge arrive at the west edge and vice versa. The y axis stays absorbing.
 
     References
     ----------
@@ -100,7 +104,7 @@ class SpreadOperator:
     (True, True)
     """
 
-    def __init__(self, grid_shape, kernel, *, dtype=np.float64, pressure_floor=None, workers=2):
+    def __init__(self, grid_shape, kernel, *, dtype=np.float64, pressure_floor=None, workers=2, periodic_x=False):
         ny, nx = (int(v) for v in grid_shape)
         if ny < 1 or nx < 1:
             raise InputError(f"grid_shape must be two positive sizes, got {grid_shape!r}")
@@ -113,6 +117,7 @@ class SpreadOperator:
             raise InputError(f"pressure_floor must be >= 0, got {pressure_floor!r}")
         self.pressure_floor = floor
         self.workers = int(workers)
+        self.periodic_x = bool(periodic_x)
         if isinstance(kernel, np.ndarray) or not isinstance(kernel, Sequence):
             bands = [(0, ny, _as_kernel(kernel, "kernel"))]
         else:
@@ -136,8 +141,18 @@ class SpreadOperator:
         # result (indices n + h .. n + 2h - 1 and below h) then lands outside the crop. The
         # kernel itself must fit: P >= 2h + 1. For a kernel as large as the domain (h = n - 1)
         # this is 2n - 1 per axis rather than the 3n - 2 of a full linear convolution.
-        padded = (scipy.fft.next_fast_len(max(i1 - i0 + hy, k.shape[0]), real=True),
-                  scipy.fft.next_fast_len(max(nx + hx, k.shape[1]), real=True))
+        rows = scipy.fft.next_fast_len(max(i1 - i0 + hy, k.shape[0]), real=True)
+        if self.periodic_x:
+            # x circles the globe: the convolution is circular with period nx exactly. The
+            # kernel's columns are folded onto the circle (offset d -> d mod nx), offset 0 in
+            # column 0, so the output needs no crop in x.
+            folded = np.zeros((k.shape[0], nx))
+            np.add.at(folded, (slice(None), (np.arange(k.shape[1]) - hx) % nx), k)
+            padded = (rows, nx)
+            kernel_hat = scipy.fft.rfft2(folded.astype(self.dtype), s=padded, workers=self.workers)
+            crop = (slice(r0 - i0 + hy, r1 - i0 + hy), slice(0, nx))
+            return _Block((r0, r1), (i0, i1), kernel_hat, padded, crop)
+        padded = (rows, scipy.fft.next_fast_len(max(nx + hx, k.shape[1]), real=True))
         kernel_hat = scipy.fft.rfft2(k.astype(self.dtype), s=padded, workers=self.workers)
         # Full linear convolution index m maps to output row i = m - hy + i0.
         crop = (slice(r0 - i0 + hy, r1 - i0 + hy), slice(hx, hx + nx))

@@ -10,7 +10,8 @@ from envelope.bioclim import check_monthly, check_monthly_grids
 from envelope.delta import delta as delta_method
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_outputs, check_writable
-from envelope.io.monthly import PRECIPITATION, TEMPERATURE, gridded_variables, kind_of_units, open_monthly, write_monthly
+from envelope.io.monthly import PRECIPITATION, TEMPERATURE, kind_of_units, open_monthly, write_monthly
+from envelope.io.series import expand_paths, open_monthly_series, parse_period, variable_for_role
 from envelope.io.tables import SCENARIO_COLUMNS, read_model_table
 from envelope.io.writing import write_raster
 
@@ -23,17 +24,28 @@ MONTHLY_TABLE_COLUMNS = ("name", "pathway", "climate_model", "horizon", "variabl
 
 
 
-def write_bioclim(paths: dict, out, *, variables=None, gdd_base=5.0, wrap=True, ddof=0, cv_plus_one=False,
-                  overwrite=False):
-    """Open the monthly files in ``paths`` (tmin, tmax, prec[, tmean]), check them, write BIO layers to ``out``.
+def _label(paths) -> str:
+    """How an input is named in messages and tags: the path, or the paths joined by ';'."""
+    items = [paths] if isinstance(paths, (str, Path)) else list(paths)
+    return ";".join(str(p) for p in items)
 
-    Returns the lazy result that was written (for reporting).
+
+def write_bioclim(paths: dict, out, *, variables=None, gdd_base=5.0, wrap=True, ddof=0, cv_plus_one=False,
+                  period=None, overwrite=False):
+    """Open the monthly inputs in ``paths`` (tmin, tmax, prec[, tmean]), check them, write BIO layers to ``out``.
+
+    Each input is a 12-month stack, or a monthly series (one or several files or glob
+    patterns, :func:`envelope.io.series.open_monthly_series`) reduced to its climatology over
+    ``period`` ("1991-2020"). Returns the lazy result that was written (for reporting).
     """
 
     check_writable(out, overwrite)
-    arrays = {role: open_monthly(p, name=role, units=PRECIPITATION if role == "prec" else TEMPERATURE)
-              for role, p in paths.items() if p is not None}
-    names = {role: str(p) for role, p in paths.items() if p is not None}
+    years = parse_period(period)
+    given = {role: p for role, p in paths.items() if p is not None and (isinstance(p, (str, Path)) or len(p))}
+    arrays = {role: open_monthly_series(p, name=role, units=PRECIPITATION if role == "prec" else TEMPERATURE,
+                                        period=years, hint=f"name it {role} or give its CF standard_name")
+              for role, p in given.items()}
+    names = {role: _label(p) for role, p in given.items()}
     check_monthly_grids({names[r]: a for r, a in arrays.items()})
     check_monthly(arrays["tmin"], arrays["tmax"], arrays["prec"], arrays.get("tmean"), names=names)
     stack = compute_bioclim(arrays["tmin"], arrays["tmax"], arrays["prec"], arrays.get("tmean"),
@@ -42,6 +54,9 @@ def write_bioclim(paths: dict, out, *, variables=None, gdd_base=5.0, wrap=True, 
     tags = {key: str(value) for key, value in stack.attrs.items()}
     tags["long_names"] = dict(zip(map(str, stack["variable"].values), map(str, stack["long_name"].values)))
     tags.update({f"input_{role}": str(p) for role, p in names.items()})
+    if years is not None:
+        tags["period"] = f"{years[0]}-{years[1]}"
+        tags["calendar"] = str(arrays["tmin"].attrs.get("calendar", ""))
     write_raster(stack, out, overwrite=overwrite, tags=tags)
     return stack
 
@@ -59,8 +74,14 @@ def method_for_units(method, baseline, path):
 
 
 def delta_single(baseline_path, hist_path, fut_path, out, *, model_variable=None, method=None, ratio_floor=1.0,
-                 max_ratio=None, overwrite=False) -> dict:
-    """Delta method for one baseline variable: write the future 12-month stack to ``out``; returns what was written."""
+                 max_ratio=None, period=None, future_period=None, overwrite=False) -> dict:
+    """Delta method for one baseline variable: write the future 12-month stack to ``out``; returns what was written.
+
+    ``hist_path`` and ``fut_path`` are 12-month climatologies or monthly series (a path, a glob
+    pattern, or a list of them); a series is reduced to its climatology over ``period`` (the
+    historical run) and ``future_period`` (the future run), each "FIRST-LAST" or None for
+    every year of the files.
+    """
 
     check_writable(out, overwrite)
     baseline = open_monthly(baseline_path, name="baseline")
@@ -68,49 +89,59 @@ def delta_single(baseline_path, hist_path, fut_path, out, *, model_variable=None
     preferred = Path(baseline_path).stem
     variables = {role: _model_variable(p, model_variable, preferred, "add --variable NAME to pick one")
                  for role, p in (("historical", hist_path), ("future", fut_path))}
-    future = _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables)
-    write_monthly(future, out, overwrite=overwrite, tags=_tags(future, baseline_path, hist_path, fut_path))
+    periods = {"historical": parse_period(period), "future": parse_period(future_period, option="--future-period")}
+    future = _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables,
+                     periods=periods, role=preferred)
+    tags = _tags(future, baseline_path, hist_path, fut_path)
+    tags.update({f"{role}_period": f"{p[0]}-{p[1]}" for role, p in periods.items() if p is not None})
+    write_monthly(future, out, overwrite=overwrite, tags=tags)
     return {"method": method, "out": str(out)}
 
 
 def _model_variable(path, requested, preferred, hint):
-    """The NetCDF variable to read from a model file: as requested, the only one, or the one called ``preferred``.
+    """The NetCDF variable to read from a model file: as requested, the only one, or the one for ``preferred``.
 
-    None lets :func:`envelope.io.monthly.open_monthly` decide (a GeoTIFF, or a single
-    gridded variable); a requested name is checked by ``open_monthly`` itself.
+    ``preferred`` is a role (``tmin``) or a baseline file's stem: the variable is found by that
+    name, by CMIP-style names (``tasmin``) or by CF standard_name
+    (:func:`envelope.io.series.series_variable`). None lets the reader decide (a GeoTIFF, or a
+    single gridded variable). Only the first file's header is read.
     """
 
     if requested:
         return requested
-    names = gridded_variables(path)
-    if names is None or len(names) == 1:
+    first = expand_paths(path, option="model file")[0]
+    if first.suffix.lower() not in (".nc", ".nc4", ".netcdf", ".cdf"):
         return None
-    if preferred in names:
-        return preferred
-    raise InputError(f"{path}: {len(names)} gridded variables ({', '.join(names) or 'none'}) and none "
-                     f"called {preferred!r}; {hint}")
+    return variable_for_role(first, preferred, hint)
 
 
-def _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables=None):
+def _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, max_ratio, variables=None,
+            periods=None, role=None):
 
     variables = variables or {}
-    hist = open_monthly(hist_path, name="historical", variable=variables.get("historical"))
-    fut = open_monthly(fut_path, name="future", variable=variables.get("future"))
+    periods = periods or {}
+    hist = open_monthly_series(hist_path, name="historical", variable=variables.get("historical"),
+                               period=periods.get("historical"), role=role)
+    fut = open_monthly_series(fut_path, name="future", variable=variables.get("future"),
+                              period=periods.get("future"), role=role)
     return delta_method(baseline, hist, fut, method=method, ratio_floor=ratio_floor, max_ratio=max_ratio,
-                        names={"baseline": str(baseline_path), "historical": str(hist_path),
-                               "future": str(fut_path)})
+                        names={"baseline": str(baseline_path), "historical": _label(hist_path),
+                               "future": _label(fut_path)})
 
 
 def _tags(future, baseline_path, hist_path, fut_path):
     tags = {k: str(v) for k, v in future.attrs.items() if k != "source"}
-    tags.update({"baseline": str(baseline_path), "model_historical": str(hist_path),
-                 "model_future": str(fut_path)})
+    tags.update({"baseline": str(baseline_path), "model_historical": _label(hist_path),
+                 "model_future": _label(fut_path)})
     return tags
 
 
 def delta_batch(table, baseline_paths: dict, out_dir, *, ratio_floor=1.0, max_ratio=None, with_bioclim=False,
-                conventions=None, overwrite=False) -> dict:
+                conventions=None, period=None, overwrite=False) -> dict:
     """Delta method over a model table (:func:`envelope.io.tables.read_model_table`), all outputs or none.
+
+    ``period`` ("1991-2020") reduces historical model files that hold monthly series to
+    that period's climatology; future series are averaged over all their years.
 
     Writes ``out_dir/<name>/<variable>.tif`` and ``out_dir/monthly.csv``; with ``with_bioclim``
     also ``out_dir/<name>/bioclim.tif`` and the scenario table ``out_dir/scenarios.csv``.
@@ -121,6 +152,7 @@ def delta_batch(table, baseline_paths: dict, out_dir, *, ratio_floor=1.0, max_ra
     if not out_dir.is_dir():
         raise InputError(f"--out-dir {out_dir}: folder does not exist")
     scenarios = read_model_table(table)
+    years = parse_period(period)
     baselines = {var: open_monthly(p, name=var, units=_UNITS.get(var)) for var, p in baseline_paths.items()}
     for name, sc in scenarios.items():
         absent = sorted(set(sc["files"]) - set(baselines))
@@ -144,7 +176,7 @@ def delta_batch(table, baseline_paths: dict, out_dir, *, ratio_floor=1.0, max_ra
             variables = {role: _model_variable(p, requested, var, hint)
                          for role, p in (("historical", hist_path), ("future", fut_path))}
             futures[var] = _future(baselines[var], baseline_paths[var], hist_path, fut_path, method,
-                                   ratio_floor, max_ratio, variables)
+                                   ratio_floor, max_ratio, variables, periods={"historical": years}, role=var)
             rel = Path(name) / f"{var}.tif"
             jobs.append(("monthly", futures[var], rel,
                          _tags(futures[var], baseline_paths[var], hist_path, fut_path)))

@@ -124,8 +124,8 @@ def test_netcdf_ascending_lat_and_360_longitudes(tmp_path):
     regional = open_climate(_nc(tmp_path / "r.nc", _lat_lon_ds(lat, np.array([200.5, 201.5]), t=values[:, :2])))
     np.testing.assert_allclose(regional["x"].values, [-159.5, -158.5])
     straddling = _nc(tmp_path / "s.nc", _lat_lon_ds(lat, np.array([178.5, 179.5, 180.5]), t=values[:, :3]))
-    with pytest.raises(InputError, match=r"s\.nc: 0–360 longitudes .* spans the 180° meridian"):
-        open_climate(straddling)
+    # a grid over the 180° meridian keeps its columns side by side (issue 15): x runs past 180
+    np.testing.assert_allclose(open_climate(straddling)["x"].values, [178.5, 179.5, 180.5])
 
 
 def test_netcdf_descending_lat_kept(tmp_path):
