@@ -105,6 +105,21 @@ class ReachResult:
 MAX_KERNEL_QUADRANT_CELLS = 50_000_000
 
 
+#: Grids above this many cells spread in float32 with ``precision="auto"``: a float64 run of
+#: 10,000 x 10,000 cells needs well over 8 GiB (occupancy snapshots, climate maps, FFT spectra).
+FLOAT32_ABOVE_CELLS = 25_000_000
+PRECISIONS = ("auto", "float64", "float32")
+
+
+def spread_dtype(precision: str, n_cells: int) -> np.dtype:
+    """The dtype of a reach run: ``precision`` as given, or for "auto" float32 above :data:`FLOAT32_ABOVE_CELLS`."""
+    if precision not in PRECISIONS:
+        raise InputError(f"precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
+    if precision == "auto":
+        return np.dtype(np.float32 if n_cells > FLOAT32_ABOVE_CELLS else np.float64)
+    return np.dtype(precision)
+
+
 def kernel_tail_tolerance(settings: DispersalSettings) -> float:
     """Tail mass at which the kernel is cut: the settings' value, or the float64 pressure floor.
 
@@ -201,7 +216,7 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
                    settings: DispersalSettings, now_year: float = 2020, step_years: float = 1.0,
                    rate: float = 1.0, persistence_years: float = 0.0, replicates: int = 0, seed: int = 0,
                    snapshot_every_years: float = 10.0, cell_area_km2=None, progress=None,
-                   fragmentation_band_deg: float | None = 1.0) -> ReachResult:
+                   fragmentation_band_deg: float | None = 1.0, precision: str = "auto") -> ReachResult:
     """Step habitat-gated dispersal from ``now_year`` through each future horizon.
 
     Parameters
@@ -231,6 +246,13 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         Width of the latitude bands of the summary's ``fragmentation_by_latitude`` (habitat
         amount and Jaeger's effective mesh size per band, habitat = fraction >= 0.5, land =
         cells with climate data; :func:`envelope.habitat.fragmentation_summary`). None: no table.
+    precision : {"auto", "float64", "float32"}, default="auto"
+        Precision of the spread (:class:`envelope.kernels.spread.SpreadOperator`) and of the
+        occupancy kept in memory. float32 halves the memory; its FFT round-off (~1e-7) needs
+        a pressure floor of 1e-5 instead of 1e-12, so colonisation pressure below 1e-5 per
+        step (the kernel's far tail) is dropped. "auto": float64 up to
+        :data:`FLOAT32_ABOVE_CELLS` cells, float32 above (where float64 would not fit in the
+        memory of a workstation). The summary reports ``precision`` and ``pressure_floor``.
 
     Returns
     -------
@@ -246,10 +268,11 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     if replicates < 0:
         raise InputError(f"--replicates must be >= 0, got {replicates}")
     geographic = is_geographic(now)
-    now_arr = np.asarray(now.values, dtype=np.float64)
-    maps = [now_arr] + [np.asarray(f.values, dtype=np.float64) for _, f in futures]
-    hab = habitat_array(habitat)
-    start_arr = occupied_start(start, now)
+    dtype = spread_dtype(precision, now.sizes["y"] * now.sizes["x"])
+    now_arr = np.asarray(now.values, dtype=dtype)
+    maps = [now_arr] + [np.asarray(f.values, dtype=dtype) for _, f in futures]
+    hab = habitat_array(habitat).astype(dtype, copy=False)
+    start_arr = occupied_start(start, now).astype(dtype, copy=False)
     valid = np.isfinite(now_arr)
     for _, f in futures:
         valid &= np.isfinite(np.asarray(f.values))
@@ -264,13 +287,13 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         draw = np.random.default_rng(np.random.SeedSequence(seed).spawn(replicates + 1)[-1])
         means = draw.uniform(lo, hi, size=replicates)
         built = [kernels_for_grid(now, settings, m, geographic) for m in means]
-        operators = [SpreadOperator(now_arr.shape, k, periodic_x=spans_globe(now)) for k, _ in built]
+        operators = [SpreadOperator(now_arr.shape, k, periodic_x=spans_globe(now), dtype=dtype) for k, _ in built]
         tail_mass = max(t for _, t in built)
     else:
         kernels, tail_mass = kernels_for_grid(now, settings, None, geographic)
-        operators = SpreadOperator(now_arr.shape, kernels, periodic_x=spans_globe(now))
+        operators = SpreadOperator(now_arr.shape, kernels, periodic_x=spans_globe(now), dtype=dtype)
 
-    climate = ClimatePath([now_year] + years, maps)
+    climate = ClimatePath([now_year] + years, maps, dtype=dtype)
     persistence_steps = int(math.ceil(persistence_years / step_years - 1e-9)) if persistence_years > 0 else 0
     end_year = years[-1]
     snaps = set(years)
@@ -282,7 +305,7 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     result = run_transient(operators, start_arr, hab, climate, threshold=threshold, start_year=now_year,
                            end_year=end_year, step_years=step_years, rate=rate,
                            persistence_steps=persistence_steps, rngs=rngs, snapshot_years=sorted(snaps),
-                           progress=progress)
+                           progress=progress, dtype=dtype)
 
     now_suit = valid & (now_arr >= threshold)
     fut_arr = maps[-1]
@@ -345,7 +368,8 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         "shape": settings.shape,
         "kernel_tail_tolerance": kernel_tail_tolerance(settings),
         "kernel_tail_mass_truncated": tail_mass,
-        "pressure_floor": float(DEFAULT_PRESSURE_FLOOR[np.dtype(np.float64)]),
+        "pressure_floor": float(DEFAULT_PRESSURE_FLOOR[dtype]),
+        "precision": dtype.name,
         "step_years": step_years,
         "rate": rate,
         "persistence_years": persistence_years,
@@ -359,8 +383,16 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     if fragmentation_band_deg is not None:
         summary["fragmentation_by_latitude"] = _fragmentation(now, hab, valid, fragmentation_band_deg)
     like = now.copy(data=np.zeros(now.shape, dtype=np.float32))
-    occupancy = {yr: like.copy(data=np.where(valid, occ, np.nan).astype(np.float32))
-                 for yr, occ in sorted(result.snapshots.items())}
+
+    def layer(values):
+        """A float32 layer on the grid, NaN off the valid cells; a float32 array is reused, not copied."""
+        values = values.astype(np.float32, copy=False)
+        values[~valid] = np.nan
+        return like.copy(data=values)
+
+    occupancy = {}
+    for yr in sorted(result.snapshots):
+        occupancy[yr] = layer(result.snapshots.pop(yr))
     arrival = like.copy(data=np.where(valid, result.arrival_year, np.nan).astype(np.float32))
     classes_da = now.copy(data=classes).astype(np.uint8)
     front = front_geojson(now, occupancy, level=0.5)

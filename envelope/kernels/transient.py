@@ -24,6 +24,7 @@ class ClimatePath:
 
     years: list
     maps: list  # 2-D float arrays (NaN = no climate data)
+    dtype: object = np.float64  # precision the maps are kept and interpolated in
 
     def __post_init__(self):
         if len(self.years) != len(self.maps) or len(self.years) == 0:
@@ -36,7 +37,7 @@ class ClimatePath:
         if any(b <= a for a, b in zip(years, years[1:])):
             raise InputError(f"climate path years must be distinct, got {sorted(self.years)}")
         self.years = years
-        self.maps = [np.asarray(self.maps[i], dtype=np.float64) for i in order]
+        self.maps = [np.asarray(self.maps[i], dtype=self.dtype) for i in order]
         shapes = {m.shape for m in self.maps}
         if len(shapes) != 1:
             raise InputError(f"suitability maps differ in shape: {sorted(shapes)}")
@@ -76,7 +77,7 @@ def step_years_list(start_year: float, end_year: float, step_years: float) -> li
 
 def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold, start_year, end_year,
                   step_years=1.0, rate=1.0, persistence_steps=0, rngs=None, snapshot_years=(),
-                  level=0.5, progress=None) -> TransientResult:
+                  level=0.5, progress=None, dtype=None) -> TransientResult:
     """Run the habitat-gated spread model from ``start_year`` to ``end_year``.
 
     Each step of ``step_years`` years: the climate is taken at the END of the step
@@ -108,6 +109,9 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
     level : float
         Occupancy level defining arrival (and the expansion front), default 0.5.
     progress : callable(step_index, n_steps), optional
+    dtype : numpy dtype, optional
+        Precision of the occupancy, habitat and snapshots (default: the operators' dtype).
+        float32 halves the memory of a large grid (see :class:`SpreadOperator`).
 
     Returns
     -------
@@ -115,11 +119,12 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
     """
     if not 0 <= threshold <= 1:
         raise InputError(f"threshold must lie in [0, 1], got {threshold!r}")
-    start = np.asarray(start, dtype=np.float64)
-    habitat = np.asarray(habitat, dtype=np.float64)
+    ops = operators if isinstance(operators, (list, tuple)) else [operators]
+    dtype = np.dtype(ops[0].dtype if dtype is None else dtype)
+    start = np.asarray(start, dtype=dtype)
+    habitat = np.asarray(habitat, dtype=dtype)
     if start.shape != habitat.shape:
         raise InputError(f"start occupancy has shape {start.shape}, habitat {habitat.shape}")
-    ops = operators if isinstance(operators, (list, tuple)) else [operators]
     n_rep = len(rngs) if rngs is not None else 0
     if len(ops) > 1 and len(ops) != n_rep:
         raise InputError(f"operators: {len(ops)} spread operators for {n_rep} replicates (rngs); "
@@ -133,16 +138,16 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
     arrival = np.full(start.shape, np.nan)
     arrival[start >= level] = start_year
     if n_rep:
-        occ = np.repeat((start >= 0.5)[None].astype(np.float64), n_rep, axis=0)
+        occ = np.repeat((start >= 0.5)[None].astype(dtype), n_rep, axis=0)
     else:
         occ = start.copy()
     n_tracks = n_rep if n_rep else 1
-    counters = ([np.zeros(start.shape, dtype=np.int64) for _ in range(n_tracks)]
+    counters = ([np.zeros(start.shape, dtype=np.int32) for _ in range(n_tracks)]
                 if persistence_steps > 0 else [None] * n_tracks)
 
     for i, year in enumerate(years):
         suit = climate.at(year)
-        suitable = np.where(np.isfinite(suit), suit >= threshold, False).astype(np.float64)
+        suitable = (suit >= threshold).astype(dtype)  # NaN compares False: no climate, not suitable
         if n_rep and (len(ops) > 1 or persistence_steps > 0):
             # replicates advanced one by one: each has its own kernel or its own lag counter
             for r in range(n_rep):
@@ -162,5 +167,5 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
         if progress is not None:
             progress(i + 1, len(years))
     final = occ.mean(axis=0) if n_rep else occ
-    return TransientResult(snapshots=snapshots, arrival_year=arrival, final=np.asarray(final, dtype=np.float64),
+    return TransientResult(snapshots=snapshots, arrival_year=arrival, final=np.asarray(final, dtype=dtype),
                            years=years, replicate_final=(occ >= 0.5) if n_rep else None)

@@ -2,6 +2,7 @@
 
 import hashlib
 import json
+import re
 import subprocess
 import sys
 import time
@@ -63,6 +64,9 @@ figures = false
     return path
 
 
+_FLOAT = re.compile(r"-?\d+\.\d+(?:[eE][-+]?\d+)?")
+
+
 def digests(run_dir):
     """SHA-256 of every result except the manifest and report (timestamps): raster pixels and
     tags, text files with the run folder's own path replaced (it differs between runs)."""
@@ -89,7 +93,10 @@ def digests(run_dir):
             X = np.random.default_rng(0).normal(size=(50, len(meta["variables"]))) * 5 + 10
             h.update(np.round(estimator.predict_proba(X)[:, 1], 12).tobytes())
         else:
-            h.update(p.read_text().replace(str(run_dir), "RUN").encode())
+            # numbers to 10 significant digits: the fit's BLAS sums may differ in the last bit
+            # between processes (thread count), which a threshold carries into every summary
+            text = p.read_text().replace(str(run_dir), "RUN")
+            h.update(_FLOAT.sub(lambda m: format(float(m.group(0)), ".10g"), text).encode())
         out[str(p.relative_to(run_dir))] = h.hexdigest()
     return out
 
