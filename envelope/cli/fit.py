@@ -59,10 +59,14 @@ def _rule(ctx, param, value):
 @record_years_opt
 @click.option("--thin-km", type=float, callback=positive_float, default=None,
               help="Spatially thin records to this minimum distance.")
+@click.option("--autocovariate", "autocovariate_km", type=float, callback=positive_float, default=None, metavar="KM",
+              help="Add a spatial autocovariate term: the inverse-distance-weighted share of occupied "
+                   "neighbour cells within KM (Augustin et al. 1996); its layer is written beside the model "
+                   "as <model>.autocovariate.tif and held at today's neighbourhood in projection.")
 @seed_opt
 @overwrite_opt
 def fit(presences, climate, out, summary, method, background, bias, bias_method, variables, blocks_km, folds, cv,
-        features, threshold_rule, max_uncertainty_m, record_years, thin_km, seed, overwrite):
+        features, threshold_rule, max_uncertainty_m, record_years, thin_km, autocovariate_km, seed, overwrite):
     """Fit and cross-validate a presence/background model, and save it.
 
     Cleans the records against the baseline climate (every dropped record is counted by
@@ -84,6 +88,7 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
             --bias-method weighted --out weighted.envm
       $ envelope fit --presences records.csv --climate baseline.tif --features linear,quadratic \\
             --out smooth.envm
+      $ envelope fit --presences records.csv --climate baseline.tif --autocovariate 25 --out spatial.envm
     """
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -97,7 +102,7 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
     options = FitOptions(method=method, background=background, variables=variables, blocks_km=blocks_km,
                          folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed, features=features,
                          max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
-                         thin_km=thin_km, bias_method=bias_method)
+                         thin_km=thin_km, bias_method=bias_method, autocovariate_km=autocovariate_km)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True) as bar:
         tasks = {}
@@ -157,6 +162,13 @@ def print_fit_summary(summary: dict, paths: dict) -> None:
         if effort and effort.get("coef") is not None:
             line += f" (log-effort slope {effort['coef']:.3f}, predicted at effort {effort['reference']:g})"
         console.print(line)
+    ac = (summary.get("residual_autocorrelation") or {}).get("classes") or []
+    if ac:
+        first = ac[0]
+        console.print(f"residual Moran's I, 0-{first['upper_km']:.0f} km: {first['morans_i']:.3f}"
+                      + (f" (autocovariate within {summary['autocovariate']['radius_km']:g} km)"
+                         if summary.get("autocovariate") else ""))
     for note in summary.get("notes", []):
         console.print(f"[yellow]note:[/] {note}")
-    console.print(f"model: {paths['model']}\nsummary: {paths['summary']}\nfolds: {paths['folds']}")
+    console.print(f"model: {paths['model']}\nsummary: {paths['summary']}\nfolds: {paths['folds']}"
+                  + (f"\nautocovariate: {paths['autocovariate']}" if "autocovariate" in paths else ""))
