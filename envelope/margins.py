@@ -22,7 +22,8 @@ from envelope.kernels.change import meridian_distance_m, weighted_quantile
 from envelope.kernels.margins import bootstrap_extreme_means, extreme_mean, poleward_sign
 
 __all__ = ["Period", "parse_periods", "select_species", "SPECIES_COLUMNS", "period_index", "well_recorded",
-           "cell_latitudes", "margin_statistics", "margin_shifts"]
+           "cell_latitudes", "margin_statistics", "period_cells", "cells_used", "margins_of_cells",
+           "margin_shifts"]
 
 #: Darwin Core columns that name the taxon of a record, tried in this order.
 SPECIES_COLUMNS = ("scientificName", "species")
@@ -190,6 +191,67 @@ def margin_statistics(latitudes, areas, *, n_cells: int, labels, percentile: flo
     return out
 
 
+def period_cells(records, grid: xr.DataArray, *, species: str, periods) -> dict:
+    """Per period: records of all taxa per cell (``counts``, shape (2, cells)), the flat indices of
+    the cells where ``species`` was recorded (``occupied``), each record's period and focal flag.
+
+    Raises InputError naming ``--periods`` when a period has no records, or none of the species.
+    """
+    from envelope.records import find_column, years_of_records
+
+    table = records.table
+    labels = [p.label for p in periods]
+    ny, nx = grid.sizes["y"], grid.sizes["x"]
+    flat = table["row"].to_numpy() * nx + table["col"].to_numpy()
+    if find_column(table, "year") is None and find_column(table, "eventDate") is None:
+        raise InputError(f"{table.attrs.get('source', 'records')}: no 'year' or 'eventDate' column; "
+                         "expected the year of each record to place it in a period")
+    k = period_index(years_of_records(table), periods)
+    focal = select_species(table, species)
+    counts = np.zeros((2, ny * nx))
+    occupied = []
+    for j, label in enumerate(labels):
+        in_period = k == j
+        if not in_period.any():
+            raise InputError(f"--periods: no records in period {label}; expected records of all taxa in both periods")
+        if not (in_period & focal).any():
+            raise InputError(f"--periods: no record of {species!r} in period {label}; expected the species in both periods")
+        counts[j] = np.bincount(flat[in_period], minlength=ny * nx)
+        occupied.append(np.unique(flat[in_period & focal]))
+    return {"labels": labels, "counts": counts, "occupied": occupied, "period": k, "focal": focal}
+
+
+def cells_used(counts, min_records: float, *, effort=None) -> tuple[np.ndarray, dict]:
+    """The cells recorded well in both periods (flat bool mask) and a description of the rule.
+
+    ``effort`` (an effort raster, (y, x) or (2, y, x)) replaces the record ``counts`` when given.
+    """
+    n = counts.shape[1]
+    if effort is not None:
+        e = np.asarray(effort, dtype=np.float64)
+        e = e.reshape((1 if e.ndim == 2 else e.shape[0], -1))
+        if e.shape[0] not in (1, 2) or e.shape[1] != n:
+            raise InputError(f"--effort: found {e.shape[0]} layers of {e.shape[1]} cells; expected one (both "
+                             f"periods) or two (one each) of the grid's {n} cells")
+        use = well_recorded(np.broadcast_to(e, (2, n)), min_records)
+        source = "effort raster"
+    else:
+        use = well_recorded(counts, min_records)
+        source = "records of all taxa"
+    return use, {"applied": True, "source": source, "min_records": float(min_records),
+                 "n_cells_well_recorded": int(use.sum())}
+
+
+def margins_of_cells(grid: xr.DataArray, cell_sets, **statistics) -> dict:
+    """:func:`margin_statistics` of two sets of flat cell indices of ``grid`` (true areas, geodetic latitudes)."""
+    from envelope.grids import cell_area_km2
+
+    nx = grid.sizes["x"]
+    area = np.asarray(cell_area_km2(grid).values, dtype=np.float64).ravel()
+    lats = [cell_latitudes(grid, c // nx, c % nx) for c in cell_sets]
+    return margin_statistics(lats, [area[c] for c in cell_sets], **statistics)
+
+
 def margin_shifts(records, grid: xr.DataArray, *, species: str, periods, n_cells: int = 10,
                   min_records: float = 5, effort=None, effort_correction: bool = True, bootstrap: int = 1000,
                   seed: int = 0, elevation=None, percentile: float = 95.0) -> dict:
@@ -226,51 +288,17 @@ def margin_shifts(records, grid: xr.DataArray, *, species: str, periods, n_cells
     -------
     dict, JSON-ready; keys documented in docs/margins.md.
     """
-    from envelope.grids import cell_area_km2
-    from envelope.records import find_column, years_of_records
-
-    table = records.table
-    labels = [p.label for p in periods]
+    cells = period_cells(records, grid, species=species, periods=periods)
+    labels, counts, occupied, k, focal = (cells[key] for key in ("labels", "counts", "occupied", "period", "focal"))
     ny, nx = grid.sizes["y"], grid.sizes["x"]
-    flat = table["row"].to_numpy() * nx + table["col"].to_numpy()
-    if find_column(table, "year") is None and find_column(table, "eventDate") is None:
-        raise InputError(f"{table.attrs.get('source', 'records')}: no 'year' or 'eventDate' column; "
-                         "expected the year of each record to place it in a period")
-    k = period_index(years_of_records(table), periods)
-    focal = select_species(table, species)
-    counts = np.zeros((2, ny * nx))
-    occupied = []
-    for j, label in enumerate(labels):
-        in_period = k == j
-        if not in_period.any():
-            raise InputError(f"--periods: no records in period {label}; expected records of all taxa in both periods")
-        if not (in_period & focal).any():
-            raise InputError(f"--periods: no record of {species!r} in period {label}; expected the species in both periods")
-        counts[j] = np.bincount(flat[in_period], minlength=ny * nx)
-        occupied.append(np.unique(flat[in_period & focal]))
-
     if not effort_correction:
         use = np.ones(ny * nx, dtype=bool)
         correction = {"applied": False}
     else:
-        if effort is not None:
-            e = np.asarray(effort, dtype=np.float64)
-            e = e.reshape((1 if e.ndim == 2 else e.shape[0], ny * nx))
-            if e.shape[0] not in (1, 2):
-                raise InputError(f"--effort: found {e.shape[0]} layers; expected one (both periods) or two (one each)")
-            use = well_recorded(np.broadcast_to(e, (2, ny * nx)), min_records)
-            source = "effort raster"
-        else:
-            use = well_recorded(counts, min_records)
-            source = "records of all taxa"
-        correction = {"applied": True, "source": source, "min_records": float(min_records),
-                      "n_cells_well_recorded": int(use.sum())}
-    used = [cells[use[cells]] for cells in occupied]
-    rows_cols = [(c // nx, c % nx) for c in used]
-    area = np.asarray(cell_area_km2(grid).values, dtype=np.float64).ravel()
-    lats = [cell_latitudes(grid, r, c) for r, c in rows_cols]
-    summary = margin_statistics(lats, [area[c] for c in used], n_cells=n_cells, labels=labels,
-                                percentile=percentile, bootstrap=bootstrap, seed=seed)
+        use, correction = cells_used(counts, min_records, effort=effort)
+    used = [occ[use[occ]] for occ in occupied]
+    summary = margins_of_cells(grid, used, n_cells=n_cells, labels=labels, percentile=percentile,
+                               bootstrap=bootstrap, seed=seed)
     summary = {"species": species, **summary, "effort_correction": correction,
                "records": {"read": int(records.n_read), "kept": int(records.n_kept),
                            "in_period": {label: int(np.count_nonzero(k == j)) for j, label in enumerate(labels)},
