@@ -387,7 +387,7 @@ def fit_options_from_study(study, method: str) -> FitOptions:
                       variables=list(study.climate.variables) if study.climate.variables else None,
                       blocks_km=m.blocks_km, folds=m.folds, cv=m.cv, threshold_rule=m.threshold_rule, seed=m.seed,
                       bias_method=m.bias_method, features=m.features,
-                      autocovariate_km=getattr(m, "autocovariate_km", None),
+                      autocovariate_km=m.autocovariate_km,
                       max_uncertainty_m=r.max_uncertainty_m, record_years=r.years, thin_km=r.thin_km or None,
                       x_column=r.x_column, y_column=r.y_column, crs=r.crs)
 

@@ -80,6 +80,7 @@ class ModelSection:
     threshold_rule: str | float = "max-sss"
     seed: int = 0
     features: str | tuple[str, ...] = "cv"
+    autocovariate_km: float | None = None
 
 
 @dataclass(frozen=True)
@@ -155,6 +156,7 @@ class Study:
     dispersal: DispersalSection | None
     outputs: OutputsSection
     compute: ComputeSection
+    margins: object = None    # envelope.study.observed.MarginsSection, from [margins]
 
     @property
     def name(self) -> str:
@@ -320,12 +322,12 @@ def _normalise(path: Path) -> str:
 
 
 # --------------------------------------------------------------------------- sections
-_TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispersal", "outputs", "compute")
+_TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispersal", "outputs", "compute", "margins")
 _STUDY = ("name", "question", "species")
 _RECORDS = ("path", "x_column", "y_column", "crs", "max_uncertainty_m", "years", "thin_km")
 _CLIMATE = ("baseline", "variables", "now_year")
 _MODEL = ("methods", "background", "bias", "bias_method", "blocks_km", "folds", "cv", "threshold_rule", "seed",
-          "features")
+          "features", "autocovariate_km")
 _SCENARIOS = ("table", "grid", "agreement")
 _HABITAT = ("path", "classes", "align")
 _DISPERSAL = ("kernel", "mean_distance_km", "shape", "step_years", "rate", "persistence_years",
@@ -436,6 +438,8 @@ def _model(c: _Checker, doc) -> ModelSection:
         threshold_rule=rule,
         seed=c.number("model.seed", t.get("seed", 0), integer=True, ge=0),
         features=features,
+        autocovariate_km=(None if t.get("autocovariate_km") is None
+                          else float(c.number("model.autocovariate_km", t["autocovariate_km"], gt=0))),
     )
 
 
@@ -629,5 +633,7 @@ def load_study(path) -> Study:
     dispersal = _dispersal(c, doc, outputs.reach)
     if dispersal is not None and dispersal.start is None:
         dispersal = replace(dispersal, start=records.path)
+    from envelope.study.observed import margins_section
+
     return Study(file, study, records, climate, model, scenario_set, scenarios, habitat, dispersal,
-                 outputs, _compute(c, doc))
+                 outputs, _compute(c, doc), margins_section(c, doc))
