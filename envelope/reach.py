@@ -276,7 +276,13 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     valid = np.isfinite(now_arr)
     for _, f in futures:
         valid &= np.isfinite(np.asarray(f.values))
-    areas = np.asarray(_areas(now).values if cell_area_km2 is None else cell_area_km2, dtype=np.float64)
+    if cell_area_km2 is not None:
+        areas = np.asarray(cell_area_km2, dtype=np.float64)
+    elif geographic and now.sizes["x"] > 1:  # areas depend on the row only: one column, broadcast
+        column = np.asarray(_areas(now.isel(x=slice(0, 2))).values, dtype=np.float64)[:, :1]
+        areas = np.broadcast_to(column, now.shape)
+    else:
+        areas = np.asarray(_areas(now).values, dtype=np.float64)
 
     rngs = None
     if replicates:
@@ -449,21 +455,25 @@ def front_advance_summary(lat, before, after, valid, *, north: bool = True, leve
     from envelope.kernels.change import meridian_distance_m
     from envelope.kernels.front import front_shift
 
-    position = meridian_distance_m(np.asarray(lat, dtype=np.float64)) / 1000.0
-    if not north:
-        position = -position
-    moved = front_shift(np.asarray(before, dtype=np.float64), np.asarray(after, dtype=np.float64), position,
-                        level=level, valid=valid)
+    lat = np.asarray(lat, dtype=np.float64)
+    if lat.ndim == 2 and lat.strides[1] == 0:  # one latitude per row (a broadcast view): compute per row
+        position = np.broadcast_to(meridian_distance_m(lat[:, :1]) / 1000.0 * (1.0 if north else -1.0), lat.shape)
+    else:
+        position = meridian_distance_m(lat) / 1000.0 * (1.0 if north else -1.0)
+    moved = front_shift(np.asarray(before), np.asarray(after), position, level=level, valid=valid)
     return {"front_advance_km": moved.shift_km if moved.n_columns else None, "front_level": level,
             "front_columns_used": moved.n_columns, "front_columns_total": moved.n_columns_total}
 
 
 def cell_lonlat(grid: xr.DataArray):
     """Latitude and longitude of every cell centre (2-D), via pyproj for projected grids."""
-    xs, ys = np.meshgrid(np.asarray(grid["x"].values), np.asarray(grid["y"].values))
+    x, y = np.asarray(grid["x"].values, dtype=np.float64), np.asarray(grid["y"].values, dtype=np.float64)
     crs = grid.rio.crs
     if crs is None or crs.is_geographic:
-        return ys, xs
+        # read-only broadcast views: a large grid gets no two full coordinate arrays
+        shape = (y.size, x.size)
+        return np.broadcast_to(y[:, None], shape), np.broadcast_to(x[None, :], shape)
+    xs, ys = np.meshgrid(x, y)
     import pyproj
 
     tr = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True)
@@ -476,6 +486,35 @@ def _unwrap_degrees(lon: np.ndarray) -> np.ndarray:
     if lon.size < 2:
         return lon
     return np.rad2deg(np.unwrap(np.deg2rad(lon)))
+
+
+def _crossing_window(values, level):
+    """``((r0, r1), (c0, c1))``: the rows and columns (with one cell of margin) where
+    neighbouring cells straddle ``level`` (NaN read as 0), or None when none do. Contouring
+    only that window gives the same lines as the whole grid, in a fraction of the memory."""
+    above = np.greater_equal(values, level)  # NaN compares False, as 0 would
+    rows = np.zeros(above.shape[0], dtype=bool)
+    cols = np.zeros(above.shape[1], dtype=bool)
+    if above.shape[1] > 1:
+        across = above[:, 1:] != above[:, :-1]
+        rows |= across.any(axis=1)
+        hit = across.any(axis=0)
+        cols[:-1] |= hit
+        cols[1:] |= hit
+        del across
+    if above.shape[0] > 1:
+        down = above[1:] != above[:-1]
+        hit = down.any(axis=1)
+        rows[:-1] |= hit
+        rows[1:] |= hit
+        cols |= down.any(axis=0)
+        del down
+    if not rows.any():
+        return None
+    r = np.flatnonzero(rows)
+    c = np.flatnonzero(cols) if cols.any() else np.arange(above.shape[1])
+    return ((max(int(r[0]) - 1, 0), min(int(r[-1]) + 2, above.shape[0])),
+            (max(int(c[0]) - 1, 0), min(int(c[-1]) + 2, above.shape[1])))
 
 
 def front_geojson(grid: xr.DataArray, occupancy: dict, level: float = 0.5) -> dict:
@@ -496,11 +535,18 @@ def front_geojson(grid: xr.DataArray, occupancy: dict, level: float = 0.5) -> di
         to_lonlat = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True).transform
     features = []
     for year, occ in sorted(occupancy.items()):
-        z = np.where(np.isfinite(occ.values), occ.values, 0.0).astype(np.float64)
-        gen = contourpy.contour_generator(z=z, line_type=contourpy.LineType.Separate)
+        window = _crossing_window(occ.values, level)
         lines = []
+        if window is None:
+            features.append({"type": "Feature", "properties": {"year": float(year), "level": level},
+                             "geometry": {"type": "MultiLineString", "coordinates": lines}})
+            continue
+        (r0, r1), (c0, c1) = window
+        sub = occ.values[r0:r1, c0:c1]
+        z = np.where(np.isfinite(sub), sub, 0.0).astype(np.float64)
+        gen = contourpy.contour_generator(z=z, line_type=contourpy.LineType.Separate)
         for seg in gen.lines(level):
-            cols, rows = seg[:, 0] + 0.5, seg[:, 1] + 0.5
+            cols, rows = seg[:, 0] + 0.5 + c0, seg[:, 1] + 0.5 + r0
             x, y = transform * (cols, rows)
             if to_lonlat is not None:
                 x, y = to_lonlat(x, y)

@@ -365,7 +365,7 @@ def canonical_name(name) -> str:
     ``"aus bus var. cus"``. Any other name is compared whole, lower-cased, with runs of
     white space made single. Hybrid signs (×) are kept. Empty names give "".
     """
-    if name is None or (isinstance(name, float) and np.isnan(name)):
+    if name is None or name is pd.NA or (isinstance(name, float) and np.isnan(name)):
         return ""
     words = str(name).replace("\u00d7", " \u00d7 ").split()
     if not words:
@@ -489,6 +489,7 @@ def clean_occurrences(
     species: str | None = None,
     absences: bool = False,
     species_option: str = "--species",
+    all_taxa: bool = False,
 ) -> Records:
     """Clean occurrence records against a grid and count every dropped record by reason.
 
@@ -497,7 +498,9 @@ def clean_occurrences(
 
     ``other_taxon``
         Not of the taxon ``species`` (:func:`select_taxon`). Without ``species`` the records
-        must name a single taxon, or the cleaning stops with the taxa and their counts.
+        must name a single taxon, or the cleaning stops with the taxa and their counts;
+        ``all_taxa=True`` keeps every taxon (records of all taxa as a measure of recording
+        effort, as ``envelope margins`` uses them).
     ``absent``
         ``occurrenceStatus`` is not in ``keep_status``; "absent", "0", "false", "no" mean
         absent, "present", "1", "true", "yes" and an empty status mean present.
@@ -567,7 +570,10 @@ def clean_occurrences(
         mask = (code == 0) & np.asarray(mask, dtype=bool)
         code[mask] = DROP_REASONS.index(reason) + 1
 
-    taxon_mask, taxa = select_taxon(table, species, source=source, option=species_option)
+    if all_taxa:
+        taxon_mask, taxa = np.ones(n, dtype=bool), None
+    else:
+        taxon_mask, taxa = select_taxon(table, species, source=source, option=species_option)
     drop(~taxon_mask, "other_taxon")
     if absences:
         keep_status = tuple(keep_status) + ("absent",)

@@ -65,11 +65,15 @@ def _rule(ctx, param, value):
 @region_opt(help="Study region (GeoPackage, GeoJSON or shapefile, any CRS): background is drawn inside it only.")
 @click.option("--background-buffer-km", type=float, callback=positive_float, default=None, metavar="KM",
               help="Draw background only within KM of a record.")
+@click.option("--autocovariate", "autocovariate_km", type=float, callback=positive_float, default=None, metavar="KM",
+              help="Add a spatial autocovariate term: the inverse-distance-weighted share of occupied "
+                   "neighbour cells within KM (Augustin et al. 1996); its layer is written beside the model "
+                   "as <model>.autocovariate.tif and held at today's neighbourhood in projection.")
 @seed_opt
 @overwrite_opt
 def fit(presences, climate, out, summary, method, background, bias, bias_method, variables, blocks_km, folds, cv,
         features, threshold_rule, max_uncertainty_m, record_years, thin_km, species, absences, region,
-        background_buffer_km, seed, overwrite):
+        background_buffer_km, autocovariate_km, seed, overwrite):
     """Fit and cross-validate a presence/background model, and save it.
 
     Cleans the records against the baseline climate (every dropped record is counted by
@@ -100,6 +104,7 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
             --region study_area.gpkg --background-buffer-km 200 --out model.envm
       $ envelope fit --presences surveys.csv --absences --method brt --climate bio1=bio1.tif \\
             --climate bio12=bio12.tif --out pa.envm
+      $ envelope fit --presences records.csv --climate baseline.tif --autocovariate 25 --out spatial.envm
     """
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -117,7 +122,7 @@ def fit(presences, climate, out, summary, method, background, bias, bias_method,
                          folds=folds, cv=cv, threshold_rule=threshold_rule, seed=seed, features=features,
                          max_uncertainty_m=max_uncertainty_m, record_years=record_years_value(record_years),
                          thin_km=thin_km, bias_method=bias_method, species=species, absences=absences,
-                         background_buffer_km=background_buffer_km)
+                         background_buffer_km=background_buffer_km, autocovariate_km=autocovariate_km)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True) as bar:
         tasks = {}
@@ -178,6 +183,13 @@ def print_fit_summary(summary: dict, paths: dict) -> None:
         if effort and effort.get("coef") is not None:
             line += f" (log-effort slope {effort['coef']:.3f}, predicted at effort {effort['reference']:g})"
         console.print(line)
+    ac = (summary.get("residual_autocorrelation") or {}).get("classes") or []
+    if ac:
+        first = ac[0]
+        console.print(f"residual Moran's I, 0-{first['upper_km']:.0f} km: {first['morans_i']:.3f}"
+                      + (f" (autocovariate within {summary['autocovariate']['radius_km']:g} km)"
+                         if summary.get("autocovariate") else ""))
     for note in summary.get("notes", []):
         console.print(f"[yellow]note:[/] {note}")
-    console.print(f"model: {paths['model']}\nsummary: {paths['summary']}\nfolds: {paths['folds']}")
+    console.print(f"model: {paths['model']}\nsummary: {paths['summary']}\nfolds: {paths['folds']}"
+                  + (f"\nautocovariate: {paths['autocovariate']}" if "autocovariate" in paths else ""))

@@ -26,6 +26,8 @@ COMMANDS = {
     "run": "envelope.cli.run:run",
     "target": "envelope.cli.target:target",
     "fragmentation": "envelope.cli.fragmentation:fragmentation",
+    "margins": "envelope.cli.margins:margins",
+    "hindcast": "envelope.cli.hindcast:hindcast",
 }
 
 SUMMARIES = {
@@ -43,6 +45,8 @@ SUMMARIES = {
     "run": "Run a whole study from a TOML study file.",
     "target": "Rank restoration patches by the reachable range they add.",
     "fragmentation": "Habitat amount and effective mesh size by latitude band.",
+    "margins": "Observed range-margin shifts between two recording periods.",
+    "hindcast": "Fit on one recording period, test on the other.",
 }
 
 

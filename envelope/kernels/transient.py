@@ -135,7 +135,8 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
     years = step_years_list(float(start_year), float(end_year), float(step_years))
     wanted = sorted({float(y) for y in snapshot_years} | {float(end_year)})
     snapshots = {}
-    arrival = np.full(start.shape, np.nan)
+    # float32 holds step years exactly to ~1e-4 year: enough for arrival maps, half the memory
+    arrival = np.full(start.shape, np.nan, dtype=np.float32 if dtype == np.float32 else np.float64)
     arrival[start >= level] = start_year
     if n_rep:
         occ = np.repeat((start >= 0.5)[None].astype(dtype), n_rep, axis=0)

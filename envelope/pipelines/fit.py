@@ -31,6 +31,7 @@ class FitResult:
     summary: dict
     per_fold: pd.DataFrame
     warnings: list = field(default_factory=list)
+    autocovariate: object = None        # the (y, x) autocovariate layer of the fit, with --autocovariate
 
 
 
@@ -90,6 +91,7 @@ class FitOptions:
     species: str | None = None          # taxon to keep (records.species)
     absences: bool = False              # keep surveyed absences (records.absences)
     species_option: str = "--species"   # how messages name the species setting
+    autocovariate_km: float | None = None  # neighbourhood radius of the spatial autocovariate term
 
 
 def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, mask=None,
@@ -155,6 +157,13 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         notes.append(f"{len(absences)} surveyed absences were kept but not used: method {opt.method!r} is fitted "
                      f"to presences and background; {', '.join(PRESENCE_ABSENCE_METHODS)} use absences "
                      "(or use them to test the model with envelope evaluate)")
+    autocov_layer = None
+    if opt.autocovariate_km:
+        from envelope.autocovariate import autocovariate_layer, with_autocovariate
+
+        autocov_layer = autocovariate_layer(records.occupancy(climate), opt.autocovariate_km, grid=climate)
+        climate = with_autocovariate(climate, autocov_layer)
+        names, units = names + [str(autocov_layer.name)], units + ["1"]
     bias_method = resolve_bias_method(opt.bias_method, opt.method, bias is not None)
     if bias_method == "covariate":
         records, unrecorded = drop_unrecorded(records, bias, climate)
@@ -256,6 +265,9 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     importance = permutation_importance_auc(estimator, X, y, names, repeats=opt.permutation_repeats,
                                             seed=opt.seed)
     curves = response_curves(estimator, X_bg, names, n_points=50)
+    from envelope.autocovariate import residual_correlogram
+
+    residual_ac = residual_correlogram(px, py, y - scores, grid=climate, seed=opt.seed)
     curves_json = {k: {"value": np.asarray(v["value"]).tolist(), "suitability": np.asarray(v["suitability"]).tolist()}
                    for k, v in curves.items()}
     report("diagnostics", 1, 1)
@@ -271,6 +283,11 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
     background_info, background_notes = drawn.describe(estimator, X_bg, names, collinear_r=COLLINEAR_R)
     notes.extend(background_notes)
     transform = climate.rio.transform()
+    autocov_info = None if autocov_layer is None else {
+        "variable": str(autocov_layer.name), "radius_km": float(opt.autocovariate_km),
+        "weights": "inverse distance, share of occupied neighbour cells (Augustin et al. 1996)",
+        "projection": "held at today's neighbourhood: project with the layer written beside the model "
+                      "(envelope.autocovariate.autocovariate_for_projection)"}
     metadata = {
         "bias_correction": drawn.bias_correction,
         "background": background_info,
@@ -279,6 +296,7 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         "cv": cv_block,
         "mess_reference": reference.to_dict(),
         "feature_classes": feature_classes_report(estimator),
+        "autocovariate": autocov_info,
         "grid": {"crs": crs.to_string() if crs is not None else None,
                  "resolution": [abs(transform.a), abs(transform.e)],
                  "shape": [climate.sizes["y"], climate.sizes["x"]]},
@@ -306,10 +324,13 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         "permutation_importance": importance,
         "response_curves": curves_json,
         "training_range": {n: list(r) for n, r in ranges.items()},
+        "residual_autocorrelation": residual_ac,
+        "autocovariate": autocov_info,
         "notes": notes,
         "seed": opt.seed,
     }
-    return FitResult(estimator=estimator, metadata=metadata, summary=summary, per_fold=per_fold, warnings=notes)
+    return FitResult(estimator=estimator, metadata=metadata, summary=summary, per_fold=per_fold, warnings=notes,
+                     autocovariate=autocov_layer)
 
 
 
@@ -384,7 +405,9 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
     """Write the model file, the summary JSON and the per-fold CSV, all or nothing.
 
     The summary defaults to ``<model stem>.fit.json`` beside the model; the per-fold table is
-    ``<summary stem>.folds.csv`` beside the summary.
+    ``<summary stem>.folds.csv`` beside the summary. A fit with the autocovariate term also
+    writes its layer as ``<model stem>.autocovariate.tif`` (:func:`autocovariate_path`), the
+    layer a projection holds at today's neighbourhood.
     """
     import json
 
@@ -392,14 +415,28 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
     from envelope.io.modelfile import save_model
 
     model_path, summary_path, folds_path = fit_output_paths(model_path, summary_path).values()
-    for p in (model_path, summary_path, folds_path):
+    extra = [] if result.autocovariate is None else [autocovariate_path(model_path)]
+    for p in (model_path, summary_path, folds_path, *extra):
         check_writable(p, overwrite)
-    with atomic_outputs([summary_path, folds_path], overwrite=overwrite) as (tmp_summary, tmp_folds):
+    with atomic_outputs([summary_path, folds_path, *extra], overwrite=overwrite) as (tmp_summary, tmp_folds, *tmp_extra):
         tmp_summary.write_text(json_text(result.summary))
         result.per_fold.to_csv(tmp_folds, index=False)
+        if extra:
+            from envelope.io.writing import write_raster
+
+            write_raster(result.autocovariate, tmp_extra[0], overwrite=True)
         # the model is written last inside the block: if it fails, summary and folds vanish too
         save_model(model_path, result.estimator, result.metadata, overwrite=overwrite)
-    return {"model": str(model_path), "summary": str(summary_path), "folds": str(folds_path)}
+    paths = {"model": str(model_path), "summary": str(summary_path), "folds": str(folds_path)}
+    if extra:
+        paths["autocovariate"] = str(extra[0])
+    return paths
+
+
+def autocovariate_path(model_path) -> Path:
+    """Where a model's autocovariate layer is kept: ``<model stem>.autocovariate.tif`` beside it."""
+    model_path = Path(model_path)
+    return model_path.with_name(model_path.stem + ".autocovariate.tif")
 
 
 def fit_options_from_study(study, method: str) -> FitOptions:
@@ -409,6 +446,7 @@ def fit_options_from_study(study, method: str) -> FitOptions:
                       variables=list(study.climate.variables) if study.climate.variables else None,
                       blocks_km=m.blocks_km, folds=m.folds, cv=m.cv, threshold_rule=m.threshold_rule, seed=m.seed,
                       bias_method=m.bias_method, features=m.features,
+                      autocovariate_km=m.autocovariate_km,
                       max_uncertainty_m=r.max_uncertainty_m, record_years=r.years, thin_km=r.thin_km or None,
                       x_column=r.x_column, y_column=r.y_column, crs=r.crs, species=r.species or None,
                       absences=r.absences, species_option="records.species",

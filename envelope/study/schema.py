@@ -87,6 +87,7 @@ class ModelSection:
     seed: int = 0
     features: str | tuple[str, ...] = "cv"
     background_buffer_km: float | None = None
+    autocovariate_km: float | None = None
 
 
 @dataclass(frozen=True)
@@ -172,6 +173,7 @@ class Study:
     outputs: OutputsSection
     compute: ComputeSection
     region: RegionSection | None = None
+    margins: object = None    # envelope.study.observed.MarginsSection, from [margins]
 
     @property
     def name(self) -> str:
@@ -337,12 +339,13 @@ def _normalise(path: Path) -> str:
 
 
 # --------------------------------------------------------------------------- sections
-_TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispersal", "outputs", "compute", "region")
+_TOP = ("study", "records", "climate", "model", "scenarios", "habitat", "dispersal", "outputs", "compute", "region",
+        "margins")
 _STUDY = ("name", "question", "species")
 _RECORDS = ("path", "x_column", "y_column", "crs", "max_uncertainty_m", "years", "thin_km", "species", "absences")
 _CLIMATE = ("baseline", "layers", "variables", "now_year")
 _MODEL = ("methods", "background", "bias", "bias_method", "blocks_km", "folds", "cv", "threshold_rule", "seed",
-          "features", "background_buffer_km")
+          "features", "background_buffer_km", "autocovariate_km")
 _REGION = ("path", "clip")
 _LAYER = ("path", "band")
 _SCENARIOS = ("table", "grid", "agreement")
@@ -507,6 +510,8 @@ def _model(c: _Checker, doc) -> ModelSection:
         features=features,
         background_buffer_km=(None if t.get("background_buffer_km") is None else
                               float(c.number("model.background_buffer_km", t["background_buffer_km"], gt=0))),
+        autocovariate_km=(None if t.get("autocovariate_km") is None
+                          else float(c.number("model.autocovariate_km", t["autocovariate_km"], gt=0))),
     )
 
 
@@ -708,5 +713,7 @@ def load_study(path) -> Study:
     dispersal = _dispersal(c, doc, outputs.reach)
     if dispersal is not None and dispersal.start is None:
         dispersal = replace(dispersal, start=records.path)
+    from envelope.study.observed import margins_section
+
     return Study(file, study, records, climate, model, scenario_set, scenarios, habitat, dispersal,
-                 outputs, _compute(c, doc), _region(c, doc))
+                 outputs, _compute(c, doc), _region(c, doc), margins_section(c, doc))
