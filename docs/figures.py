@@ -270,7 +270,7 @@ def demo_settings(run: Demo) -> str:
         f"- records with coordinate uncertainty up to {s.records.max_uncertainty_m:,.0f} m, from "
         f"{s.records.years[0]}–{s.records.years[1]};",
         f"- {len(s.climate.variables)} climate variables ({', '.join(f'`{v}`' for v in s.climate.variables)});",
-        f"- a {', '.join(s.model.methods)} model with {s.model.background:,} background cells{bias};",
+        f"- a {', '.join(f'`{m}`' for m in s.model.methods)} model with {s.model.background:,} background cells{bias};",
         f"- {s.model.folds}-fold spatial cross-validation in {s.model.blocks_km:g} km blocks, and "
         f"{RULES.get(s.model.threshold_rule, s.model.threshold_rule)} (`{s.model.threshold_rule}`);",
         f"- {len(scen)} scenario grids ({scen['pathway'].nunique()} pathways × {scen['climate_model'].nunique()} "
@@ -290,7 +290,7 @@ def rerun_steps(run: Demo) -> str:
 @block("report-figures")
 def report_figures(run: Demo) -> str:
     n_fig = run.layout.report.read_text(encoding="utf-8").count("<figure ")
-    return f"The report holds {n_fig} figures.\n"
+    return f"The report holds {n_fig} figures."
 
 
 @block("records")
@@ -593,8 +593,8 @@ def arrival(run: Demo) -> str:
     years = open_layer(files["arrival"]).values
     classes = open_layer(files["classes"], categorical=True).values
     reached = years[(classes == 3) & np.isfinite(years)]  # reach class 3: gained_reached
-    return (f"Under `high`, the reached gains were mostly reached late: the median arrival year over their cells "
-            f"is {np.median(reached):.0f}.")
+    return (f"Under `high`, the median arrival year over the cells of reached gains is {np.median(reached):.0f} "
+            f"(the last horizon is {run.last_horizon}).")
 
 
 @block("front-years")
@@ -607,14 +607,15 @@ def front_years(run: Demo) -> str:
 
 @block("distance-effect")
 def distance_effect(run: Demo) -> str:
-    rows = []
+    rows, largest = [], 0.0
     for p in run.pathways:
         t = run.reach_runs(p).groupby("distance_km")["reached_share_of_gain"].median()
         rows.append(f"| {p} | " + " | ".join(pct(v) for v in t.values) + " |")
-        dists = t.index
+        dists, largest = t.index, max(largest, t.max())
+    verdict = "\nMost of the gain stays out of reach at every distance tried.\n" if largest < 0.5 else ""
     return ("| reached share of the gain (% of the gained area; median over climate models) | "
             + " | ".join(f"{d:g} km per step" for d in dists) + " |\n" + "|---" * (len(dists) + 1) + "|\n"
-            + "\n".join(rows) + "\n")
+            + "\n".join(rows) + "\n" + verdict)
 
 
 # ---------------------------------------------------------------------- user guide
