@@ -637,7 +637,8 @@ def guide_fit(run: Demo) -> str:
 @block("guide-inspect")
 def guide_inspect(run: Demo) -> str:
     text = re.sub(r"created \S+", "created <date>", run.commands["inspect"].stdout)
-    text = "\n".join("…" if ln.startswith(("  records_dropped:", "  software:")) else ln for ln in text.splitlines())
+    lines = ["…" if ln.startswith(("  records_dropped:", "  software:")) else ln for ln in text.splitlines()]
+    text = "\n".join(ln for i, ln in enumerate(lines) if not (ln == "…" and i and lines[i - 1] == "…"))
     return excerpt(run.commands["inspect"], text)
 
 
