@@ -10,8 +10,7 @@ span (a number or a sentence inside prose) when it does not. Each name has one f
 below, registered with :func:`block`; it reads the run folder through
 :class:`envelope.study.layout.RunLayout` (never a hard-coded path) and returns the text.
 The user guide's command excerpts are the commands' own output: :meth:`Demo.commands`
-runs them with click's test runner on the demo data, taking today's and the future
-suitability from the run. :func:`rewrite` puts the texts in place;
+runs them with click's test runner on the demo data, with the demo study's settings. :func:`rewrite` puts the texts in place;
 tests/study/test_report_render.py checks the committed pages against a fresh run.
 """
 
@@ -34,7 +33,7 @@ import pandas as pd
 
 DOCS = Path(__file__).resolve().parent
 PAGES = ("tutorial.md", "user-guide.md")
-_BLOCK = re.compile(r"(<!-- generated: (?P<name>[a-z0-9-]+) -->\n?)(?P<body>.*?)(<!-- end generated -->)", re.S)
+BLOCK = re.compile(r"(<!-- generated: (?P<name>[a-z0-9-]+) -->\n?)(?P<body>.*?)(<!-- end generated -->)", re.S)
 #: Terminal width the console excerpts are drawn at (rich reads COLUMNS when not on a terminal).
 COLUMNS = "120"
 #: The counterfactual reach run of a study (envelope.study.runner).
@@ -99,7 +98,10 @@ def console(fn, *args):
         with contextlib.redirect_stdout(out):
             fn(*args)
     finally:
-        os.environ.pop("COLUMNS") if old is None else os.environ.__setitem__("COLUMNS", old)
+        if old is None:
+            del os.environ["COLUMNS"]
+        else:
+            os.environ["COLUMNS"] = old
     return "\n".join(line.rstrip() for line in out.getvalue().splitlines())
 
 
@@ -713,7 +715,7 @@ def rewrite(text: str, generated: dict) -> str:
         if name not in generated:
             raise KeyError(f"docs block {name!r} has no generator; known: {sorted(generated)}")
         return m.group(1) + generated[name] + m.group(4)
-    return _BLOCK.sub(put, text)
+    return BLOCK.sub(put, text)
 
 
 def run_demo(out) -> Path:
