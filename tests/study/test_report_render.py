@@ -119,7 +119,11 @@ def test_tutorial_figures_match_a_fresh_run(demo_run):
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     generated = mod.blocks(demo_run)
+    used = set()
     for page in mod.PAGES:
         text = (ROOT / "docs" / page).read_text(encoding="utf-8")
         assert "<!-- generated:" in text
+        used |= {m.group("name") for m in mod.BLOCK.finditer(text)}
         assert mod.rewrite(text, generated) == text, f"docs/{page} is out of date: run python docs/figures.py"
+    # every generator feeds a page, so no figure is made and then quoted by hand elsewhere
+    assert used == set(generated), f"generators no page uses: {sorted(set(generated) - used)}"
