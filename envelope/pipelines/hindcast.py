@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from envelope.errors import InputError
-from envelope.io.atomic import atomic_outputs, check_writable
+from envelope.io.atomic import atomic_outputs, check_writable, remove_empty_folder
 from envelope.provenance import file_sha256, json_text
 
 __all__ = ["HindcastOptions", "HINDCAST_FILES", "hindcast_files"]
@@ -71,6 +71,23 @@ def hindcast_files(records_path, climate_1, climate_2, out_dir, *, options: Hind
     -------
     dict, the summary written to ``hindcast.json``.
     """
+    out_dir = Path(out_dir)
+    targets = {key: out_dir / name for key, name in HINDCAST_FILES.items()}
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InputError(f"--out {out_dir}: exists and is not a folder; expected a folder for the hindcast files")
+    created = not out_dir.exists()
+    out_dir.mkdir(parents=True, exist_ok=True)
+    try:
+        return _hindcast_into(records_path, climate_1, climate_2, out_dir, targets, options=options,
+                              overwrite=overwrite)
+    except BaseException:
+        if created:  # a hindcast that failed leaves no empty folder behind
+            remove_empty_folder(out_dir)
+        raise
+
+
+def _hindcast_into(records_path, climate_1, climate_2, out_dir, targets, *, options, overwrite):
+    """The work of :func:`hindcast_files` once its output folder exists."""
     from envelope.figures import figure_to_png_bytes
     from envelope.grids import check_same_grid
     from envelope.hindcast import map_hindcast, period_skill, plot_margin_shifts, predicted_margins
@@ -80,11 +97,6 @@ def hindcast_files(records_path, climate_1, climate_2, out_dir, *, options: Hind
     from envelope.records import clean_occurrences, years_of_records
     from envelope.margins import period_index
 
-    out_dir = Path(out_dir)
-    targets = {key: out_dir / name for key, name in HINDCAST_FILES.items()}
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"--out {out_dir}: exists and is not a folder; expected a folder for the hindcast files")
-    out_dir.mkdir(parents=True, exist_ok=True)
     for p in targets.values():
         check_writable(p, overwrite)
     periods = parse_periods(options.periods)
