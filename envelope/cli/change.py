@@ -89,7 +89,8 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
 class ProgressBar:
     """A transient rich progress bar on stderr; the context yields ``progress(done, total, what=None)``.
 
-    Used by `change` and `info` (rich draws nothing when stderr is not a terminal).
+    Drawn only when stderr is a terminal, so piped or logged output carries no blank lines
+    or control codes (used by `change` and `info`).
     """
 
     def __init__(self, description: str):
@@ -100,14 +101,18 @@ class ProgressBar:
         from rich.console import Console
         from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeElapsedColumn
 
+        console = Console(stderr=True)
+        if not console.is_terminal:
+            return self.update
         self.bar = Progress(TextColumn("{task.description}"), BarColumn(), TaskProgressColumn(), TimeElapsedColumn(),
-                            console=Console(stderr=True), transient=True)
+                            console=console, transient=True)
         self.bar.__enter__()
         self.task = self.bar.add_task(self.description, total=None)
         return self.update
 
     def update(self, done, total, what=None):
-        self.bar.update(self.task, completed=done, total=total, **({"description": what} if what else {}))
+        if self.bar is not None:
+            self.bar.update(self.task, completed=done, total=total, **({"description": what} if what else {}))
 
     def __exit__(self, *exc):
-        return self.bar.__exit__(*exc)
+        return None if self.bar is None else self.bar.__exit__(*exc)
