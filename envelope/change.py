@@ -15,11 +15,15 @@ from envelope.kernels.change import (
     CHANGE_CLASSES,
     CHANGE_NODATA,
     check_threshold,
+    LATITUDE_BINS,
     class_sums,
     classify_change,
+    latitude_bin,
     meridian_arc_km,
     normal_vector_sums,
     position_from_vector,
+    quantile_bin,
+    quantile_in_bin,
     weighted_quantile,
 )
 
@@ -28,6 +32,7 @@ __all__ = [
     "CHANGE_NODATA",
     "classify_range_change",
     "summarise_change",
+    "WindowedChange",
     "change_table",
     "LABEL_COLUMNS",
 ]
@@ -156,11 +161,7 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
     Hyndman, R.J. & Fan, Y. (1996) The American Statistician 50: 361-365 (quantile definition 1).
     Karney, C.F.F. (2013) Algorithms for geodesics. Journal of Geodesy 87: 43-55 (pyproj.Geod.inv).
     """
-    import pyproj
-
-    edge_percentile = float(edge_percentile)
-    if not 50.0 < edge_percentile < 100.0:
-        raise InputError(f"edge percentile: found {edge_percentile!r}; expected a number between 50 and 100 (exclusive)")
+    edge_percentile = _check_edge_percentile(edge_percentile)
     if mess_given is None:
         mess_given = bool(classes.attrs.get("mess", True))
     if cell_area_km2 is None:
@@ -198,13 +199,41 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
     lat_now = [np.concatenate([r[1][k][0] for r in results]) for k in (0, 1)]
     lat_w = [np.concatenate([r[1][k][1] for r in results]) for k in (0, 1)]
 
+    def quantile(k, sign, q):
+        return sign * weighted_quantile(sign * lat_now[k], lat_w[k], q)
+
+    return _summary_from(totals, int(classes.size), quantile, threshold=classes.attrs.get("threshold"), crs=crs,
+                         mess_given=mess_given, edge_percentile=edge_percentile, elevation_given=elevation is not None)
+
+
+def _check_edge_percentile(edge_percentile) -> float:
+    edge_percentile = float(edge_percentile)
+    if not 50.0 < edge_percentile < 100.0:
+        raise InputError(f"edge percentile: found {edge_percentile!r}; expected a number between 50 and 100 (exclusive)")
+    return edge_percentile
+
+
+def _poleward_sign(totals) -> float:
+    """+1 when poleward is north (the current range's centroid in the northern hemisphere, or
+    no range), else -1."""
+    lat = position_from_vector(totals[2 * _N:2 * _N + 4])[1]
+    return -1.0 if (np.isfinite(lat) and lat < 0) else 1.0
+
+
+def _summary_from(totals, n_total, quantile, *, threshold, crs, mess_given, edge_percentile, elevation_given):
+    """The summary dict from the summed block reductions ``totals`` (see :func:`_block_stats`).
+
+    ``quantile(k, sign, q)`` is the area-weighted ``q``-quantile of poleward latitude
+    ``sign * lat`` over range ``k`` (0 now, 1 future), returned as a latitude.
+    """
+    import pyproj
+
     sums = totals[:2 * _N].reshape(2, _N)
     vec = {"now": totals[2 * _N:2 * _N + 4], "future": totals[2 * _N + 6:2 * _N + 10]}
     elev_sums = {"now": totals[2 * _N + 4:2 * _N + 6], "future": totals[2 * _N + 10:2 * _N + 12]}
     names = list(CHANGE_CLASSES.values())
     area_by = dict(zip(names, (float(v) for v in sums[0])))
     count_by = dict(zip(names, (int(round(v)) for v in sums[1])))
-    n_total = int(classes.size)
     n_valid = sum(count_by.values())
 
     range_now = area_by["lost"] + area_by["stable"] + area_by["stable_novel"]
@@ -219,22 +248,20 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
         # a zero shift has no direction
         bearing = float(az12 % 360.0) if dist > 0 else float("nan")
 
-    # Poleward is north when the current range's centroid is in the northern hemisphere.
-    north = not (np.isfinite(centroid["now"][1]) and centroid["now"][1] < 0)
-    sign = 1.0 if north else -1.0
+    sign = _poleward_sign(totals)
+    north = sign > 0
     q_lead, q_trail = edge_percentile / 100.0, 1.0 - edge_percentile / 100.0
     edges = {"leading": {}, "trailing": {}}
     for k, key in enumerate(("now", "future")):
-        poleward_lat = sign * lat_now[k]
-        edges["leading"][key] = sign * weighted_quantile(poleward_lat, lat_w[k], q_lead)
-        edges["trailing"][key] = sign * weighted_quantile(poleward_lat, lat_w[k], q_trail)
+        edges["leading"][key] = quantile(k, sign, q_lead)
+        edges["trailing"][key] = quantile(k, sign, q_trail)
     edge_shift = {}
     for side in ("leading", "trailing"):
         a, b = edges[side]["now"], edges[side]["future"]
         edge_shift[side] = sign * meridian_arc_km(a, b) if np.isfinite(a) and np.isfinite(b) else float("nan")
 
     summary = {
-        "threshold": classes.attrs.get("threshold"),
+        "threshold": threshold,
         "threshold_state": ">=",
         "classes": {str(code): name for code, name in CHANGE_CLASSES.items()},
         "nodata": CHANGE_NODATA,
@@ -259,12 +286,171 @@ def summarise_change(classes: xr.DataArray, *, cell_area_km2=None, elevation: xr
         "elevation_shift_m": None,
         "crs": None if crs is None else crs.to_string(),
     }
-    if elevation is not None:
+    if elevation_given:
         mean = {k: (s[0] / s[1] if s[1] > 0 else float("nan")) for k, s in elev_sums.items()}
         summary["mean_elevation_m"] = mean
         summary["elevation_shift_m"] = mean["future"] - mean["now"]
     return json_ready(summary)
 
+
+# --------------------------------------------------------------------------- window by window
+
+class WindowedChange:
+    """Range change of a grid too large for memory, window by window: classes and the summary.
+
+    The same measures as :func:`classify_range_change` and :func:`summarise_change`, in
+    memory bounded by a window: class areas, counts, n-vector and elevation sums add up
+    window by window; the edge percentiles come from per-row latitude weights (geographic
+    grids: latitude is constant along a row, so this is exact) or, on projected grids, from
+    a latitude histogram followed by a second look at the few windows holding the bin each
+    percentile falls in (exact as well: the result is the same cell centre). Windows never
+    measured are nodata (a sparse file's missing blocks).
+
+    Use (a pipeline reads the windows): for each window ``part = measure(ys, xs, now,
+    future, mess, elevation)`` (pure, may run in threads) then ``add(part)`` in window
+    order; on projected grids, for each ``(ys, xs)`` of :meth:`refinement_windows`,
+    ``refine(ys, xs, classes)`` with the classes measured again; then :meth:`summary`.
+
+    Parameters
+    ----------
+    grid : DataArray (y, x)
+        The grid (its coordinates, CRS and transform; its values are never read).
+    threshold : float in [0, 1]
+    mess_given, elevation_given : bool
+    edge_percentile : float, default=95
+    """
+
+    def __init__(self, grid: xr.DataArray, threshold: float, *, mess_given: bool, elevation_given: bool,
+                 edge_percentile: float = 95.0):
+        self.threshold = check_threshold(threshold)
+        self.edge_percentile = _check_edge_percentile(edge_percentile)
+        self.mess_given, self.elevation_given = bool(mess_given), bool(elevation_given)
+        self.crs = _crs_of(grid)
+        self.geographic = True if self.crs is None else bool(self.crs.is_geographic)
+        self._wkt = None if self.crs is None else self.crs.to_wkt()
+        self.shape = (grid.sizes["y"], grid.sizes["x"])
+        self.x = np.asarray(grid["x"].values, dtype=np.float64)
+        self.y = np.asarray(grid["y"].values, dtype=np.float64)
+        self._transform = grid.rio.transform(recalc=True)
+        # coordinates only: a zero-strided array holds the grid's shape without its values
+        self._template = xr.DataArray(np.broadcast_to(np.uint8(0), self.shape), dims=("y", "x"),
+                                      coords={"y": self.y, "x": self.x})
+        self._totals = np.zeros(2 * _N + 12)
+        if self.geographic:
+            self._row_weights = np.zeros((2, self.shape[0]))
+        else:
+            self._hist = np.zeros((2, LATITUDE_BINS))
+            self._bin_ranges = []       # (ys, xs, [(lo, hi) per range or None])
+            self._targets = None        # {(k, q): (bin, weight below, total)}
+            self._in_bin = {}           # {(k, q): ([values], [weights])}
+
+    def window_areas(self, ys: slice, xs: slice) -> np.ndarray:
+        """True cell areas (km²) of one window, equal to those of the whole grid's
+        :func:`envelope.grids.cell_area_km2`: the window is widened by a cell on each side so
+        that its cell edges are the same mid-points between centres."""
+        from affine import Affine
+
+        from envelope.grids import cell_area_km2
+
+        ny, nx = self.shape
+        y0, y1 = max(ys.start - 1, 0), min(ys.stop + 1, ny)
+        x0, x1 = max(xs.start - 1, 0), min(xs.stop + 1, nx)
+        ref = self._template.isel(y=slice(y0, y1), x=slice(x0, x1))
+        if self.crs is not None:
+            ref = ref.rio.write_crs(self.crs)
+        ref = ref.rio.write_transform(self._transform * Affine.translation(x0, y0))
+        area = np.asarray(cell_area_km2(ref).values, dtype=np.float64)
+        return area[ys.start - y0:ys.stop - y0, xs.start - x0:xs.stop - x0]
+
+    def measure(self, ys: slice, xs: slice, now, future, mess=None, elevation=None):
+        """Classes of one window (uint8) and its partial sums; touches no shared state."""
+        classes = classify_change(now, future, self.threshold, mess)
+        parts, latitudes = _block_stats(classes, self.window_areas(ys, xs), elevation, self.x[xs], self.y[ys],
+                                        self._wkt, self.geographic)
+        if self.geographic:
+            return classes, (ys, xs, parts, [w for _, w in latitudes])
+        binned = []
+        for lat, weight in latitudes:
+            keep = np.isfinite(lat) & np.isfinite(weight) & (weight > 0)
+            if not keep.any():
+                binned.append(None)
+                continue
+            index = latitude_bin(lat[keep])
+            lo, hi = int(index.min()), int(index.max())
+            binned.append((lo, np.bincount(index - lo, weights=weight[keep], minlength=hi - lo + 1)))
+        return classes, (ys, xs, parts, binned)
+
+    def add(self, part) -> None:
+        """Add one window's partial sums (from :meth:`measure`), in window order."""
+        ys, xs, parts, lat_parts = part
+        self._totals += parts
+        if self.geographic:
+            for k in (0, 1):
+                self._row_weights[k, ys] += lat_parts[k]
+            return
+        ranges = []
+        for k, binned in enumerate(lat_parts):
+            if binned is None:
+                ranges.append(None)
+                continue
+            lo, counts = binned
+            self._hist[k, lo:lo + counts.size] += counts
+            ranges.append((lo, lo + counts.size - 1))
+        if any(r is not None for r in ranges):
+            self._bin_ranges.append((ys, xs, ranges))
+
+    def refinement_windows(self) -> list:
+        """Windows (ys, xs) to measure again for the exact edge percentiles (projected grids)."""
+        if self.geographic:
+            return []
+        sign = _poleward_sign(self._totals)
+        q_lead = self.edge_percentile / 100.0
+        self._targets = {}
+        for k in (0, 1):
+            for q in (q_lead, 1.0 - q_lead):
+                found = quantile_bin(self._hist[k], q, reverse=sign < 0)
+                if found is not None:
+                    self._targets[(k, q)] = found
+                    self._in_bin[(k, q)] = ([], [])
+        wanted = []
+        for ys, xs, ranges in self._bin_ranges:
+            if any(ranges[k] is not None and ranges[k][0] <= b <= ranges[k][1]
+                   for (k, _), (b, _, _) in self._targets.items()):
+                wanted.append((ys, xs))
+        return wanted
+
+    def refine(self, ys: slice, xs: slice, classes) -> None:
+        """Keep the cells of one window that fall in a percentile's latitude bin."""
+        _, latitudes = _block_stats(classes, self.window_areas(ys, xs), None, self.x[xs], self.y[ys], self._wkt,
+                                    self.geographic)
+        for (k, q), (b, _, _) in self._targets.items():
+            lat, weight = latitudes[k]
+            keep = np.isfinite(lat) & np.isfinite(weight) & (weight > 0)
+            lat, weight = lat[keep], weight[keep]
+            inside = latitude_bin(lat) == b
+            self._in_bin[(k, q)][0].append(lat[inside])
+            self._in_bin[(k, q)][1].append(weight[inside])
+
+    def summary(self) -> dict:
+        """The summary dict of :func:`summarise_change` (after every window is added and,
+        on projected grids, refined)."""
+        if self.geographic:
+            def quantile(k, sign, q):
+                return sign * weighted_quantile(sign * self.y, self._row_weights[k], q)
+        else:
+            if self._targets is None:
+                raise RuntimeError("WindowedChange.summary: refinement_windows() and refine() come first")
+
+            def quantile(k, sign, q):
+                if (k, q) not in self._targets:
+                    return float("nan")
+                _, below, total = self._targets[(k, q)]
+                values, weights = (np.concatenate(v) if v else np.empty(0) for v in self._in_bin[(k, q)])
+                return sign * quantile_in_bin(sign * values, weights, below, total, q)
+
+        return _summary_from(self._totals, self.shape[0] * self.shape[1], quantile, threshold=self.threshold,
+                             crs=self.crs, mess_given=self.mess_given, edge_percentile=self.edge_percentile,
+                             elevation_given=self.elevation_given)
 
 
 # --------------------------------------------------------------------------- table

@@ -41,6 +41,10 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
     elevation shift. With --scenarios every listed future map is compared with NOW and one
     combined table is written.
 
+    Huge GeoTIFF grids (more than 2^26 cells) are measured window by window over the
+    blocks the files store, in bounded memory, and the class map is written sparse; the
+    numbers are the same. A progress bar on stderr shows long work.
+
     \b
     Examples:
       $ envelope change --now now.tif --future high_2070.tif --out change.tif --summary change.json
@@ -61,19 +65,54 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
             raise click.UsageError(f"{clash[0]} does not go with --scenarios (give future maps in the table)")
         if out_dir is None or table is None:
             raise click.UsageError("--scenarios needs --out-dir and --table")
-        frame = range_change_batch(now, scenarios, out_dir, table, threshold=threshold, elevation=elevation,
-                                   edge_percentile=edge_percentile, overwrite=overwrite)
+        with ProgressBar("change") as progress:
+            frame = range_change_batch(now, scenarios, out_dir, table, threshold=threshold, elevation=elevation,
+                                       edge_percentile=edge_percentile, overwrite=overwrite, progress=progress)
         click.echo(f"Wrote {len(frame)} change maps and summaries to {out_dir} and the table {table}")
         return
     if future is None or out is None or summary is None:
         raise click.UsageError("give --future, --out and --summary (or --scenarios, --out-dir and --table)")
     if out_dir is not None or table is not None:
         raise click.UsageError("--out-dir and --table go with --scenarios")
-    result = range_change(now, future, out, summary, threshold=threshold, mess=mess, elevation=elevation,
-                          edge_percentile=edge_percentile, overwrite=overwrite, polygons=polygons)
+    with ProgressBar("change") as progress:
+        result = range_change(now, future, out, summary, threshold=threshold, mess=mess, elevation=elevation,
+                              edge_percentile=edge_percentile, overwrite=overwrite, polygons=polygons,
+                              progress=progress)
     area = result["area_km2"]
     pct = result["range_change_pct"]
     click.echo(f"Range {result['range_km2']['now']:.1f} -> {result['range_km2']['future']:.1f} km² "
                f"({'n/a' if pct is None else f'{pct:+.1f}%'}); lost {area['lost']:.1f}, stable {area['stable_total']:.1f}, "
                f"gained {area['gained_total']:.1f} km²")
     click.echo(f"Wrote {out} and {summary}" + (f" and {result['polygons']}" if polygons else ""))
+
+
+class ProgressBar:
+    """A transient rich progress bar on stderr; the context yields ``progress(done, total, what=None)``.
+
+    Drawn only when stderr is a terminal, so piped or logged output carries no blank lines
+    or control codes (used by `change` and `info`).
+    """
+
+    def __init__(self, description: str):
+        self.description = description
+        self.bar = None
+
+    def __enter__(self):
+        from rich.console import Console
+        from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeElapsedColumn
+
+        console = Console(stderr=True)
+        if not console.is_terminal:
+            return self.update
+        self.bar = Progress(TextColumn("{task.description}"), BarColumn(), TaskProgressColumn(), TimeElapsedColumn(),
+                            console=console, transient=True)
+        self.bar.__enter__()
+        self.task = self.bar.add_task(self.description, total=None)
+        return self.update
+
+    def update(self, done, total, what=None):
+        if self.bar is not None:
+            self.bar.update(self.task, completed=done, total=total, **({"description": what} if what else {}))
+
+    def __exit__(self, *exc):
+        return None if self.bar is None else self.bar.__exit__(*exc)

@@ -6,7 +6,7 @@ import threading
 
 import numpy as np
 
-__all__ = ["WindowReader", "WindowWriter", "stored_windows", "window_array"]
+__all__ = ["WindowReader", "WindowWriter", "band_reader", "stored_block_mask", "stored_windows", "window_array"]
 
 
 class WindowReader:
@@ -124,21 +124,50 @@ def stored_windows(path) -> tuple[list, int]:
     -------
     (list of rasterio Windows, total number of blocks)
     """
+    from rasterio.windows import Window
+
+    mask, (bh, bw), (height, width) = stored_block_mask(path)
+    rows, cols = np.nonzero(mask)
+    windows = [Window(int(c) * bw, int(r) * bh, min(bw, width - int(c) * bw), min(bh, height - int(r) * bh))
+               for r, c in zip(rows, cols)]
+    return windows, int(mask.size)
+
+
+def stored_block_mask(path):
+    """Which blocks of a GDAL raster hold data: (bool array of block rows x block columns,
+    (block height, block width), (raster height, raster width)).
+
+    A block holds data when any band stores bytes for it (see :func:`stored_windows`);
+    without a nodata value every block does.
+    """
     import rasterio
     from rasterio.errors import RasterBlockError
 
     with rasterio.open(path) as src:
-        windows = [w for _, w in src.block_windows(1)]
+        bh, bw = (int(v) for v in src.block_shapes[0])
+        n_rows, n_cols = -(-src.height // bh), -(-src.width // bw)
         if src.nodata is None:
-            return windows, len(windows)
-        bh, bw = src.block_shapes[0]
+            return np.ones((n_rows, n_cols), dtype=bool), (bh, bw), (src.height, src.width)
+        mask = np.zeros((n_rows, n_cols), dtype=bool)
+        for band in range(1, src.count + 1):
+            for row in range(n_rows):
+                for col in range(n_cols):
+                    if mask[row, col]:
+                        continue
+                    try:
+                        mask[row, col] = src.block_size(band, row, col) > 0
+                    except RasterBlockError:  # GDAL: no offset recorded, i.e. a block never written
+                        pass
+    return mask, (bh, bw), (src.height, src.width)
 
-        def stored(band, row, col) -> bool:
-            try:
-                return src.block_size(band, row, col) > 0
-            except RasterBlockError:  # GDAL: no offset recorded, i.e. a block never written
-                return False
 
-        kept = [w for w in windows if any(stored(b, int(w.row_off) // bh, int(w.col_off) // bw)
-                                          for b in range(1, src.count + 1))]
-    return kept, len(windows)
+def band_reader(path, band: int = 1) -> WindowReader:
+    """A :class:`WindowReader` of one band of a GDAL raster: float32, the file's nodata as
+    NaN, scale and offset applied (as :func:`envelope.io.rasters.open_layer` reads it)."""
+    import rasterio
+
+    with rasterio.open(path) as src:
+        scale, offset = src.scales[band - 1], src.offsets[band - 1]
+        packed = scale != 1.0 or offset != 0.0
+        return WindowReader(path, [band], shape=(src.height, src.width), dtype=np.float32, nodata=src.nodata,
+                            scales=[scale] if packed else None, offsets=[offset] if packed else None)

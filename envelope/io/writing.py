@@ -18,7 +18,8 @@ from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.blocks import WindowWriter
 from envelope.io.rasters import GEOTIFF_SUFFIXES, encode_tag
 
-__all__ = ["DEFLATE_LEVEL", "WRITE_CACHE_MB", "RasterOutput", "write_raster", "write_rasters"]
+__all__ = ["DEFLATE_LEVEL", "WRITE_CACHE_MB", "RasterOutput", "WindowedRaster", "windowed_raster", "write_raster",
+           "write_rasters"]
 
 #: GDAL block cache (MB) while rasters are staged and converted. Dirty blocks of the
 #: staging file sit in this cache until it is full, so with GDAL's default (5 % of RAM)
@@ -384,3 +385,71 @@ def _netcdf_attributes(tmp: Path, tags: dict) -> None:
 
     with netCDF4.Dataset(tmp, "a") as nc:
         nc.setncatts(tags)
+
+
+# ----------------------------------------------------------------------------- window by window
+
+
+class WindowedRaster:
+    """A one-band GeoTIFF written window by window (see :func:`windowed_raster`)."""
+
+    def __init__(self, dataset):
+        self._dataset = dataset
+        self._lock = threading.Lock()
+        self.windows_written = 0
+
+    def write(self, ys: slice, xs: slice, block) -> None:
+        """Write the 2-D ``block`` at rows ``ys``, columns ``xs`` (thread-safe)."""
+        from rasterio.windows import Window
+
+        block = np.asarray(block)
+        with self._lock:
+            self._dataset.write(block[None], window=Window(xs.start, ys.start, xs.stop - xs.start, ys.stop - ys.start))
+            self.windows_written += 1
+
+
+@contextlib.contextmanager
+def windowed_raster(path, like: xr.DataArray, *, dtype, nodata, name: str, overwrite=False, tags=None,
+                    categories=None):
+    """Write a one-band GeoTIFF of the grid of ``like`` window by window, in bounded memory.
+
+    Yields a :class:`WindowedRaster`; ``.write(ys, xs, block)`` stores one window. Windows
+    never written hold ``nodata`` and take no space: the staging file is sparse (GDAL
+    ``SPARSE_OK``) and so is the cloud-optimised GeoTIFF made from it on exit (same layout,
+    tiles, DEFLATE and overviews as :func:`write_raster`). Nothing is written if the body
+    raises. ``tags`` may be a callable, called on exit, for values known only after the pass.
+    Meant for huge, mostly empty grids (a range-change map of a sparse continental grid),
+    where :func:`write_raster` would stage every block.
+    """
+    import rasterio
+    import rasterio.shutil
+
+    path = Path(path)
+    if path.suffix.lower() not in GEOTIFF_SUFFIXES:
+        raise InputError(f"{path}: a grid written window by window must be a GeoTIFF (.tif or .tiff)")
+    check_writable(path, overwrite)
+    height, width = like.sizes["y"], like.sizes["x"]
+    dtype = np.dtype(dtype)
+    block = _block_size(width, height)
+    with rasterio.Env(GDAL_CACHEMAX=WRITE_CACHE_MB), atomic_outputs([path], overwrite=overwrite) as (tmp,):
+        stage = _stage_path(tmp)
+        try:
+            with rasterio.open(stage, "w", driver="GTiff", width=width, height=height, count=1, dtype=dtype.name,
+                               crs=like.rio.crs, transform=like.rio.transform(), nodata=nodata, tiled=True,
+                               blockxsize=block, blockysize=block, SPARSE_OK="TRUE", BIGTIFF="IF_SAFER") as dst:
+                yield WindowedRaster(dst)
+                dst.set_band_description(1, name)
+                dst.update_tags(1, units="")
+                values = tags() if callable(tags) else (tags or {})
+                out = {k: encode_tag(v) for k, v in values.items()}
+                if categories is not None:
+                    out["categories"] = json.dumps({str(k): v for k, v in dict(categories).items()})
+                dst.update_tags(**out)
+            tmp.unlink(missing_ok=True)
+            floating = np.issubdtype(dtype, np.floating)
+            rasterio.shutil.copy(stage, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=str(DEFLATE_LEVEL),
+                                 PREDICTOR="3" if floating else "2", BLOCKSIZE=str(block), OVERVIEWS="AUTO",
+                                 RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
+                                 SPARSE_OK="TRUE", NUM_THREADS=str(_compress_threads()))
+        finally:
+            _remove_stage(stage)

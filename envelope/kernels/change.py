@@ -19,6 +19,10 @@ __all__ = [
     "normal_vector_sums",
     "position_from_vector",
     "weighted_quantile",
+    "LATITUDE_BINS",
+    "latitude_bin",
+    "quantile_bin",
+    "quantile_in_bin",
     "meridian_distance_m",
     "meridian_arc_km",
 ]
@@ -221,6 +225,69 @@ def weighted_quantile(values, weights, q: float) -> float:
     share = np.cumsum(weights) / weights.sum()
     # a relative slack of a few ulps keeps e.g. 19/20 >= 0.95 true despite round-off
     k = int(np.searchsorted(share, q * (1.0 - 8 * np.finfo(float).eps), side="left"))
+    return float(values[min(k, values.size - 1)])
+
+
+#: Bins of the latitude histogram of :func:`latitude_bin` (0.00275 degrees, about 300 m, each).
+LATITUDE_BINS = 2**16
+
+# the slack of weighted_quantile: a few ulps keep e.g. 19/20 >= 0.95 true despite round-off
+_SHARE_SLACK = 1.0 - 8 * np.finfo(float).eps
+
+
+def latitude_bin(lat) -> np.ndarray:
+    """Index (0 .. LATITUDE_BINS - 1) of the equal-width bin of [-90, 90] holding each latitude.
+
+    Monotone: a higher latitude never has a lower bin, so every value of a bin lies below
+    every value of the next one, and a quantile can be located by bins first.
+    """
+    lat = np.asarray(lat, dtype=np.float64)
+    index = np.floor((lat + 90.0) * (LATITUDE_BINS / 180.0)).astype(np.intp)
+    return np.clip(index, 0, LATITUDE_BINS - 1)
+
+
+def quantile_bin(hist, q: float, *, reverse: bool = False):
+    """The bin of a weight histogram holding the weighted ``q``-quantile (definition 1).
+
+    With ``reverse`` the bins are taken from the last down, which is the quantile of the
+    negated values. Returns ``(bin index, weight of the bins before it in that order, total
+    weight)``, or None without weight. The quantile itself is then found among the values
+    of that bin by :func:`quantile_in_bin`; together they give what
+    :func:`weighted_quantile` gives on all values (Hyndman & Fan 1996, definition 1),
+    holding only one bin's values.
+    """
+    if not 0.0 < q <= 1.0:
+        raise InputError(f"quantile: found {q!r}; expected a number in (0, 1]")
+    hist = np.asarray(hist, dtype=np.float64)
+    ordered = hist[::-1] if reverse else hist
+    cumulative = np.cumsum(ordered)
+    total = float(cumulative[-1]) if cumulative.size else 0.0
+    if not total > 0:
+        return None
+    k = int(np.searchsorted(cumulative / total, q * _SHARE_SLACK, side="left"))
+    k = min(k, ordered.size - 1)
+    below = float(cumulative[k - 1]) if k > 0 else 0.0
+    return (ordered.size - 1 - k if reverse else k), below, total
+
+
+def quantile_in_bin(values, weights, below: float, total: float, q: float) -> float:
+    """The weighted ``q``-quantile (definition 1) from the values of the bin that holds it.
+
+    ``below`` is the weight of all values smaller than those given and ``total`` the weight
+    of all values: the result is the smallest given value at which ``(below + cumulative
+    weight) / total`` reaches ``q`` (the same slack as :func:`weighted_quantile`). NaN
+    values and zero weights are left out; NaN if nothing remains.
+    """
+    values = np.asarray(values, dtype=np.float64).ravel()
+    weights = np.asarray(weights, dtype=np.float64).ravel()
+    keep = np.isfinite(values) & np.isfinite(weights) & (weights > 0)
+    values, weights = values[keep], weights[keep]
+    if values.size == 0 or not total > 0:
+        return float("nan")
+    order = np.argsort(values, kind="stable")
+    values, weights = values[order], weights[order]
+    share = (below + np.cumsum(weights)) / total
+    k = int(np.searchsorted(share, q * _SHARE_SLACK, side="left"))
     return float(values[min(k, values.size - 1)])
 
 

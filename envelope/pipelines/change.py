@@ -5,17 +5,27 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from envelope.change import (CHANGE_CLASSES, CHANGE_NODATA, LABEL_COLUMNS, change_table, classify_range_change, summarise_change)
+from envelope.change import (CHANGE_CLASSES, CHANGE_NODATA, LABEL_COLUMNS, WindowedChange, change_table,
+                              classify_range_change, summarise_change)
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
 from envelope.io.atomic import atomic_output, atomic_outputs, check_distinct, check_writable
-from envelope.io.rasters import open_layer, read_tags
+from envelope.io.rasters import open_layer, raster_format, read_tags
 from envelope.io.tables import read_scenarios
-from envelope.io.writing import write_raster
+from envelope.io.writing import RasterOutput, write_rasters
 from envelope.pipelines.inputs import resolve_threshold
 from envelope.provenance import json_text
 
-__all__ = ["range_change", "range_change_batch", "write_change_table", "write_class_polygons"]
+__all__ = ["WINDOWED_CELLS", "range_change", "range_change_batch", "write_change_table", "write_class_polygons"]
+
+#: Above this many cells, GeoTIFF inputs are measured window by window over the blocks the
+#: files store (:class:`envelope.change.WindowedChange`), in memory bounded by a batch of
+#: windows, and the class raster is written sparse: a 200,000 x 200,000 grid with a few
+#: populated tiles is handled from its block index and those tiles (bench/bench_change_sparse.py).
+WINDOWED_CELLS = 2**26
+
+#: Windows measured at once (in dask's threads) between two updates of the sums and the file.
+WINDOW_BATCH = 16
 
 
 def _open(path, *, what, band=None):
@@ -62,17 +72,83 @@ def _open_elevation(now, now_path, elevation_path):
     return check_same_grid(now, elevation, ref_name=str(now_path), other_name=str(elevation_path))
 
 
-def _write_pair(classes, summary, raster_tmp, summary_tmp):
-    tags = {"threshold": summary["threshold"], "threshold_state": ">=", "content": "range change classes"}
-    if summary.get("threshold_rule") is not None:
-        tags["threshold_rule"] = summary["threshold_rule"]
-    write_raster(classes, raster_tmp, overwrite=True, tags=tags, categories=dict(CHANGE_CLASSES),
-                 nodata=CHANGE_NODATA)
+def _class_tags(threshold, rule) -> dict:
+    tags = {"threshold": threshold, "threshold_state": ">=", "content": "range change classes"}
+    if rule is not None:
+        tags["threshold_rule"] = rule
+    return tags
+
+
+def _write_pair(classes, summary, raster_tmp, summary_tmp, progress=None):
+    step = None if progress is None else (lambda done, total: progress(done, total, "writing the change map"))
+    write_rasters([RasterOutput(classes, raster_tmp, _class_tags(summary["threshold"], summary.get("threshold_rule")),
+                                dict(CHANGE_CLASSES), CHANGE_NODATA)], overwrite=True, progress=step)
     Path(summary_tmp).write_text(json_text(summary) + "\n")
 
 
+def _windowed(now_da, *paths) -> bool:
+    """Whether to measure window by window: a grid above WINDOWED_CELLS, every file a GeoTIFF."""
+    n_cells = now_da.sizes["y"] * now_da.sizes["x"]
+    return n_cells > WINDOWED_CELLS and all(raster_format(Path(p)) != "NetCDF" for p in paths if p is not None)
+
+
+def _windows_with_data(now_path, future_path) -> list:
+    """(ys, xs) of the blocks of NOW that the files store and that meet a stored block of
+    FUTURE: everywhere else either map is nodata, so every class is nodata too."""
+    import numpy as np
+
+    from envelope.io.blocks import stored_block_mask
+
+    now_mask, (bh, bw), (height, width) = stored_block_mask(now_path)
+    future_mask, (fh, fw), _ = stored_block_mask(future_path)
+    windows = []
+    for row, col in zip(*np.nonzero(now_mask)):
+        ys = slice(int(row) * bh, min((int(row) + 1) * bh, height))
+        xs = slice(int(col) * bw, min((int(col) + 1) * bw, width))
+        if future_mask[ys.start // fh:(ys.stop - 1) // fh + 1, xs.start // fw:(xs.stop - 1) // fw + 1].any():
+            windows.append((ys, xs))
+    return windows
+
+
+def _range_change_windowed(now, now_da, future, mess, elevation, value, rule, *, edge_percentile, raster_tmp,
+                           progress=None) -> dict:
+    """Classes and summary of one future map, window by window over the stored blocks; the
+    class raster written to ``raster_tmp`` as it goes (sparse: nodata windows are not stored)."""
+    import dask
+
+    from envelope.io.blocks import band_reader
+    from envelope.io.writing import windowed_raster
+
+    report = progress or (lambda done, total, what: None)
+    readers = [band_reader(p) if p is not None else None for p in (now, future, mess, elevation)]
+    measure = WindowedChange(now_da, value, mess_given=mess is not None, elevation_given=elevation is not None,
+                             edge_percentile=edge_percentile)
+
+    def window(ys, xs):
+        blocks = [None if r is None else r[0:1, ys, xs][0] for r in readers]
+        return measure.measure(ys, xs, *blocks)
+
+    windows = _windows_with_data(now, future)
+    with windowed_raster(raster_tmp, now_da, dtype="uint8", nodata=CHANGE_NODATA, name="change", overwrite=True,
+                         tags=_class_tags(value, rule), categories=dict(CHANGE_CLASSES)) as out:
+        report(0, len(windows), f"change {Path(future).name}")
+        for start in range(0, len(windows), WINDOW_BATCH):
+            batch = windows[start:start + WINDOW_BATCH]
+            results = dask.compute(*[dask.delayed(window)(ys, xs) for ys, xs in batch], scheduler="threads")
+            for (ys, xs), (classes, part) in zip(batch, results):
+                measure.add(part)
+                if (classes != CHANGE_NODATA).any():
+                    out.write(ys, xs, classes)
+            report(start + len(batch), len(windows), f"change {Path(future).name}")
+        for ys, xs in measure.refinement_windows():   # projected grids: the edge percentiles' bins
+            measure.refine(ys, xs, window(ys, xs)[0])
+        report(len(windows), len(windows), "writing the change map (overviews)")
+    return measure.summary()
+
+
 def range_change(now, future, out, summary, *, threshold=None, mess=None, elevation=None,
-                 edge_percentile: float = 95.0, overwrite: bool = False, polygons=None) -> dict:
+                 edge_percentile: float = 95.0, overwrite: bool = False, polygons=None, windowed=None,
+                 progress=None) -> dict:
     """Classify range change between suitability rasters ``now`` and ``future``; write map and summary.
 
     Writes the class raster ``out`` (uint8, categories in its tags) and the JSON ``summary``
@@ -80,6 +156,12 @@ def range_change(now, future, out, summary, *, threshold=None, mess=None, elevat
     .geojson) also one dissolved polygon per class (:func:`write_class_polygons`). Returns
     the summary dict. See :func:`summarise_change` for the measures and docs/change.md for
     their definitions.
+
+    ``windowed`` (default: grids above :data:`WINDOWED_CELLS` cells, GeoTIFF inputs) measures
+    the maps window by window over the blocks the files store and writes a sparse class
+    raster, in bounded memory (:class:`envelope.change.WindowedChange`); the numbers are
+    those of the whole-grid computation. ``progress(done, total, what)`` is called as
+    windows (or write tasks) finish.
     """
     for path in (out, summary) + ((polygons,) if polygons else ()):
         check_writable(path, overwrite)
@@ -88,12 +170,27 @@ def range_change(now, future, out, summary, *, threshold=None, mess=None, elevat
     now_da = _open(now, what="current suitability")
     elevation_da = _open_elevation(now_da, now, elevation)
     classes, value, rule = _prepare(now, now_da, future, threshold, mess, elevation, elevation_da)
+    inputs = {"now": str(now), "future": str(future), "mess": None if mess is None else str(mess),
+              "elevation": None if elevation is None else str(elevation)}
+    if windowed is None:
+        windowed = _windowed(now_da, now, future, mess, elevation)
+    if windowed:
+        if polygons:
+            raise InputError(f"--polygons {polygons}: a grid of {now_da.sizes['y']} x {now_da.sizes['x']} cells is "
+                             "measured window by window and cannot be dissolved into polygons in memory; expected "
+                             "no --polygons (polygonise the class raster by parts in a GIS)")
+        with atomic_outputs([out, summary], overwrite) as (raster_tmp, summary_tmp):
+            result = _range_change_windowed(now, now_da, future, mess, elevation, value, rule,
+                                            edge_percentile=edge_percentile, raster_tmp=raster_tmp, progress=progress)
+            result["threshold_rule"] = rule
+            result["inputs"] = inputs
+            Path(summary_tmp).write_text(json_text(result) + "\n")
+        return result
     result = summarise_change(classes, elevation=elevation_da, edge_percentile=edge_percentile)
     result["threshold_rule"] = rule
-    result["inputs"] = {"now": str(now), "future": str(future), "mess": None if mess is None else str(mess),
-                        "elevation": None if elevation is None else str(elevation)}
+    result["inputs"] = inputs
     with atomic_outputs([out, summary], overwrite) as (raster_tmp, summary_tmp):
-        _write_pair(classes, result, raster_tmp, summary_tmp)
+        _write_pair(classes, result, raster_tmp, summary_tmp, progress)
         if polygons:
             result["polygons"] = str(write_class_polygons(classes, CHANGE_CLASSES, CHANGE_NODATA, polygons,
                                                           overwrite=overwrite))
@@ -115,7 +212,7 @@ def write_class_polygons(classes, categories, nodata, path, *, overwrite=False, 
 
 
 def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevation=None,
-                       edge_percentile: float = 95.0, overwrite: bool = False):
+                       edge_percentile: float = 95.0, overwrite: bool = False, windowed=None, progress=None):
     """Range change of ``now`` against every future map listed in the CSV ``scenarios``.
 
     ``scenarios`` has columns name, pathway, climate_model, horizon, path (future suitability
@@ -123,7 +220,8 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
     each row ``out_dir/<name>.tif`` and ``out_dir/<name>.json`` are written, and the combined
     table (one row per scenario, see :func:`change_table`) goes to ``table``. Every input is
     checked before anything is written, and all outputs appear together or not at all.
-    Returns the combined table (pandas.DataFrame).
+    Returns the combined table (pandas.DataFrame). ``windowed`` and ``progress`` as in
+    :func:`range_change`.
     """
     rows = read_scenarios(scenarios, what="future suitability raster")
     out_dir = Path(out_dir)
@@ -149,19 +247,40 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
     for row in rows:  # check every scenario before the first byte is written
         classes, value, rule = _prepare(now, now_da, row.path, threshold, row.mess_path, elevation, elevation_da)
         prepared.append((classes, value, rule))
+    labels = [{c: getattr(row, c) for c in LABEL_COLUMNS} for row in rows]
+
+    def inputs(row):
+        return {"now": str(now), "future": str(row.path), "mess": None if row.mess_path is None else str(row.mess_path),
+                "elevation": None if elevation is None else str(elevation)}
+
+    if windowed is None:
+        windowed = _windowed(now_da, now, elevation, *[p for row in rows for p in (row.path, row.mess_path)])
+    if windowed:
+        out_dir.mkdir(exist_ok=True)
+        with atomic_outputs(outputs + [table], overwrite) as tmps:
+            summaries = []
+            for k, (row, (_, value, rule)) in enumerate(zip(rows, prepared)):
+                result = _range_change_windowed(now, now_da, row.path, row.mess_path, elevation, value, rule,
+                                                edge_percentile=edge_percentile, raster_tmp=tmps[2 * k],
+                                                progress=progress)
+                result["threshold_rule"] = rule
+                result["inputs"] = inputs(row)
+                Path(tmps[2 * k + 1]).write_text(json_text(result) + "\n")
+                summaries.append(result)
+            frame = change_table(summaries, labels)
+            frame.to_csv(tmps[-1], index=False)
+        return frame
     summaries = []
     for row, (classes, value, rule) in zip(rows, prepared):
         result = summarise_change(classes, elevation=elevation_da, edge_percentile=edge_percentile)
         result["threshold_rule"] = rule
-        result["inputs"] = {"now": str(now), "future": str(row.path),
-                            "mess": None if row.mess_path is None else str(row.mess_path),
-                            "elevation": None if elevation is None else str(elevation)}
+        result["inputs"] = inputs(row)
         summaries.append(result)
-    frame = change_table(summaries, [{c: getattr(row, c) for c in LABEL_COLUMNS} for row in rows])
+    frame = change_table(summaries, labels)
     out_dir.mkdir(exist_ok=True)
     with atomic_outputs(outputs + [table], overwrite) as tmps:
         for k, (classes, _, _) in enumerate(prepared):
-            _write_pair(classes, summaries[k], tmps[2 * k], tmps[2 * k + 1])
+            _write_pair(classes, summaries[k], tmps[2 * k], tmps[2 * k + 1], progress)
         frame.to_csv(tmps[-1], index=False)
     return frame
 

@@ -105,3 +105,18 @@ def test_netcdf_future_against_geotiff_now(tmp_path):
     summary = json.loads((tmp_path / "c.json").read_text())
     # Analytic: by construction one cell stays suitable, one is lost and two are gained
     assert summary["n_cells"]["stable"] == 1 and summary["n_cells"]["lost"] == 1 and summary["n_cells"]["gained"] == 2
+
+
+def test_windowed_above_the_cell_limit_gives_the_same_summary(files, tmp_path, monkeypatch):
+    # Common practice, no source: measuring window by window equals the whole-grid pass.
+    from envelope.pipelines import change as change_pipeline
+
+    args = ["change", "--now", files["now"], "--future", files["future"]]
+    whole = _run(*args, "--out", tmp_path / "w.tif", "--summary", tmp_path / "w.json")
+    monkeypatch.setattr(change_pipeline, "WINDOWED_CELLS", 1)
+    part = _run(*args, "--out", tmp_path / "p.tif", "--summary", tmp_path / "p.json")
+    assert whole.exit_code == part.exit_code == 0, part.output
+    a, b = (json.loads((tmp_path / f"{n}.json").read_text()) for n in ("w", "p"))
+    assert a["n_cells"] == b["n_cells"] and a["leading_edge_lat"] == b["leading_edge_lat"]
+    assert b["area_km2"]["stable"] == pytest.approx(a["area_km2"]["stable"], rel=1e-12)
+    assert part.output.splitlines()[0] == whole.output.splitlines()[0]  # the printed areas

@@ -78,3 +78,14 @@ def test_info_bad_netcdf(tmp_path):
     result = _run(path)
     assert result.exit_code == 2 and "not a readable NetCDF file" in result.output
     assert len(result.output.strip().splitlines()) == 1
+
+
+def test_quick_reports_where_numbers_come_from(stack, tmp_path):
+    path = tmp_path / "s.tif"
+    write_raster(stack, path)  # a small COG: no overview, no statistics tags
+    result = _run(path, "--quick", "--json")
+    assert result.exit_code == 0, result.output
+    summary = json.loads(result.output)
+    assert summary["source"] == {"ranges": "data", "area": "data"}
+    assert summary["valid_area_km2"] == pytest.approx(_expected_valid_area(stack), rel=1e-9)
+    assert "--quick" in _run("--help").output
