@@ -118,7 +118,7 @@ def shared_habitat(study, layout: RunLayout, cache: StepCache, say=lambda stage:
     return HabitatSection(target, None, False)
 
 
-def run_species_study(study, layout: RunLayout, *, progress=None, client=None) -> dict:
+def run_species_study(study, layout: RunLayout, *, progress=None, client=None, names=None) -> dict:
     """Run every species of a multi-species study (called by :func:`envelope.study.runner.run_study`,
     which has checked the run folder and every grid once and holds the run folder's lock).
 
@@ -126,10 +126,11 @@ def run_species_study(study, layout: RunLayout, *, progress=None, client=None) -
     step cache, so it resumes as a single-species run does. With ``client`` (a
     ``distributed.Client``) each species is a task on the cluster; a task whose worker dies is
     run again elsewhere and resumes from the species' cache. Then the cross-species summary
-    (:attr:`RunLayout.species_summary`) and the study's report are written.
+    (:attr:`RunLayout.species_summary`) and the study's report are written. ``names`` are the
+    species (:func:`species_names`, found when not given).
     """
     say = progress or (lambda stage: None)
-    names = species_names(study)
+    names = species_names(study) if names is None else list(names)
     settings = study.to_dict()
     cache = StepCache(layout.run_dir, settings)
     habitat = shared_habitat(study, layout, cache, say)

@@ -154,6 +154,11 @@ def run_study(study, run_dir, *, progress=None, client=None) -> dict:
     run_dir = layout.run_dir
     check_run_folder(study, run_dir)
     check_study_grids(study)
+    names = None
+    if study.multi_species:
+        from envelope.study.batch import species_names
+
+        names = species_names(study)  # every listed name checked against the records, before any work
     if run_dir.exists() and not run_dir.is_dir():
         raise InputError(f"--out {run_dir}: exists and is not a folder")
     run_dir.mkdir(parents=True, exist_ok=True)
@@ -161,7 +166,7 @@ def run_study(study, run_dir, *, progress=None, client=None) -> dict:
         if study.multi_species:
             from envelope.study.batch import run_species_study
 
-            return run_species_study(study, layout, progress=progress, client=client)
+            return run_species_study(study, layout, progress=progress, client=client, names=names)
         return _run_locked(study, layout, progress)
 
 
