@@ -9,7 +9,6 @@ from pathlib import Path
 
 from envelope.errors import EnvelopeError, InputError
 from envelope.study.layout import RunLayout, species_slug
-from envelope.study.runner import StepCache, run_species_folder
 
 __all__ = ["TASK_RETRIES", "run_species_study", "shared_habitat", "species_names", "species_study"]
 
@@ -75,7 +74,7 @@ def species_study(study, name: str, habitat=None):
     return replace(out, habitat=habitat) if habitat is not None else out
 
 
-def shared_habitat(study, layout: RunLayout, cache: StepCache, say=lambda stage: None):
+def shared_habitat(study, layout: RunLayout, cache, say=lambda stage: None):
     """Habitat on the climate grid, made once for every species when it needs work.
 
     A habitat raster already on the baseline grid (no class table, no alignment) is used as it
@@ -83,7 +82,7 @@ def shared_habitat(study, layout: RunLayout, cache: StepCache, say=lambda stage:
     into habitat on the grid once (:func:`envelope.pipelines.inputs.load_habitat`), written to
     :attr:`RunLayout.shared_habitat` in its own data type (so every species reads the values
     the species-by-species computation would give), and returned as the species' habitat
-    section.
+    section. ``cache`` is the study's :class:`envelope.study.runner.StepCache`.
     """
     if study.habitat is None or not study.outputs.reach or study.dispersal is None:
         return None
@@ -118,7 +117,8 @@ def shared_habitat(study, layout: RunLayout, cache: StepCache, say=lambda stage:
     return HabitatSection(target, None, False)
 
 
-def run_species_study(study, layout: RunLayout, *, progress=None, client=None, names=None) -> dict:
+def run_species_study(study, layout: RunLayout, *, run_species, step_cache, progress=None, client=None,
+                      names=None) -> dict:
     """Run every species of a multi-species study (called by :func:`envelope.study.runner.run_study`,
     which has checked the run folder and every grid once and holds the run folder's lock).
 
@@ -127,22 +127,26 @@ def run_species_study(study, layout: RunLayout, *, progress=None, client=None, n
     ``distributed.Client``) each species is a task on the cluster; a task whose worker dies is
     run again elsewhere and resumes from the species' cache. Then the cross-species summary
     (:attr:`RunLayout.species_summary`) and the study's report are written. ``names`` are the
-    species (:func:`species_names`, found when not given).
+    species (:func:`species_names`, found when not given). ``run_species(study, layout,
+    progress=)`` runs one species' chain in its folder and ``step_cache(run_dir, settings)``
+    makes the study's step cache (the runner's :func:`~envelope.study.runner.run_species_folder`
+    and :class:`~envelope.study.runner.StepCache`, handed in so this module does not import
+    the runner that calls it).
     """
     say = progress or (lambda stage: None)
     names = species_names(study) if names is None else list(names)
     settings = study.to_dict()
-    cache = StepCache(layout.run_dir, settings)
+    cache = step_cache(layout.run_dir, settings)
     habitat = shared_habitat(study, layout, cache, say)
     jobs = {name: (species_study(study, name, habitat), layout.species(name)) for name in names}
     start = time.perf_counter()
     if client is None:
         outcomes = {}
         for i, (name, (sp_study, sp_layout)) in enumerate(jobs.items(), start=1):
-            outcomes[name] = _species_task(sp_study, sp_layout, name,
+            outcomes[name] = _species_task(run_species, sp_study, sp_layout, name,
                                            progress=lambda stage, i=i, name=name: say(f"{name} ({i}/{len(jobs)}): {stage}"))
     else:
-        outcomes = _run_on_cluster(client, jobs, say)
+        outcomes = _run_on_cluster(client, run_species, jobs, say)
     wall = time.perf_counter() - start
     _raise_first_error(outcomes)
     cache.manifest["species"] = {name: {"folder": str(jobs[name][1].run_dir.relative_to(layout.run_dir)),
@@ -160,11 +164,11 @@ def run_species_study(study, layout: RunLayout, *, progress=None, client=None, n
     return results
 
 
-def _species_task(sp_study, sp_layout: RunLayout, name: str, progress=None) -> dict:
+def _species_task(run_species, sp_study, sp_layout: RunLayout, name: str, progress=None) -> dict:
     """One species' whole chain; an error of the inputs comes back as a value (never retried)."""
     start = time.perf_counter()
     try:
-        result = run_species_folder(sp_study, sp_layout, progress=progress)
+        result = run_species(sp_study, sp_layout, progress=progress)
     except EnvelopeError as exc:
         return {"species": name, "error": type(exc).__name__, "message": str(exc)}
     result["species"] = name
@@ -172,7 +176,7 @@ def _species_task(sp_study, sp_layout: RunLayout, name: str, progress=None) -> d
     return result
 
 
-def _cluster_task(sp_study, sp_layout: RunLayout, name: str) -> dict:
+def _cluster_task(run_species, sp_study, sp_layout: RunLayout, name: str) -> dict:
     """:func:`_species_task` on a worker: the species' own dask work runs on the worker's threads
     (a task that sent its chunks back to the scheduler would wait on the workers it occupies)."""
     import dask
@@ -185,18 +189,18 @@ def _cluster_task(sp_study, sp_layout: RunLayout, name: str) -> dict:
     except (ImportError, ValueError, AttributeError):
         threads, where = 1, "worker"
     with dask.config.set(scheduler="threads", num_workers=max(1, int(threads))):
-        out = _species_task(sp_study, sp_layout, name)
+        out = _species_task(run_species, sp_study, sp_layout, name)
     out["where"] = where
     return out
 
 
-def _run_on_cluster(client, jobs: dict, say) -> dict:
+def _run_on_cluster(client, run_species, jobs: dict, say) -> dict:
     """Every species as a task on ``client``'s cluster; waits for all (finished species stay cached)."""
     from distributed import as_completed
 
     futures = {}
     for name, (sp_study, sp_layout) in jobs.items():
-        fut = client.submit(_cluster_task, sp_study, sp_layout, name, retries=TASK_RETRIES, pure=False,
+        fut = client.submit(_cluster_task, run_species, sp_study, sp_layout, name, retries=TASK_RETRIES, pure=False,
                             key=f"envelope-species-{species_slug(name)}-{time.time_ns()}")
         futures[fut] = name
     say(f"{len(futures)} species sent to the cluster")

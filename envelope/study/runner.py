@@ -166,7 +166,8 @@ def run_study(study, run_dir, *, progress=None, client=None) -> dict:
         if study.multi_species:
             from envelope.study.batch import run_species_study
 
-            return run_species_study(study, layout, progress=progress, client=client, names=names)
+            return run_species_study(study, layout, run_species=run_species_folder, step_cache=StepCache,
+                                     progress=progress, client=client, names=names)
         return _run_locked(study, layout, progress)
 
 

@@ -321,3 +321,10 @@ def test_a_worker_killed_mid_run_is_recovered(local_run, cluster, tmp_path):
     killed = next(name for name in (ALPHA, BETA) if species_slug(name) in str(keys[0]))
     assert outcome["result"]["species"][killed]["where"] != victim  # finished on a live worker
     assert digests(out) == digests(run_dir)
+
+
+def test_run_help_names_the_scheduler_option():
+    result = CliRunner().invoke(cli, ["run", "--help"])
+    assert result.exit_code == 0
+    assert "--scheduler ADDRESS" in result.output and "species" in result.output
+    assert "$ envelope run many-species.toml --out results/all --scheduler" in result.output
