@@ -36,6 +36,7 @@ __all__ = [
     "plot_range_sizes",
     "plot_gain_split",
     "plot_mesh_size_by_latitude",
+    "plot_species_ranking",
     "figure_to_png_bytes",
     "figure_to_data_uri",
     "add_scale_bar",
@@ -895,6 +896,49 @@ def plot_gain_split(table, *, title: str = "What becomes of the climatic gain") 
     ax.grid(True, axis="x", color="0.85", linewidth=0.5)
     ax.set_axisbelow(True)
     ax.legend(fontsize=8, loc="lower right", framealpha=0.9)
+    ax.set_title(title, fontsize=11)
+    return fig
+
+
+_RANKING_COLOURS = ("blue", "vermillion", "bluish_green", "orange", "reddish_purple", "sky_blue", "yellow")
+_RANKING_MARKERS = ("o", "s", "D", "^", "v", "P", "X")
+
+
+def plot_species_ranking(table, pathways, *, title: str = "Share of the climatic gain out of reach") -> Figure:
+    """Species ranked top to bottom: per pathway, the share of the gain out of reach with its interval.
+
+    Parameters
+    ----------
+    table : DataFrame with columns species and, per pathway P, ``P`` (share 0-1), ``P.low`` and
+        ``P.high`` (its interval; NaN draws no bar), in the order to draw (first row at the top),
+        as from :func:`envelope.study.summary.out_of_reach`
+    pathways : the pathways to draw, one colour and marker each (colour-blind-safe palette)
+    """
+    pathways = list(pathways)
+    _require_columns(table, ["species", *pathways, *(f"{p}.{e}" for p in pathways for e in ("low", "high"))],
+                     "plot_species_ranking: table")
+    n, k = len(table), max(len(pathways), 1)
+    fig = _plot_figure((7.5, 0.42 * n + 1.6))
+    ax = fig.subplots()
+    pos = np.arange(n, dtype=float)
+    for i, p in enumerate(pathways):
+        y = pos + (i - (k - 1) / 2) * min(0.6 / k, 0.25)
+        colour = palettes.OKABE_ITO[_RANKING_COLOURS[i % len(_RANKING_COLOURS)]]
+        mid = pd.to_numeric(table[p], errors="coerce").to_numpy(float) * 100
+        lo = pd.to_numeric(table[f"{p}.low"], errors="coerce").to_numpy(float) * 100
+        hi = pd.to_numeric(table[f"{p}.high"], errors="coerce").to_numpy(float) * 100
+        bars = np.isfinite(lo) & np.isfinite(hi)
+        ax.hlines(y[bars], lo[bars], hi[bars], color=colour, linewidth=2, alpha=0.7)
+        ax.plot(mid, y, linestyle="none", marker=_RANKING_MARKERS[i % len(_RANKING_MARKERS)], color=colour,
+                markeredgecolor="0.2", markeredgewidth=0.5, label=f"pathway {p}")
+    ax.set_yticks(pos, table["species"].astype(str).tolist(), fontsize=8, fontstyle="italic")
+    ax.invert_yaxis()
+    ax.set_xlim(0, 100)
+    ax.set_xlabel("climatic gain out of reach (%)")
+    ax.grid(True, axis="x", color="0.85", linewidth=0.5)
+    ax.set_axisbelow(True)
+    if pathways:
+        ax.legend(fontsize=8, loc="lower right", framealpha=0.9)
     ax.set_title(title, fontsize=11)
     return fig
 

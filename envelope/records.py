@@ -394,6 +394,29 @@ def _taxon_columns(table):
     return [c for c in (find_column(table, t) for t in DWC_TAXON_TERMS) if c is not None]
 
 
+def _taxon_keys(table: pd.DataFrame, columns):
+    """Records per canonical taxon name (most frequent first) and each name's most used spelling."""
+    names = pd.Series([None] * len(table), dtype=object)
+    for column in columns:
+        values = table[column].astype("string").str.strip()
+        names = names.where(names.notna(), values.where(values.notna() & (values != ""), None).astype(object))
+    keys = names.map(canonical_name)
+    spelled = pd.DataFrame({"key": keys, "name": names}).loc[keys != ""]
+    counts = spelled["key"].value_counts()
+    display = {k: spelled.loc[spelled["key"] == k, "name"].value_counts().index[0] for k in counts.index}
+    return counts, display
+
+
+def taxon_counts(table: pd.DataFrame) -> dict | None:
+    """Records per taxon, ``{name: records}``, most frequent first (names as :func:`select_taxon`
+    reads them: its most used spelling of each); None when the table has no taxon column."""
+    columns = _taxon_columns(table)
+    if not columns:
+        return None
+    counts, display = _taxon_keys(table, columns)
+    return {display[k]: int(v) for k, v in counts.items()}
+
+
 def select_taxon(table: pd.DataFrame, species: str | None = None, *, source: str = "records",
                  option: str = "--species"):
     """Which records are of one taxon: a boolean mask and a description of the taxa found.
@@ -426,14 +449,7 @@ def select_taxon(table: pd.DataFrame, species: str | None = None, *, source: str
             raise InputError(f"{source}: {option} {species!r} given, but the records have no "
                              f"{', '.join(DWC_TAXON_TERMS)} column to match it in")
         return np.ones(n, dtype=bool), None
-    names = pd.Series([None] * n, dtype=object)
-    for column in columns:
-        values = table[column].astype("string").str.strip()
-        names = names.where(names.notna(), values.where(values.notna() & (values != ""), None).astype(object))
-    keys = names.map(canonical_name)
-    spelled = pd.DataFrame({"key": keys, "name": names}).loc[keys != ""]
-    counts = spelled["key"].value_counts()
-    display = {k: spelled.loc[spelled["key"] == k, "name"].value_counts().index[0] for k in counts.index}
+    counts, display = _taxon_keys(table, columns)
     taxa_counts = {display[k]: int(v) for k, v in counts.items()}
 
     def shown(items):

@@ -5,9 +5,9 @@ from __future__ import annotations
 from envelope.io.atomic import atomic_output, check_writable
 from envelope.io.rasters import open_climate
 from envelope.io.records import read_occurrences
-from envelope.records import clean_occurrences
+from envelope.records import clean_occurrences, select_taxon, taxon_counts
 
-__all__ = ["clean_records_file"]
+__all__ = ["clean_records_file", "records_taxa"]
 
 
 def clean_records_file(records_path, climate, *, x_column=None, y_column=None, crs=None, max_uncertainty_m=None,
@@ -34,3 +34,17 @@ def clean_records_file(records_path, climate, *, x_column=None, y_column=None, c
     if out is not None:
         summary["out"] = str(out)
     return summary
+
+
+def records_taxa(records_path, *, x_column=None, y_column=None, crs=None, species=(),
+                 option: str = "records.species") -> dict | None:
+    """The taxa an occurrence file names, ``{name: records}`` (None when it has no taxon column).
+
+    Each name of ``species`` is matched as the cleaning matches it
+    (:func:`envelope.records.select_taxon`); InputError names the first that matches no record,
+    with the nearest names.
+    """
+    table = read_occurrences(records_path, x_column=x_column, y_column=y_column, crs=crs)
+    for name in species:
+        select_taxon(table, name, source=str(records_path), option=option)
+    return taxon_counts(table)

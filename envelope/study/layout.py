@@ -8,7 +8,8 @@ from pathlib import Path
 
 from envelope.errors import InputError
 
-__all__ = ["LOCK_NAME", "MANIFEST_NAME", "REACH_SET_FILES", "RunLayout", "reach_inputs_from_run", "study_dispersal", "study_start_options"]
+__all__ = ["LOCK_NAME", "MANIFEST_NAME", "REACH_SET_FILES", "RunLayout", "reach_inputs_from_run", "species_slug",
+           "study_dispersal", "study_start_options"]
 
 MANIFEST_NAME = "manifest.json"
 #: The lock file a run holds in its folder (see envelope.study.runner.run_folder_lock).
@@ -16,6 +17,18 @@ LOCK_NAME = ".envelope-run.lock"
 REACH_FILES = ("classes", "summary", "front", "arrival")
 #: Extra files of a pathway's reach run set (all climate models, methods, distances and replicates)
 REACH_SET_FILES = ("probability", "runs")
+#: The folder of a multi-species run that holds one run folder per species
+SPECIES_FOLDER = "species"
+
+
+def species_slug(name: str) -> str:
+    """The folder name of a species in a multi-species run: lower case, runs of anything but
+    ASCII letters and digits made one ``-`` (``"Aus bus var. cus"`` -> ``"aus-bus-var-cus"``)."""
+    import re
+    import unicodedata
+
+    ascii_name = unicodedata.normalize("NFKD", str(name)).encode("ascii", "ignore").decode()
+    return re.sub(r"[^a-z0-9]+", "-", ascii_name.lower()).strip("-")
 
 
 @dataclass(frozen=True)
@@ -38,6 +51,15 @@ class RunLayout:
           uncertainty_partition.csv          variance shares of reachable gain and range change by source
           report.html
           .envelope-run.lock                 held by the run writing into the folder
+
+    A multi-species study (``records.species`` a list or ``"all"``) keeps one such folder per
+    species, and the cross-species results beside them::
+
+        RUN_DIR/
+          manifest.json, report.html, .envelope-run.lock   as above: the study's own
+          species_summary.csv                one row per species (envelope.study.summary)
+          shared/habitat<ext>                habitat on the climate grid, when it needs work (once)
+          species/<slug>/...                 each species' run folder, laid out as above (:meth:`species`)
     """
 
     run_dir: Path
@@ -161,6 +183,24 @@ class RunLayout:
     @property
     def report(self) -> Path:
         return self.run_dir / "report.html"
+
+    # ------------------------------------------------------------------ multi-species studies
+    @property
+    def species_dir(self) -> Path:
+        return self.run_dir / SPECIES_FOLDER
+
+    def species(self, name: str) -> "RunLayout":
+        """The run folder of species ``name`` in a multi-species run (:func:`species_slug`)."""
+        return RunLayout(self.species_dir / species_slug(name), self.ext, self.methods)
+
+    @property
+    def species_summary(self) -> Path:
+        return self.run_dir / "species_summary.csv"
+
+    @property
+    def shared_habitat(self) -> Path:
+        """Habitat on the climate grid, made once for every species when it needs work."""
+        return self.run_dir / "shared" / f"habitat{self.ext}"
 
 
 def study_dispersal(study, *, stochastic: bool = True):

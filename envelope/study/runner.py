@@ -129,7 +129,7 @@ def _scenario_table(study, layout: RunLayout) -> Path:
     return target
 
 
-def run_study(study, run_dir, *, progress=None) -> dict:
+def run_study(study, run_dir, *, progress=None, client=None) -> dict:
     """Run a validated study (:func:`envelope.study.schema.load_study`) into ``run_dir``.
 
     Steps: fit each method; project today's climate and every scenario (MESS, ensembles) with
@@ -142,6 +142,11 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     Before any work: the run folder must not be (or contain) a folder of the inputs, and
     every grid must fit the baseline (:mod:`envelope.study.preflight`); then the run
     holds the folder's lock, so a second run into the same folder is refused.
+
+    A multi-species study (``records.species`` a list or ``"all"``) runs every species in its
+    own folder (:func:`envelope.study.batch.run_species_study`), as tasks on the
+    dask.distributed ``client`` when one is given; a single-species study ignores ``client``
+    (its dask work goes to the default client, when one is set).
     """
     from envelope.study.preflight import check_run_folder, check_study_grids
 
@@ -149,9 +154,31 @@ def run_study(study, run_dir, *, progress=None) -> dict:
     run_dir = layout.run_dir
     check_run_folder(study, run_dir)
     check_study_grids(study)
+    names = None
+    if study.multi_species:
+        from envelope.study.batch import species_names
+
+        names = species_names(study)  # every listed name checked against the records, before any work
     if run_dir.exists() and not run_dir.is_dir():
         raise InputError(f"--out {run_dir}: exists and is not a folder")
     run_dir.mkdir(parents=True, exist_ok=True)
+    with run_folder_lock(layout):
+        if study.multi_species:
+            from envelope.study.batch import run_species_study
+
+            return run_species_study(study, layout, run_species=run_species_folder, step_cache=StepCache,
+                                     progress=progress, client=client, names=names)
+        return _run_locked(study, layout, progress)
+
+
+def run_species_folder(study, layout: RunLayout, *, progress=None) -> dict:
+    """Run one species of a multi-species study into its own folder ``layout.run_dir``.
+
+    ``study`` is the species' own study (one taxon); the study-wide checks have been made once
+    by :func:`run_study`. The species folder has its own lock and step cache, so a species
+    interrupted anywhere (a worker killed, say) resumes where it stopped.
+    """
+    layout.run_dir.mkdir(parents=True, exist_ok=True)
     with run_folder_lock(layout):
         return _run_locked(study, layout, progress)
 

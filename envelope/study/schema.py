@@ -20,10 +20,12 @@ from envelope.io.tables import SCENARIO_COLUMNS, Scenario, read_scenarios
 __all__ = [
     "ClimateSection", "ComputeSection", "DispersalSection", "HabitatSection", "ModelSection",
     "OutputsSection", "RecordsSection", "RegionSection", "ScenarioSection", "Study", "StudySection",
-    "load_study", "OUTPUT_FORMATS",
+    "load_study", "ALL_SPECIES", "OUTPUT_FORMATS",
 ]
 
 OUTPUT_FORMATS = ("tif", "nc")
+#: ``records.species = "all"``: every taxon the records name, each in its own run folder
+ALL_SPECIES = "all"
 CV_SCHEMES = ("block", "random")
 
 # scheme://host:port, host a name, an IPv4 address or a bracketed IPv6 address; this is the
@@ -55,7 +57,9 @@ class RecordsSection:
     max_uncertainty_m: float | None = None
     years: tuple[int, int] | None = None
     thin_km: float = 0.0
-    species: str = ""
+    #: one taxon (a name; "" = the records' one taxon), or a multi-species study: a tuple of
+    #: names, or "all" (every taxon the records name); see :attr:`Study.multi_species`
+    species: str | tuple[str, ...] = ""
     absences: bool = False
 
 
@@ -178,6 +182,11 @@ class Study:
     @property
     def name(self) -> str:
         return self.study.name
+
+    @property
+    def multi_species(self) -> bool:
+        """True when ``records.species`` is a list of names or ``"all"``: one run folder per species."""
+        return isinstance(self.records.species, tuple) or self.records.species == ALL_SPECIES
 
     @property
     def folder(self) -> Path:
@@ -395,9 +404,21 @@ def _records(c: _Checker, doc) -> RecordsSection:
             c.fail("records.years", f"expected [first, last] with first <= last, got {years}")
         years = (years[0], years[1])
     thin = float(c.number("records.thin_km", c.raw(t, "thin_km", 0.0), ge=0))
-    species = c.string("records.species", c.raw(t, "species", ""), allow_empty=True).strip()
+    species = _records_species(c, c.raw(t, "species", ""))
     absences = c.boolean("records.absences", c.raw(t, "absences", False))
     return RecordsSection(path, x_col, y_col, crs, max_unc, years, thin, species, absences)
+
+
+def _records_species(c: _Checker, value) -> str | tuple[str, ...]:
+    """``records.species``: one name (a string), a list of names, or "all" (a multi-species study)."""
+    if isinstance(value, list):
+        names = c.string_list("records.species", [v.strip() if isinstance(v, str) else v for v in value])
+        if ALL_SPECIES in names:
+            c.fail("records.species", f"{ALL_SPECIES!r} stands alone (species = \"{ALL_SPECIES}\"), not in a list of names")
+        return names
+    if not isinstance(value, str):
+        c.bad("records.species", f"a taxon name, a list of names, or \"{ALL_SPECIES}\"", value)
+    return value.strip()
 
 
 def _climate(c: _Checker, doc) -> ClimateSection:
