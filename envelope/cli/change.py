@@ -5,6 +5,7 @@ from __future__ import annotations
 import click
 
 from envelope.cli.options import overwrite_opt, polygons_opt
+from envelope.cli.progress import ProgressBar
 
 _existing = click.Path(exists=True, dir_okay=False)
 
@@ -84,35 +85,3 @@ def change(now, future, out, summary, scenarios, out_dir, table, threshold, mess
                f"({'n/a' if pct is None else f'{pct:+.1f}%'}); lost {area['lost']:.1f}, stable {area['stable_total']:.1f}, "
                f"gained {area['gained_total']:.1f} km²")
     click.echo(f"Wrote {out} and {summary}" + (f" and {result['polygons']}" if polygons else ""))
-
-
-class ProgressBar:
-    """A transient rich progress bar on stderr; the context yields ``progress(done, total, what=None)``.
-
-    Drawn only when stderr is a terminal, so piped or logged output carries no blank lines
-    or control codes (used by `change` and `info`).
-    """
-
-    def __init__(self, description: str):
-        self.description = description
-        self.bar = None
-
-    def __enter__(self):
-        from rich.console import Console
-        from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeElapsedColumn
-
-        console = Console(stderr=True)
-        if not console.is_terminal:
-            return self.update
-        self.bar = Progress(TextColumn("{task.description}"), BarColumn(), TaskProgressColumn(), TimeElapsedColumn(),
-                            console=console, transient=True)
-        self.bar.__enter__()
-        self.task = self.bar.add_task(self.description, total=None)
-        return self.update
-
-    def update(self, done, total, what=None):
-        if self.bar is not None:
-            self.bar.update(self.task, completed=done, total=total, **({"description": what} if what else {}))
-
-    def __exit__(self, *exc):
-        return None if self.bar is None else self.bar.__exit__(*exc)

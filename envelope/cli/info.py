@@ -35,7 +35,7 @@ def info(path, as_json, quick):
       $ envelope info climate.nc --json > climate.json
       $ envelope info continent.tif --quick
     """
-    from envelope.cli.change import ProgressBar
+    from envelope.cli.progress import ProgressBar
     from envelope.pipelines.info import describe_grid
 
     with ProgressBar("info") as progress:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import click
 
 from envelope.cli.options import climate_opt, output_opt, overwrite_opt, region_opt, scheduler_opt
+from envelope.cli.progress import ProgressBar
 
 MESS_AUTO = "__beside__"  # --mess given without a file (scenario batch: one MESS per scenario)
 
@@ -72,7 +73,7 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
             raise click.UsageError("--scenarios needs --out-dir")
         from envelope.pipelines.project import project_scenarios
 
-        with _progress_bar() as progress:
+        with ProgressBar("projecting") as progress:
             result = project_scenarios(model_file, scenarios, out_dir, mess=mess is not None, agreement=agreement,
                                        clamp=not no_clamp, overwrite=overwrite, scheduler=scheduler,
                                        progress=progress, region=region)
@@ -94,7 +95,7 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
     from envelope.pipelines.project import project_file
 
     check_distinct({"--out": out, "--mess": mess, "--binary": binary}, {"MODEL_FILE": model_file, "--climate": climate})
-    with _progress_bar() as progress:
+    with ProgressBar("projecting") as progress:
         result = project_file(model_file, list(climate), out, mess_out=mess, binary_out=binary, clamp=not no_clamp,
                               overwrite=overwrite, scheduler=scheduler, progress=progress, region=region)
     click.echo(f"suitability: {result['out']} ({result['method']}, threshold {result['threshold']:.4g})")
@@ -104,23 +105,3 @@ def project(model_file, climate, out, mess, binary, no_clamp, scenarios, out_dir
         click.echo(f"binary: {result['binary']}")
     if result["n_infinite"]:
         click.echo(f"nodata: {result['n_infinite']} cells with +inf/-inf climate values")
-
-
-class _progress_bar:
-    """A transient rich progress bar on stderr; yields ``progress(done, total, what=None)``."""
-
-    def __enter__(self):
-        from rich.console import Console
-        from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeElapsedColumn
-
-        self.bar = Progress(TextColumn("{task.description}"), BarColumn(), TaskProgressColumn(), TimeElapsedColumn(),
-                            console=Console(stderr=True), transient=True)
-        self.bar.__enter__()
-        self.task = self.bar.add_task("projecting", total=None)
-        return self.update
-
-    def update(self, done, total, what=None):
-        self.bar.update(self.task, completed=done, total=total, **({"description": what} if what else {}))
-
-    def __exit__(self, *exc):
-        return self.bar.__exit__(*exc)
