@@ -181,6 +181,25 @@ class RunLayout:
         return self.run_dir / "uncertainty_partition.csv"
 
     @property
+    def observed_dir(self) -> Path:
+        """What was observed between two recording periods (``[margins]``): margins and hindcast."""
+        return self.run_dir / "observed"
+
+    @property
+    def margins_summary(self) -> Path:
+        return self.observed_dir / "margins.json"
+
+    @property
+    def hindcast_dir(self) -> Path:
+        return self.observed_dir / "hindcast"
+
+    @property
+    def hindcast_summary(self) -> Path:
+        from envelope.pipelines.hindcast import HINDCAST_FILES
+
+        return self.hindcast_dir / HINDCAST_FILES["summary"]
+
+    @property
     def report(self) -> Path:
         return self.run_dir / "report.html"
 

@@ -137,6 +137,9 @@ def build_report(study, layout, *, fit_summary, suitability, change=True, reach_
             "colonisation rate and persistence (see Dispersal assumptions), which for most species are poorly "
             "known. The intervals span only the runs made here (the climate models, distances and replicates "
             "listed), not every way dispersal could differ; take the values from field evidence where it exists.")
+    observed = _observed_html(layout)
+    if observed:
+        rep.add_section("observed", "Observed so far", html=observed)
     rep.add_section("cautions", paragraphs=cautions)
     rep.add_section("methods", paragraphs=[
         "Presence/background point-process model (penalised logistic regression with weighted background, "
@@ -283,3 +286,14 @@ def _reach_maps(reach_rows, summaries, land, horizon) -> list:
                                                 cmap=year_cmap().reversed(), land_mask=land),
                          f"Share of runs in which the cell is occupied by {horizon} — {run}"))
     return maps
+
+
+def _observed_html(layout) -> str:
+    """The "Observed so far" section from the run's margins (and hindcast) summaries, or ""."""
+    from envelope.study.observed import observed_so_far_html
+
+    if not layout.margins_summary.exists():
+        return ""
+    margins = json.loads(layout.margins_summary.read_text())
+    hindcast = json.loads(layout.hindcast_summary.read_text()) if layout.hindcast_summary.exists() else None
+    return observed_so_far_html(margins, hindcast)

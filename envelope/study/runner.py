@@ -312,6 +312,10 @@ def _run_locked(study, layout: RunLayout, progress) -> dict:
         reach_rows = _run_reach_sets(study, layout, cache, threshold, say)
         results["reach"] = reach_rows
 
+    # 4b. what was observed between two recording periods ([margins]) -------------------
+    if study.margins is not None:
+        _run_observed(study, layout, cache, settings, say)
+
     # 5. figures and report ---------------------------------------------------------------
     if study.outputs.report:
         from envelope.study.report import build_report
@@ -324,7 +328,8 @@ def _run_locked(study, layout: RunLayout, progress) -> dict:
         report_inputs = [p for p in [now_path, suit_table, layout.change_table, layout.fit_summary()]
                          if Path(p).exists()]
         report_inputs += [Path(r["summary"]) for r in reach_rows]
-        report_inputs += [p for p in [layout.uncertainty_partition] if p.exists()]
+        report_inputs += [p for p in [layout.uncertainty_partition, layout.margins_summary,
+                                      layout.hindcast_summary] if p.exists()]
         cache.run("report", {"study": settings["study"], "figures": study.outputs.figures}, report_inputs,
                   [layout.report], do_report)
         results["report"] = str(layout.report)
@@ -443,3 +448,44 @@ def _run_reach_sets(study, layout: RunLayout, cache, threshold, say) -> list:
         cache.run("uncertainty", {"factors": list(PARTITION_FACTORS), "quantities": PARTITION_QUANTITIES},
                   pathway_runs, [layout.uncertainty_partition], do_partition)
     return rows
+
+
+def _run_observed(study, layout: RunLayout, cache, settings, say) -> None:
+    """Observed margin shifts between the ``[margins]`` periods and, with ``hindcast_climate``, the hindcast."""
+    from envelope.pipelines.hindcast import HINDCAST_FILES, HindcastOptions, hindcast_files
+    from envelope.pipelines.margins import MarginOptions, margins_files
+
+    m = study.margins
+    species = m.species or (study.records.species if isinstance(study.records.species, str) else None)
+    if not species:
+        raise InputError(f"{study.path}: margins.species: no focal species; give margins.species or "
+                         "records.species (the other taxa of the records measure recording effort)")
+    baseline = list(study.climate.baseline)
+    inputs = [study.records.path, *map(Path, baseline)] + [p for p in (m.effort, m.elevation) if p]
+    key = {"margins": settings.get("margins"), "records": settings["records"]}
+
+    def do_margins():
+        say("observed margin shifts")
+        layout.observed_dir.mkdir(exist_ok=True)
+        margins_files(study.records.path, baseline, layout.margins_summary,
+                      options=MarginOptions(periods=m.periods, species=species, n_cells=m.n_cells,
+                                            min_records=m.min_records, bootstrap=m.bootstrap,
+                                            effort_correction=m.effort_correction, seed=study.model.seed),
+                      effort=m.effort, elevation=m.elevation, overwrite=True)
+
+    cache.run("margins", key, inputs, [layout.margins_summary], do_margins)
+    if m.hindcast_climate:
+        first, second = m.hindcast_climate
+
+        def do_hindcast():
+            say("hindcast")
+            layout.observed_dir.mkdir(exist_ok=True)
+            hindcast_files(study.records.path, first, second, layout.hindcast_dir,
+                           options=HindcastOptions(periods=m.periods, species=species,
+                                                   method=study.model.methods[0], background=study.model.background,
+                                                   folds=study.model.folds, n_cells=m.n_cells,
+                                                   min_records=m.min_records, seed=study.model.seed),
+                           overwrite=True)
+
+        cache.run("hindcast", {**key, "model": settings["model"]}, [study.records.path, first, second],
+                  [layout.hindcast_dir / name for name in HINDCAST_FILES.values()], do_hindcast)

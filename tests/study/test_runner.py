@@ -402,3 +402,26 @@ def test_runs_killed_at_random_moments_resume_to_the_clean_result(full_run, tmp_
     assert result.exit_code == 0, result.output
     assert not list(resumed.rglob("*.part*"))
     assert digests(resumed) == digests(run_dir)
+
+
+def test_margins_table_runs_observed_shifts_into_the_run_and_report(tmp_path):
+    # Common practice, no source: a study with [margins] measures the observed shift as
+    # `envelope margins` does (the same summary, number for number) and the report shows it
+    from envelope.pipelines.margins import MarginOptions, margins_files
+    from envelope.study.runner import run_study
+
+    p = small_study(tmp_path)
+    text = p.read_text().replace("[outputs]\nfigures = false\n", "") + (
+        '\n[margins]\nperiods = "1975-2005,2006-2024"\nspecies = "Fictocarabus demonstratus"\n'
+        'n_cells = 5\nmin_records = 1\nbootstrap = 20\n\n[outputs]\nfigures = false\n')
+    p.write_text(text)
+    run_dir = tmp_path / "run"
+    results = run_study(load_study(p), run_dir)
+    assert "margins" in results["ran"]
+    got = json.loads((run_dir / "observed" / "margins.json").read_text())
+    direct = margins_files(DEMO / "presences.csv", [DEMO / "baseline.tif"], tmp_path / "direct.json",
+                           options=MarginOptions(periods="1975-2005,2006-2024", species="Fictocarabus demonstratus",
+                                                 n_cells=5, min_records=1, bootstrap=20, seed=0))
+    assert got["poleward_margin_shift_km"] == pytest.approx(direct["poleward_margin_shift_km"], rel=1e-12)
+    report = (run_dir / "report.html").read_text()
+    assert "Observed so far" in report
