@@ -87,10 +87,14 @@ def morans_i(values, weights) -> float:
         raise InputError(f"weights: found shape {w.shape}; expected ({x.size}, {x.size})")
     z = x - x.mean()
     s0 = w.sum()
-    ss = float(z @ z)
+    # plain NumPy sums, not BLAS products: a multi-threaded BLAS adds in an order that varies
+    # with its thread count, and the summary should not change in its last digit between
+    # processes (a local run against a cluster worker)
+    ss = float(np.sum(z * z))
     if s0 == 0 or ss == 0:
         return float("nan")
-    return float(x.size / s0 * (z @ w @ z) / ss)
+    cross = float(np.sum(np.sum(w * z[None, :], axis=1) * z))
+    return float(x.size / s0 * cross / ss)
 
 
 def distance_classes(max_km: float, n_classes: int = 10) -> np.ndarray:
