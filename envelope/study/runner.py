@@ -456,7 +456,7 @@ def _run_observed(study, layout: RunLayout, cache, settings, say) -> None:
     from envelope.pipelines.margins import MarginOptions, margins_files
 
     m = study.margins
-    species = m.species or (study.records.species if isinstance(study.records.species, str) else None)
+    species = m.species or (None if study.multi_species else study.records.species)
     if not species:
         raise InputError(f"{study.path}: margins.species: no focal species; give margins.species or "
                          "records.species (the other taxa of the records measure recording effort)")
