@@ -6,7 +6,6 @@ import base64
 import io
 import math
 import sys
-from pathlib import Path
 
 import numpy as np
 import pandas as pd

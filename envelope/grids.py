@@ -384,7 +384,6 @@ def _areal_scale_block(ys: np.ndarray, xs: np.ndarray, *, wkt: str) -> np.ndarra
     to_geo = Transformer.from_crs(crs, crs.geodetic_crs, always_xy=True)
     lon, lat = to_geo.transform(xx, yy)
     factors = Proj(crs).get_factors(lon, lat)
-    a = crs.ellipsoid.semi_major_metre
     inv_f = crs.ellipsoid.inverse_flattening
     e2 = 0.0 if not inv_f else (1.0 / inv_f) * (2.0 - 1.0 / inv_f)
     phi = np.deg2rad(lat)

@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import contextlib
 import functools
-import os
 
 import numpy as np
 import xarray as xr

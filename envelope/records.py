@@ -13,9 +13,8 @@ import pandas as pd
 import pyproj
 import xarray as xr
 
-from envelope.errors import GridMismatchError, InputError
-from envelope.grids import (check_grid_dims, check_same_shape, crs_label, grid_crs, lon_into_grid, parse_crs,
-                            valid_cells)
+from envelope.errors import InputError
+from envelope.grids import check_grid_dims, crs_label, grid_crs, lon_into_grid, parse_crs
 from envelope.terms import DWC_LATITUDE, DWC_LONGITUDE, DWC_TAXON_TERMS, MALFORMED_FLAG, to_float
 
 log = logging.getLogger(__name__)

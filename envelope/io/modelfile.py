@@ -9,9 +9,7 @@ import logging
 import zipfile
 from pathlib import Path
 
-import numpy as np
 
-from envelope import __version__
 from envelope.errors import InputError, ModelError
 from envelope.io.atomic import atomic_output
 from envelope.provenance import json_plain, software_versions

@@ -169,7 +169,7 @@ def _window_chunks(chunks, reader, block_shape) -> tuple:
                                 previous_chunks=(shape[0],) + tuple(block_shape))
     if isinstance(chunks, dict):
         band = chunks.get("band", chunks.get("variable", -1))
-        (block_y, block_x), (height, width) = block_shape, shape[1:]
+        (block_y, block_x), width = block_shape, shape[2]
         y, x = chunks.get("y", "auto"), chunks.get("x", "auto")
         strips = block_x >= width and block_y < block_x
         if isinstance(x, int) and x > 0:

@@ -8,7 +8,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from envelope.errors import InputError
-from envelope.kernels.spread import SpreadOperator
 
 __all__ = ["ClimatePath", "TransientResult", "run_transient", "step_years_list"]
 

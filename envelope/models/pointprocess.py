@@ -12,7 +12,7 @@ from envelope.errors import InputError, ModelError
 from envelope.models.features import DEFAULT_CLASSES, FEATURE_CLASSES, FeatureExpander
 from envelope.models.base import PresenceBackgroundClassifier
 from envelope.models.selection import one_standard_error_choice
-from envelope.models.tuning import clear_path_cache, score_paths
+from envelope.models.tuning import clear_path_cache, score_paths  # noqa: F401 (clear_path_cache: re-exported)
 
 # Multiplier of the default background weight: total background weight = 100 x presences.
 # Fithian & Hastie (2013) show the weighted fit tends to the IPP as this grows; at 100 the

@@ -43,12 +43,11 @@ def _training_key(model, X, y, w, log_effort) -> str | None:
 class _Fold:
     """One training/held-out split of one feature set: features built once, reused for every C."""
 
-    def __init__(self, model, X, y, w, train, test, classes, log_effort):
-        self.model, self.classes = model, classes
+    def __init__(self, model, X, y, w, train, test, classes, log_effort, key):
+        self.model, self.classes, self.key = model, classes, key
         self.y_train, self.w_train, self.y_test = y[train], w[train], y[test]
         self.log_effort_train = None if log_effort is None else log_effort[train]
         self.log_effort_test = None if log_effort is None else log_effort[test]
-        self.key = _training_key(model, X[train], self.y_train, self.w_train, self.log_effort_train)
         self.expander = FeatureExpander(classes=classes, n_knots=model.n_knots,
                                         standardize=model.standardize).fit(X[train], self.y_train,
                                                                             sample_weight=self.w_train)
@@ -122,8 +121,12 @@ def score_paths(model, X, y, w, splits, sets, Cs, log_effort=None):
     patience = model.path_patience
     auc = np.full((len(splits), len(sets), Cs.size), np.nan)
     names = []
+    # one content hash per training fold, shared by every candidate set
+    keys = [_training_key(model, X[train], y[train], w[train], None if log_effort is None else log_effort[train])
+            for train, _ in splits]
     for j, classes in enumerate(sets):
-        folds = [_Fold(model, X, y, w, train, test, classes, log_effort) for train, test in splits]
+        folds = [_Fold(model, X, y, w, train, test, classes, log_effort, key)
+                 for (train, test), key in zip(splits, keys)]
         names.append(list(folds[0].expander.classes_used_))
         best, since_best = -np.inf, 0
         for c in order:

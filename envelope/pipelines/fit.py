@@ -409,8 +409,6 @@ def write_fit_outputs(result: FitResult, model_path, summary_path=None, *, overw
     writes its layer as ``<model stem>.autocovariate.tif`` (:func:`autocovariate_path`), the
     layer a projection holds at today's neighbourhood.
     """
-    import json
-
     from envelope.io.atomic import atomic_outputs, check_writable
     from envelope.io.modelfile import save_model
 

@@ -5,7 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
 
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_outputs, check_writable, remove_empty_folder

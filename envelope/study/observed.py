@@ -89,7 +89,7 @@ def observed_so_far_html(margins: dict | None, hindcast: dict | None = None) -> 
     if margins.get("elevation_shift_m") is not None:
         rows.append(f"<tr><td>mean elevation</td><td>{margins['elevation_shift_m']:+.0f} m</td></tr>")
     used = margins.get("n_cells_used", {})
-    parts = [f"<section><h2>Observed so far</h2>",
+    parts = ["<section><h2>Observed so far</h2>",
              f"<p>Margin shifts of the records between {html.escape(a)} and {html.escape(b)}: mean latitude "
              f"of the {margins.get('n_cells', 10)} most poleward (equatorward) occupied cells, km along the "
              f"meridian, positive = poleward, 95 % bootstrap interval in brackets; cells used "

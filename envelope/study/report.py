@@ -18,8 +18,6 @@ def build_report(study, layout, *, fit_summary, suitability, change=True, reach_
     """
     from envelope import figures
     from envelope.io.rasters import open_layer
-    from envelope.palettes import CHANGE_CLASS_COLOURS, REACH_CLASS_COLOURS
-    from envelope.reach import REACH_CLASSES
     from envelope.study.html import Report, records_table
 
     from envelope.study.findings import assumptions_table, findings, partition_frame
@@ -75,9 +73,6 @@ def build_report(study, layout, *, fit_summary, suitability, change=True, reach_
     tables = []
     if change and layout.change_table.exists():
         ct = pd.read_csv(layout.change_table)
-        cols = [c for c in ("name", "pathway", "climate_model", "horizon", "range_km2.now", "range_km2.future",
-                            "range_change_pct", "area_km2.gained", "area_km2.gained_novel", "area_km2.lost", "leading_edge_shift_km",
-                            "centroid_shift_km") if c in ct]
         rep.add_section("areas", table=_change_frame(ct), table_caption="Range change by scenario (areas in km², "
                         "shifts in km, change in % of today's range); gained excludes gained in novel climate, "
                         "listed apart; stable in novel climate is part of stable")
