@@ -90,15 +90,28 @@ class WindowWriter:
 
     Wraps one open, writable rasterio dataset; ``store`` serialises the writes with its
     lock, so the computation of blocks stays parallel while GDAL sees one writer.
+    :meth:`close` must run before the dataset is closed: when one block fails, dask's
+    local scheduler raises at once while other threads may still be storing theirs, and a
+    write into a closed GDAL dataset crashes the process. After ``close`` (which waits for a
+    write in progress) later writes are dropped; the output is being discarded anyway.
     """
 
     def __init__(self, dataset):
         self.dataset = dataset
+        self._guard = threading.Lock()
+        self._closed = False
 
     def __setitem__(self, key, value):
         (b0, b1), window = _band_range_and_window(key, (self.dataset.count, self.dataset.height,
                                                         self.dataset.width))
-        self.dataset.write(np.asarray(value), indexes=list(range(b0 + 1, b1 + 1)), window=window)
+        with self._guard:
+            if not self._closed:
+                self.dataset.write(np.asarray(value), indexes=list(range(b0 + 1, b1 + 1)), window=window)
+
+    def close(self) -> None:
+        """Refuse further writes (waiting for one in progress); call before closing the dataset."""
+        with self._guard:
+            self._closed = True
 
 
 def _band_range_and_window(key, shape):

@@ -280,7 +280,9 @@ def _stage_task(prep: _Prepared, tmp: Path, stages: contextlib.ExitStack):
     if not isinstance(data, dsa.Array):
         dst.write(np.asarray(data))
         return None
-    return dsa.store(data, WindowWriter(dst), lock=threading.Lock(), compute=False)
+    writer = WindowWriter(dst)
+    stages.callback(writer.close)  # runs before the dataset closes (the stack unwinds in reverse)
+    return dsa.store(data, writer, lock=threading.Lock(), compute=False)
 
 
 def _remove_stage(stage: Path) -> None:
