@@ -2,23 +2,209 @@
 
 from __future__ import annotations
 
+import hashlib
+import threading
+import warnings
+from collections import OrderedDict
+
 import numpy as np
 from sklearn.base import BaseEstimator, clone
-from sklearn.model_selection import GroupKFold, StratifiedKFold, cross_val_score
+from sklearn.model_selection import GroupKFold, StratifiedKFold
 
 from envelope.errors import InputError, ModelError
 from envelope.models.base import PresenceBackgroundClassifier
 
+#: Member fits remembered across ensemble fits. A 5-fold nested cross-validation of a
+#: three-member ensemble meets 16 distinct training sets per member (all rows, the 5
+#: "all folds but k" and the 10 "all folds but j and k"); a fitted member is at most a
+#: few MiB (the 50 trees of the down-sampled forest).
+MEMBER_FIT_CACHE_SIZE = 64
+#: Folds of the cross-validation that scores each member (:func:`default_cv_auc`).
+INNER_FOLDS = 5
+_FITS: OrderedDict = OrderedDict()
+_FITS_LOCK = threading.Lock()
 
-def default_cv_auc(estimator, X, y, groups=None, *, n_folds=5, random_state=0) -> float:
-    """Mean held-out AUC of ``estimator``: GroupKFold over ``groups`` or stratified random folds."""
+
+def _fit_key(estimator, X, y, w, groups) -> str | None:
+    """Content hash of a member's settings and training rows; None when the fit is not
+    repeatable (a ``random_state`` of None anywhere in its settings)."""
+    params = estimator.get_params(deep=True)
+    if any(k.endswith("random_state") and v is None for k, v in params.items()):
+        return None
+    h = hashlib.blake2b(digest_size=20)
+    h.update(f"{type(estimator).__module__}.{type(estimator).__qualname__}".encode())
+    h.update(repr(sorted((k, v) for k, v in estimator.get_params(deep=False).items())).encode())
+    for a in (X, y, w, groups):
+        if a is None:
+            h.update(b"none")
+            continue
+        a = np.ascontiguousarray(a)
+        h.update(f"{a.dtype.str}{a.shape}".encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _usable_groups(groups):
+    """``groups``, or None when it holds fewer than two fold ids (nothing to split by)."""
+    if groups is None or np.unique(groups).size < 2:
+        return None
+    return groups
+
+
+def fit_member(estimator, X, y, sample_weight=None, groups=None):
+    """``clone(estimator).fit(X, y, ...)``, remembered by the content of the training rows.
+
+    Fold ids go to members whose ``fit`` takes ``groups`` (the point-process penalty is
+    tuned on them). The same member on the same rows, weights and fold ids is the same
+    fit, so it is fitted once (see :data:`MEMBER_FIT_CACHE_SIZE`); the returned estimator
+    is shared and must not be refitted in place. Fold ids that leave a single id (an
+    inner part of a 3-fold cross-validation) are dropped: the member tunes on its own
+    random folds then, as without fold ids.
+    """
+    groups = _usable_groups(groups)
+    key = _fit_key(estimator, X, y, sample_weight, groups)
+    if key is not None:
+        with _FITS_LOCK:
+            if key in _FITS:
+                _FITS.move_to_end(key)
+                return _FITS[key]
+    fitted = clone(estimator).fit(X, y, sample_weight=sample_weight, **_groups_for(estimator, groups))
+    if key is not None:
+        with _FITS_LOCK:
+            _FITS[key] = fitted
+            while len(_FITS) > MEMBER_FIT_CACHE_SIZE:
+                _FITS.popitem(last=False)
+    return fitted
+
+
+def clear_member_fits() -> None:
+    """Forget every remembered member fit (see :func:`fit_member`)."""
+    with _FITS_LOCK:
+        _FITS.clear()
+
+
+def _cv_splits(y, groups, n_folds, random_state) -> list:
+    """The (train, test) index pairs of :func:`default_cv_auc`."""
     if groups is not None:
         cv = GroupKFold(n_splits=min(n_folds, np.unique(groups).size))
     else:
-        cv = StratifiedKFold(n_splits=int(min(n_folds, np.bincount(y).min())), shuffle=True,
+        cv = StratifiedKFold(n_splits=int(min(n_folds, np.bincount(y.astype(int)).min())), shuffle=True,
                              random_state=random_state)
-    return float(np.mean(cross_val_score(clone(estimator), X, y, groups=groups, cv=cv,
-                                         scoring="roc_auc")))
+    return list(cv.split(np.zeros((y.size, 1)), y, groups))
+
+
+def default_cv_auc(estimator, X, y, groups=None, *, n_folds=INNER_FOLDS, random_state=0, sample_weight=None) -> float:
+    """Mean held-out AUC of ``estimator``: GroupKFold over ``groups`` or stratified random folds.
+
+    Each training part is fitted with :func:`fit_member` (its weights and fold ids go
+    along), so the nested cross-validation of an ensemble never fits the same member on
+    the same rows twice. AUC is scikit-learn's ``roc_auc`` scorer; a fold whose fit
+    fails scores NaN with a warning, as in ``sklearn.model_selection.cross_val_score``.
+    """
+    X, y = np.asarray(X), np.asarray(y)
+    groups = None if groups is None else np.asarray(groups)
+    from sklearn.metrics import get_scorer
+
+    scorer = get_scorer("roc_auc")
+    scores = []
+    for train, test in _cv_splits(y, groups, n_folds, random_state):
+        part = (lambda a: None if a is None else np.asarray(a)[train])
+        try:
+            fitted = fit_member(estimator, X[train], y[train], part(sample_weight), part(groups))
+        except Exception as exc:  # noqa: BLE001 - cross_val_score's error_score=nan behaviour
+            warnings.warn(f"{type(estimator).__name__}: a cross-validation fit failed ({exc}); its AUC is NaN",
+                          stacklevel=2)
+            scores.append(np.nan)
+            continue
+        scores.append(scorer(fitted, X[test], y[test]))
+    return float(np.mean(scores))
+
+
+def _fit_alone(estimator, X, y, w, groups):
+    """One member fit in a pool worker: one thread for BLAS and OpenMP (the pool already
+    keeps every core busy)."""
+    from threadpoolctl import threadpool_limits
+
+    try:
+        with threadpool_limits(limits=1):
+            return clone(estimator).fit(X, y, sample_weight=w, **_groups_for(estimator, groups))
+    except Exception:  # noqa: BLE001 - the serial code meets the same failure again and reports it
+        return None
+
+
+def prefit_members(ensemble, X, y, folds, *, sample_weight=None, groups=None, n_jobs=None, progress=None) -> int:
+    """Fit, in parallel processes, every member fit a cross-validation of ``ensemble`` over
+    ``folds`` followed by a fit on all rows will ask for, and remember them (:func:`fit_member`).
+
+    A K-fold cross-validation of an ensemble scored by :func:`default_cv_auc` fits each
+    member on every outer training part, on every inner training part of each (with
+    K = 5: "all folds but j and k", ten distinct sets) and on all rows; those fits do not
+    depend on one another, so they run ``n_jobs`` at a time (loky worker processes, one
+    thread each). The fits are the ones the serial code would make, so results are
+    unchanged; only the order of the work is. Nothing is done when the ensemble has
+    ``weights_from`` or a ``score_func`` (no inner cross-validation), when ``n_jobs`` < 2,
+    or for members whose fits are not repeatable (see :func:`fit_member`).
+
+    Parameters
+    ----------
+    ensemble : SkillWeightedEnsemble (unfitted)
+    X, y, sample_weight : the rows the cross-validation and the final fit are given
+    folds : array-like (n_samples,), the outer fold of every row
+    groups : array-like (n_samples,), optional
+        The fold ids passed to ``fit`` as ``groups`` (default: ``folds``).
+    n_jobs : int, optional
+        Worker processes; default the cores this process may use.
+    progress : callable(done, total), optional
+        Called as fits finish.
+
+    Returns
+    -------
+    int, the number of member fits made.
+    """
+    if ensemble.weights_from is not None or ensemble.score_func is not None:
+        return 0
+    if n_jobs is None:
+        import os
+
+        n_jobs = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    if n_jobs < 2:
+        return 0
+    folds = np.asarray(folds)
+    groups = folds if groups is None else np.asarray(groups)
+    w_all = None if sample_weight is None else np.asarray(sample_weight, dtype=np.float64)
+    parts = [~(folds == k) for k in np.unique(folds)] + [np.ones(folds.size, dtype=bool)]
+    tasks = {}
+    for rows in parts:
+        probe = clone(ensemble)
+        Xt, yt, wt = probe._validate_fit_input(np.asarray(X)[rows], np.asarray(y)[rows],
+                                               None if w_all is None else w_all[rows])
+        gt = groups[rows]
+        for _, member in probe.members:
+            sets = [train for train, _ in _cv_splits(yt, gt, INNER_FOLDS, 0)] + [np.arange(yt.size)]
+            for train in sets:
+                args = (member, Xt[train], yt[train], wt[train], _usable_groups(gt[train]))
+                key = _fit_key(*args)
+                if key is not None and key not in tasks:
+                    with _FITS_LOCK:
+                        known = key in _FITS
+                    if not known:
+                        tasks[key] = args
+    if not tasks:
+        return 0
+    from joblib import Parallel, delayed
+
+    results = Parallel(n_jobs=min(n_jobs, len(tasks)), backend="loky", return_as="generator")(
+        delayed(_fit_alone)(*args) for args in tasks.values())
+    for done, (key, est) in enumerate(zip(tasks, results), start=1):
+        if est is not None:
+            with _FITS_LOCK:
+                _FITS[key] = est
+                _FITS.move_to_end(key)
+                while len(_FITS) > MEMBER_FIT_CACHE_SIZE:
+                    _FITS.popitem(last=False)
+        if progress is not None:
+            progress(done, len(tasks))
+    return len(tasks)
 
 
 class SkillWeightedEnsemble(PresenceBackgroundClassifier, BaseEstimator):
@@ -118,8 +304,10 @@ class SkillWeightedEnsemble(PresenceBackgroundClassifier, BaseEstimator):
                                  f"(have {', '.join(map(str, self.weights_from))})")
             auc = {n: float(self.weights_from[n]) for n in names}
         else:
-            score = self.score_func if self.score_func is not None else default_cv_auc
-            auc = {n: float(score(est, X, y, groups)) for n, est in self.members}
+            if self.score_func is not None:
+                auc = {n: float(self.score_func(est, X, y, groups)) for n, est in self.members}
+            else:
+                auc = {n: default_cv_auc(est, X, y, groups, sample_weight=w) for n, est in self.members}
         kept = [n for n in names if auc[n] >= self.auc_floor]
         if not kept:
             shown = ", ".join(f"{n} {a:.3f}" for n, a in auc.items())
@@ -131,8 +319,7 @@ class SkillWeightedEnsemble(PresenceBackgroundClassifier, BaseEstimator):
         by_name = dict(self.members)
         # members that tune themselves on folds (the point-process penalty) get the same
         # spatial folds the ensemble was given
-        self.members_ = [(n, clone(by_name[n]).fit(X, y, sample_weight=w, **_groups_for(by_name[n], groups)))
-                         for n in kept]
+        self.members_ = [(n, fit_member(by_name[n], X, y, w, groups)) for n in kept]
         return self
 
     def _member_suitability(self, X):

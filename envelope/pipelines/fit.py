@@ -241,6 +241,12 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         notes.append("--folds 2: the model's own penalty and feature-class CV splits each training half by "
                      + ("spatial block" if opt.cv == "block" else "five random folds"))
     fit_params = {**_group_params(opt.method, inner), **({} if effort is None else {"effort": effort})}
+    if opt.method == "ensemble" and not _in_dask_worker():
+        # the ensemble's nested CV: every member fit it will need, made in parallel first
+        from envelope.models.ensemble import prefit_members
+
+        prefit_members(make(), X, y, folds, sample_weight=sample_weight, groups=inner,
+                       progress=lambda done, total: report("ensemble member fits", done, total))
     per_fold, cv = evaluation.cross_validate(
         make, X, y, folds, sample_weight=sample_weight, threshold_rule=opt.threshold_rule,
         fit_params=fit_params, progress=lambda k: report("cross-validation", k + 1, opt.folds))
@@ -347,6 +353,17 @@ def split_absences(records):
     presences.attrs = dict(records.table.attrs)
     return (dataclasses.replace(records, table=presences),
             records.table.loc[~is_presence].reset_index(drop=True))
+
+
+def _in_dask_worker() -> bool:
+    """True inside a dask.distributed worker, whose cores the cluster already shares out."""
+    try:
+        from distributed import get_worker
+
+        get_worker()
+        return True
+    except (ImportError, ValueError):
+        return False
 
 
 def build_estimator(method: str, seed: int = 0, features="cv"):

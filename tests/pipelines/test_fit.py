@@ -191,3 +191,31 @@ def test_feature_classes_chosen_by_the_spatial_cv_are_reported(fitted):
     simpler = [s for s in fc["scores"] if len(s["classes"]) < len(fc["chosen"])]
     assert all(s["mean_auc"] < fc["threshold"] for s in simpler)
     assert fitted["envelope"].summary["feature_classes"] is None
+
+
+def test_ensemble_nested_cv_is_prefitted_and_recovers_the_species(stack, monkeypatch):
+    # Every member fit of the ensemble's nested CV is made by prefit_members (in worker
+    # processes); afterwards the CV and the final fit find them all remembered. Analytic
+    # check as above: the demo species' truth (envelope.study.demo.NICHE).
+    import envelope.models.ensemble as ens_mod
+
+    ens_mod.clear_member_fits()
+    original, made = ens_mod.prefit_members, []
+
+    def prefit_then_forbid(*args, **kwargs):
+        made.append(original(*args, **kwargs))
+
+        def no_new_fit(*a, **k):
+            raise AssertionError("a member fit was not prefitted")
+
+        monkeypatch.setattr(ens_mod, "clone", no_new_fit)
+        return made[-1]
+
+    monkeypatch.setattr(ens_mod, "prefit_members", prefit_then_forbid)
+    result = fit_model(DEMO / "presences.csv", stack,
+                       options=FitOptions(method="ensemble", background=1500, folds=3, seed=1, max_uncertainty_m=2000,
+                                          permutation_repeats=1))
+    # 3 members x (all rows + 3 outer parts + 3 "all folds but j and k")
+    assert made == [3 * 7]
+    truth, score = _truth_scores(result, stack)
+    assert roc_auc_score(truth["present"], score) >= 0.85
