@@ -99,7 +99,8 @@ def _suitability_block(block, members, lower, upper):
     total = None
     for weight, table, predict_proba in members:
         if table is not None:
-            s = suitability_table(table, X, lower=lower, upper=upper)
+            # non-finite cells are masked below, so the kernel's own masking is skipped
+            s = suitability_table(table, X, lower=lower, upper=upper, mask_unused=False)
         else:
             # dask already runs one block per core: an estimator's own OpenMP threads
             # (scikit-learn's tree ensembles) would only oversubscribe the cores

@@ -219,13 +219,30 @@ def write_rasters(outputs, *, overwrite=False, also=(), progress=None) -> tuple:
         if netcdf:
             with _progress_callback(progress):
                 dask.compute(*netcdf)
+        finish = []
         for prep, tmp in zip(prepared, tmps):
             tags = _all_tags(prep, also_values)
             if prep.netcdf:
                 _netcdf_attributes(tmp, tags)
             else:
-                _finish_geotiff(prep, tmp, tags)
+                finish.append((prep, tmp, tags))
+        _finish_geotiffs(finish)
     return also_values
+
+
+def _finish_geotiffs(jobs) -> None:
+    """:func:`_finish_geotiff` for every ``(prep, tmp, tags)``, several at once: GDAL builds
+    a COG's overviews on one thread, so two copies side by side keep both cores busy."""
+    if len(jobs) < 2:
+        for job in jobs:
+            _finish_geotiff(*job)
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(min(len(jobs), _compress_threads())) as pool:
+        futures = [pool.submit(_finish_geotiff, *job) for job in jobs]
+    for f in futures:
+        f.result()  # the first failure is raised once every copy has stopped
 
 
 def _on_cluster() -> bool:

@@ -201,7 +201,7 @@ def _plan(table: AdditiveTable) -> _Plan:
 
 
 def linear_predictor_table(table: AdditiveTable, X, *, lower=None, upper=None,
-                           block_cells: int = BLOCK_CELLS) -> np.ndarray:
+                           block_cells: int = BLOCK_CELLS, mask_unused: bool = True) -> np.ndarray:
     """eta for every cell of ``X`` (n_vars, n_cells), float64; NaN where any variable is NaN.
 
     ``lower`` / ``upper`` (n_vars,) clamp each variable first when given. ``X`` may be
@@ -214,7 +214,8 @@ def linear_predictor_table(table: AdditiveTable, X, *, lower=None, upper=None,
     quadratic plus a sum of ``bend * max(u, knot)`` hinges -- three array passes per knot,
     no per-cell search -- or, beyond :data:`HINGE_SUM_MAX_KNOTS` knots, with
     ``numpy.interp``. A cell missing a variable the model does not use still comes back
-    NaN, so the valid area does not depend on the model.
+    NaN, so the valid area does not depend on the model; ``mask_unused=False`` skips that
+    (one pass per unused variable) for a caller that masks non-finite cells itself.
     """
     X = np.asarray(X)
     if X.ndim != 2 or X.shape[0] != table.n_vars:
@@ -227,7 +228,7 @@ def linear_predictor_table(table: AdditiveTable, X, *, lower=None, upper=None,
         lo = -np.inf if lower is None else float(lower[t.index]) - t.centre
         hi = np.inf if upper is None else float(upper[t.index]) - t.centre
         bounds.append((lo, hi, lower is not None or upper is not None))
-    unused = [j for j in range(table.n_vars) if j not in {t.index for t in plan.terms}]
+    unused = [j for j in range(table.n_vars) if j not in {t.index for t in plan.terms}] if mask_unused else []
     width = min(block_cells, max(n, 1))
     U = np.empty((max(len(plan.terms), 1), width))
     work = np.empty(width)
@@ -305,11 +306,22 @@ def cloglog(eta: np.ndarray) -> np.ndarray:
     return -np.expm1(-np.exp(np.minimum(eta, ETA_CAP)))
 
 
+def _cloglog_inplace(eta: np.ndarray) -> np.ndarray:
+    """:func:`cloglog` overwriting the float64 array ``eta`` (no temporaries)."""
+    np.minimum(eta, ETA_CAP, out=eta)
+    np.exp(eta, out=eta)
+    np.negative(eta, out=eta)
+    np.expm1(eta, out=eta)
+    np.negative(eta, out=eta)
+    return eta
+
+
 def suitability_table(table: AdditiveTable, X, *, lower=None, upper=None,
-                      block_cells: int = BLOCK_CELLS) -> np.ndarray:
-    """Suitability (0–1, float64) of the cells ``X`` (n_vars, n_cells); NaN stays NaN."""
-    return cloglog(linear_predictor_table(table, X, lower=lower, upper=upper,
-                                          block_cells=block_cells))
+                      block_cells: int = BLOCK_CELLS, mask_unused: bool = True) -> np.ndarray:
+    """Suitability (0–1, float64) of the cells ``X`` (n_vars, n_cells); NaN stays NaN
+    (``mask_unused``: see :func:`linear_predictor_table`)."""
+    return _cloglog_inplace(linear_predictor_table(table, X, lower=lower, upper=upper,
+                                                   block_cells=block_cells, mask_unused=mask_unused))
 
 
 def predict_cells(predict_proba, X, *, lower=None, upper=None, batch_cells: int = 16_384) -> np.ndarray:
