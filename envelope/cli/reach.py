@@ -21,7 +21,7 @@ from envelope.cli.options import overwrite_opt, polygons_opt, reach_inputs_opt, 
 @polygons_opt
 @region_opt(help="Study region (GeoPackage, GeoJSON or shapefile, any CRS): spread only through cells inside it.")
 @overwrite_opt
-def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years, now_year,
+def reach(now, futures, habitat, classes, align_habitat, start, species, kernel, mean_distance_km, shape, years, now_year,
           step_years, rate, threshold, persistence_years, replicates, seed, out, summary, front, arrival, probability,
           polygons, region, overwrite):
     """Habitat-gated dispersal through the transient climate.
@@ -45,7 +45,7 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
             --mean-distance-km 1:4 --replicates 50 --seed 1 --front front.geojson \\
             --arrival arrival.tif --probability reach_probability.tif --out reach.tif --summary reach.json
       $ envelope reach --now now.tif --future f2080.tif --years 2080 --habitat habitat.tif \\
-            --start records.csv --mean-distance-km 2 --region park.gpkg \\
+            --start download.csv --species "Aus bus" --mean-distance-km 2 --region park.gpkg \\
             --out reach.tif --summary reach.json --polygons reach.gpkg
     """
     from rich.console import Console
@@ -74,7 +74,8 @@ def reach(now, futures, habitat, classes, align_habitat, start, kernel, mean_dis
     inputs = build_reach_inputs(now, {None: list(zip(years, futures))}, habitat, start, settings=settings,
                                 classes=classes, align_habitat=align_habitat, threshold=threshold,
                                 now_year=now_year, step_years=step_years, rate=rate,
-                                persistence_years=persistence_years, region=region)
+                                persistence_years=persistence_years, region=region,
+                                start_options=None if species is None else {"species": species})
     console = Console(stderr=True)
     with Progress(console=console, transient=True) as bar:
         task = bar.add_task("dispersal steps", total=None)

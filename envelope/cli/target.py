@@ -22,6 +22,7 @@ def _class_codes(ctx, param, value):
 
 # the reach-model options a study run supplies; giving one together with --study is an error
 _STUDY_SUPPLIED = ("now", "futures", "years", "scenario_table", "habitat", "classes", "align_habitat", "start",
+                   "species",
                    "kernel", "mean_distance_km", "shape", "now_year", "step_years", "rate", "threshold",
                    "persistence_years")
 
@@ -65,7 +66,7 @@ _STUDY_SUPPLIED = ("now", "futures", "years", "scenario_table", "habitat", "clas
 @click.option("--summary", required=True, type=click.Path(dir_okay=False), help="Summary JSON to write.")
 @overwrite_opt
 @click.pass_context
-def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, mean_distance_km, shape, years,
+def target(ctx, now, futures, habitat, classes, align_habitat, start, species, kernel, mean_distance_km, shape, years,
            now_year, step_years, rate, threshold, persistence_years, scenario_table, study, run_dir, objective,
            candidates, candidate_classes, max_patch_km2, budget_km2, cost, budget_cost, quality, random_draws,
            max_evaluations, seed, out, table,
@@ -127,7 +128,8 @@ def target(ctx, now, futures, habitat, classes, align_habitat, start, kernel, me
         model = _from_study(study, run_dir)
     else:
         model = reach_model_from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
-                              mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years)
+                              mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years,
+                              species=species)
     with Console(stderr=True).status("choosing patches (deterministic reach runs)"):
         result = choose_patches(model, candidates, candidate_classes=candidate_classes, cost=cost, quality=quality,
                                 budget_km2=budget_km2, budget_cost=budget_cost, objective=objective,

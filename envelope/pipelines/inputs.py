@@ -123,6 +123,9 @@ def load_start(path, grid: xr.DataArray, *, name: str = "--start", grid_name: st
         occ = records.occupancy(grid).values
         return occ, {"source": str(p), "kind": "records", "n_read": int(records.n_read),
                      "n_cells": int(occ.sum()), "dropped": dict(records.dropped)}
+    if clean_options.get("species"):
+        raise InputError(f"{name} {p}: a species ({clean_options['species']!r}) is given, but this start is a "
+                         "raster, not records; leave the species out or give a records table")
     layer = open_layer(p)
     check_same_grid(grid, layer, ref_name=grid_name, other_name=f"{name} {p}")
     arr = np.asarray(layer.values, dtype=np.float64)

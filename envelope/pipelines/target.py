@@ -73,8 +73,10 @@ def choose_patches(model, candidates, *, candidate_classes=None, cost=None, qual
 
 
 def reach_model_from_options(now, futures, years, scenario_table, habitat, classes, align_habitat, start, kernel,
-                  mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years):
-    """The reach model of `envelope target` from its options: one climate path (--future/--years) or a suitability table."""
+                  mean_distance_km, shape, threshold, now_year, step_years, rate, persistence_years, *, species=None):
+    """The reach model of `envelope target` from its options: one climate path (--future/--years) or a suitability table.
+
+    ``species`` picks one taxon of a records ``start`` holding several (:func:`envelope.records.select_taxon`)."""
     for flag, value in (("--now", now), ("--habitat", habitat), ("--start", start),
                         ("--mean-distance-km", mean_distance_km)):
         if value is None:
@@ -98,7 +100,7 @@ def reach_model_from_options(now, futures, years, scenario_table, habitat, class
     model = build_reach_inputs(
         now, paths, habitat, start, settings=settings, classes=classes, align_habitat=align_habitat,
         threshold=threshold, now_year=now_year, step_years=step_years, rate=rate,
-        persistence_years=persistence_years,
+        persistence_years=persistence_years, start_options=None if species is None else {"species": species},
         path_names=lambda name, p: f"--future {p}" if name is None else f"--scenarios {scenario_table}: {p}")
     model.inputs["scenarios"] = scenario_table
     return model

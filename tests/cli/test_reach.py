@@ -123,3 +123,27 @@ def test_reach_probability_is_the_share_of_replicates(inputs, tmp_path):
     iv = s["intervals"]["area_km2"]["gained_reached"]
     assert s["n_runs"] == 4 and iv["p05"] <= s["area_km2"]["gained_reached"] == iv["p50"] <= iv["p95"]
     assert set(s["intervals"]) >= {"area_km2", "front_advance_km"}
+
+
+def test_start_records_of_several_taxa_need_species(inputs, tmp_path):
+    # A portal download holding two taxa: without --species the start is ambiguous (exit 2,
+    # both taxa named); with it only that taxon's records start the spread
+    pd.DataFrame({"scientificName": ["Aus bus", "Aus bus", "Cus dus"],
+                  "decimalLongitude": [0.6, 0.8, 1.2], "decimalLatitude": [7.1, 7.1, 7.3]}).to_csv(
+        tmp_path / "two.csv", index=False)
+    p = dict(inputs, start=tmp_path / "two.csv")
+    out = tmp_path / "out"
+    out.mkdir()
+    bad = CliRunner().invoke(cli, args(p, out))
+    assert bad.exit_code == 2 and "Aus bus" in bad.output and "Cus dus" in bad.output
+    assert not (out / "reach.json").exists()
+    ok = CliRunner().invoke(cli, args(p, out, "--species", "aus bus"))
+    assert ok.exit_code == 0, ok.output
+    start = json.loads((out / "reach.json").read_text())["start"]
+    assert start["n_cells"] == 2 and start["n_read"] == 3
+
+
+def test_species_with_a_raster_start_is_an_error(inputs, tmp_path):
+    r = CliRunner().invoke(cli, args(inputs, tmp_path, "--species", "Aus bus"))
+    assert r.exit_code == 2 and "--start" in r.output and "raster" in r.output
+    assert not (tmp_path / "reach.json").exists()

@@ -292,3 +292,23 @@ def test_candidate_classes_must_be_codes(inputs, tmp_path):
     result = CliRunner().invoke(cli, args(inputs, out, "--candidate-classes", "farmland"))
     assert result.exit_code == 2 and "expected comma-separated integer class codes" in result.output
     assert list(out.iterdir()) == []
+
+
+def test_start_records_of_several_taxa_with_species(inputs, tmp_path):
+    # The start raster's occupied cells as records of one taxon, beside another taxon's records:
+    # with --species the ranking equals the raster start's (same cells occupied)
+    occ = open_layer(inputs["start"])
+    rows, cols = np.nonzero(occ.values > 0.5)
+    recs = pd.DataFrame({"scientificName": "Aus bus", "decimalLongitude": occ["x"].values[cols],
+                         "decimalLatitude": occ["y"].values[rows]})
+    other = pd.DataFrame({"scientificName": ["Cus dus"], "decimalLongitude": [occ["x"].values[-1]],
+                          "decimalLatitude": [occ["y"].values[0]]})
+    pd.concat([recs, other]).to_csv(tmp_path / "two.csv", index=False)
+    a, b = tmp_path / "a", tmp_path / "b"
+    a.mkdir()
+    b.mkdir()
+    assert CliRunner().invoke(cli, args(inputs, a)).exit_code == 0
+    r = CliRunner().invoke(cli, args(dict(inputs, start=tmp_path / "two.csv"), b, "--species", "Aus bus"))
+    assert r.exit_code == 0, r.output
+    ta, tb = pd.read_csv(a / "priority.csv"), pd.read_csv(b / "priority.csv")
+    pd.testing.assert_frame_equal(ta, tb)
