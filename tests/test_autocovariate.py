@@ -1,5 +1,7 @@
 """The spatial autocovariate on grids, its fit term, its handling in projection, residual correlograms."""
 
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pyproj
@@ -106,3 +108,27 @@ def test_held_projection_reproduces_the_fit_and_the_layer_is_written(clustered, 
     from envelope.io.rasters import open_layer
 
     assert np.allclose(open_layer(paths["autocovariate"]).values, layer.values, equal_nan=True)
+
+
+def test_project_file_takes_the_layer_beside_the_model(clustered, tmp_path):
+    # The model's autocovariate layer is found beside the model file: projecting the climate
+    # alone equals projecting it with the layer passed as one more climate file (the held
+    # mode), and without the layer the error names the missing file.
+    import shutil
+
+    from envelope.io.rasters import open_layer
+    from envelope.io.writing import write_raster
+    from envelope.pipelines.project import project_file
+
+    stack, _, _, with_term = clustered
+    paths = write_fit_outputs(with_term, tmp_path / "m.envm")
+    climate = tmp_path / "climate.tif"
+    write_raster(stack, climate)
+    shutil.copy(paths["autocovariate"], tmp_path / "autocovariate.tif")
+    project_file(paths["model"], climate, tmp_path / "auto.tif")
+    project_file(paths["model"], [climate, tmp_path / "autocovariate.tif"], tmp_path / "given.tif")
+    np.testing.assert_array_equal(open_layer(tmp_path / "auto.tif").values, open_layer(tmp_path / "given.tif").values)
+    Path(paths["autocovariate"]).unlink()
+    with pytest.raises(InputError, match="m.autocovariate.tif is missing"):
+        project_file(paths["model"], climate, tmp_path / "none.tif")
+    assert not (tmp_path / "none.tif").exists()

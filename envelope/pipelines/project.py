@@ -120,7 +120,8 @@ def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, cl
     if mess_out is not None and not metadata.get("mess_reference"):
         raise InputError(f"{model_file}: model metadata has no mess_reference; cannot write MESS")
     bounds = training_range(metadata) if clamp else None
-    stack = limit_to_region(open_model_climate(climate, variables, chunks=chunks), region)
+    stack = limit_to_region(open_model_climate(climate, variables, chunks=chunks, model_file=model_file,
+                                               metadata=metadata), region)
     tags = projection_tags(model_file, method, sha, metadata, climate, clamp)
     if region is not None:
         tags["region"] = str(region)
@@ -133,19 +134,62 @@ def project_file(model_file, climate, out, *, mess_out=None, binary_out=None, cl
     return summary
 
 
-def open_model_climate(climate, variables, *, chunks=None, source=None) -> xr.DataArray:
+def open_model_climate(climate, variables, *, chunks=None, source=None, model_file=None,
+                       metadata=None) -> xr.DataArray:
     """The model's variables from climate grid file(s), in the model's order, lazily.
 
     Only those variables are ever read (the other bands of a multi-band GeoTIFF are
     skipped), every variable of a window in one read. A missing variable is an error that
     names it (:func:`match_variables`).
+
+    A model fitted with the spatial autocovariate term (``metadata["autocovariate"]``) takes
+    that predictor from the climate files when they hold it, and otherwise from the layer
+    written beside ``model_file`` (:func:`envelope.pipelines.fit.autocovariate_path`): today's
+    neighbourhood held for every scenario, the ``held`` mode of
+    :func:`envelope.autocovariate.autocovariate_for_projection`.
     """
 
     climate = [climate] if isinstance(climate, (str, os.PathLike)) else list(climate)
     source = source or ", ".join(map(str, climate))
     spec = {"band": -1, **(PROJECT_CHUNKS if chunks is None else chunks)}
-    match_variables(open_climate(climate, chunks=spec), variables, source=source)  # names only, no reading
-    return open_climate(climate, variables=list(variables), chunks=spec)
+    names = [str(v) for v in open_climate(climate, chunks=spec)["variable"].values]  # names only, no reading
+    layer = _held_autocovariate(metadata, model_file, variables, names, source)
+    wanted = [v for v in variables if layer is None or v != str(layer.name)]
+    match_variables(open_climate(climate, chunks=spec), wanted, source=source)
+    stack = open_climate(climate, variables=wanted, chunks=spec)
+    if layer is None:
+        return stack
+    from envelope.autocovariate import with_autocovariate
+    from envelope.grids import check_same_grid
+
+    layer = check_same_grid(stack.isel(variable=0), layer, ref_name=source,
+                            other_name=f"autocovariate layer {layer.attrs['path']}")
+    if stack.chunks is not None:
+        layer = layer.chunk({"y": stack.chunks[1], "x": stack.chunks[2]})
+    return with_autocovariate(stack, layer).sel(variable=list(variables))
+
+
+def _held_autocovariate(metadata, model_file, variables, names, source):
+    """The model's autocovariate layer from beside ``model_file`` when the climate lacks it, else None."""
+    info = (metadata or {}).get("autocovariate")
+    if not info or model_file is None:
+        return None
+    from envelope.autocovariate import AUTOCOVARIATE_VARIABLE
+    from envelope.io.rasters import open_layer
+    from envelope.pipelines.fit import autocovariate_path
+
+    name = str(info.get("variable", AUTOCOVARIATE_VARIABLE))
+    if name in names or name not in variables:
+        return None
+    path = autocovariate_path(model_file)
+    if not path.is_file():
+        raise InputError(f"{source}: no variable {name!r}, and {path} is missing; the model {model_file} was fitted "
+                         f"with the autocovariate term, so give its layer (as one more climate file named "
+                         f"{name}.tif) or keep it beside the model")
+    layer = open_layer(path).rename(name)
+    layer.attrs["path"] = str(path)
+    log.info("%s: the model's autocovariate term is held at today's neighbourhood (%s)", source, path)
+    return layer
 
 
 def limit_to_region(stack: xr.DataArray, region) -> xr.DataArray:
@@ -263,7 +307,8 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
     bounds = training_range(metadata) if clamp else None
     stacks, first = {}, None
     for sc in scenarios:
-        stack = open_model_climate(sc.climate, variables, chunks=chunks, source=f"scenario {sc.name} ({sc.path})")
+        stack = open_model_climate(sc.climate, variables, chunks=chunks, source=f"scenario {sc.name} ({sc.path})",
+                                   model_file=model_file, metadata=metadata)
         stack = limit_to_region(stack, region)
         if first is None:
             first = sc
