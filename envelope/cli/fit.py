@@ -6,8 +6,9 @@ import click
 
 from envelope.models import BIAS_METHODS, METHOD_NAMES
 
-from envelope.cli.options import (absences_opt, climate_opt, overwrite_opt, positive_float, record_years_opt,
-                                  record_years_value, region_opt, seed_opt, species_opt, variables_opt)
+from envelope.cli.options import (absences_opt, climate_opt, cv_opt, features_opt, overwrite_opt, positive_float,
+                                  record_years_opt, record_years_value, region_opt, seed_opt, species_opt,
+                                  variables_opt)
 
 
 def _rule(ctx, param, value):
@@ -48,12 +49,8 @@ def _rule(ctx, param, value):
 @click.option("--blocks-km", type=float, callback=positive_float, default=None,
               help="Side of the square CV blocks in km (default: derived from the predictors' spatial autocorrelation).")
 @click.option("--folds", type=click.IntRange(min=2, max=20), default=5, show_default=True, help="Number of CV folds.")
-@click.option("--cv", "cv", type=click.Choice(["block", "random"]), default="block", show_default=True,
-              help="Spatial block CV, or random K-fold for comparison.")
-@click.option("--features", default="cv", show_default=True, metavar="cv|CLASS,...",
-              help="Feature classes of the point-process model: cv (choose linear,quadratic / +hinge / "
-                   "+product by the spatial CV, one-standard-error rule) or a fixed list, e.g. "
-                   "linear,quadratic,hinge. Other methods ignore it.")
+@cv_opt
+@features_opt
 @click.option("--threshold-rule", callback=_rule, default="max-sss", show_default=True,
               help="max-sss, p10, min-presence, or a fixed number in 0..1.")
 @click.option("--max-uncertainty-m", type=float, default=None, help="Drop records less precise than this.")

@@ -6,7 +6,7 @@ import click
 
 from envelope.models import METHOD_NAMES
 
-from envelope.cli.options import overwrite_opt, seed_opt
+from envelope.cli.options import cv_opt, features_opt, overwrite_opt, seed_opt
 
 
 @click.command()
@@ -25,14 +25,16 @@ from envelope.cli.options import overwrite_opt, seed_opt
 @click.option("--background", type=click.IntRange(min=100), default=10_000, show_default=True,
               help="Background points of each fit.")
 @click.option("--folds", type=click.IntRange(min=2, max=20), default=5, show_default=True, help="CV folds of each fit.")
+@cv_opt
+@features_opt
 @click.option("--n-cells", type=click.IntRange(min=1), default=10, show_default=True,
               help="N of the N most poleward (equatorward) cells, for observed and predicted margins alike.")
 @click.option("--min-records", type=click.FloatRange(min=0), default=5, show_default=True,
               help="Records of all taxa that make a cell well recorded in a period.")
 @seed_opt
 @overwrite_opt
-def hindcast(records, climate_1, climate_2, periods, species, out, method, background, folds, n_cells, min_records,
-             seed, overwrite):
+def hindcast(records, climate_1, climate_2, periods, species, out, method, background, folds, cv, features, n_cells,
+             min_records, seed, overwrite):
     """Test a model against change that has already happened, both ways.
 
     Fits on the first period's records with the first period's climate, projects onto the
@@ -46,11 +48,14 @@ def hindcast(records, climate_1, climate_2, periods, species, out, method, backg
             --periods 1970-1989,2000-2019 --species "Fictus marginalis" --out hindcast/
       $ envelope hindcast records.csv --climate-1 clim_1970s.tif --climate-2 clim_2000s.tif \\
             --periods 1970-1989,2000-2019 --species "Fictus marginalis" --method brt --out hc/
+      $ envelope hindcast records.csv --climate-1 clim_1970s.tif --climate-2 clim_2000s.tif \\
+            --periods 1970-1989,2000-2019 --species "Fictus marginalis" --features linear,quadratic \\
+            --cv random --out hc-fixed/
     """
     from envelope.pipelines.hindcast import HindcastOptions, hindcast_files
 
     options = HindcastOptions(periods=periods, species=species, method=method, background=background, folds=folds,
-                              n_cells=n_cells, min_records=min_records, seed=seed)
+                              cv=cv, features=features, n_cells=n_cells, min_records=min_records, seed=seed)
     result = hindcast_files(records, list(climate_1), list(climate_2), out, options=options, overwrite=overwrite)
     for key in ("forward", "backward"):
         r = result[key]

@@ -83,6 +83,16 @@ species_opt = click.option(
     help="Keep the records of this taxon (scientificName, acceptedScientificName or species; case and "
          "authorship ignored). Needed when the records hold several taxa.")
 
+cv_opt = click.option(
+    "--cv", "cv", type=click.Choice(["block", "random"]), default="block", show_default=True,
+    help="Spatial block CV, or random K-fold for comparison.")
+
+features_opt = click.option(
+    "--features", default="cv", show_default=True, metavar="cv|CLASS,...",
+    help="Feature classes of the point-process model: cv (choose linear,quadratic / +hinge / "
+         "+product by the spatial CV, one-standard-error rule) or a fixed list, e.g. "
+         "linear,quadratic,hinge. Other methods ignore it.")
+
 absences_opt = click.option(
     "--absences", is_flag=True,
     help="Keep records whose occurrenceStatus is absent, as absences (survey data).")

@@ -31,6 +31,7 @@ class HindcastOptions:
     background: int = 10_000
     folds: int = 5
     cv: str = "block"
+    features: object = "cv"
     n_cells: int = 10
     min_records: float = 5
     seed: int = 0
@@ -40,7 +41,7 @@ def _fit_period(table, stack, options, paths):
     from envelope.pipelines.fit import FitOptions, fit_model
 
     fit_opts = FitOptions(method=options.method, background=options.background, folds=options.folds, cv=options.cv,
-                          seed=options.seed, permutation_repeats=1)
+                          features=options.features, seed=options.seed, permutation_repeats=1)
     return fit_model(table, stack, options=fit_opts, climate_paths=paths)
 
 

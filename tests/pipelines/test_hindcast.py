@@ -75,3 +75,22 @@ def test_cli_bad_periods_exit_2(world, tmp_path):
                                       "--species", SPECIES, "--out", str(tmp_path / "hc")])
     assert result.exit_code == 2 and "overlap" in result.output
     assert not (tmp_path / "hc" / "hindcast.json").exists()
+
+
+def _cli_args(world, out, *extra):
+    return ["hindcast", str(world / "records.csv"), "--climate-1", str(world / "period_1" / "t.tif"),
+            "--climate-2", str(world / "period_2" / "t.tif"), "--periods", "1970-1989,2000-2019",
+            "--species", SPECIES, "--out", str(out), "--background", "1000", "--folds", "3", "--min-records", "2",
+            *extra]
+
+
+def test_cli_features_and_cv_reach_the_fits(world, tmp_path):
+    # --features and --cv mean what they mean for `envelope fit`: the same validation and the same fits
+    bad = CliRunner().invoke(cli, _cli_args(world, tmp_path / "bad", "--features", "linear,cubic"))
+    assert bad.exit_code == 2 and "--features" in bad.output
+    assert not (tmp_path / "bad" / "hindcast.json").exists()
+    ok = CliRunner().invoke(cli, _cli_args(world, tmp_path / "hc", "--features", "linear,quadratic", "--cv", "random"))
+    assert ok.exit_code == 0, ok.output
+    forward = json.loads((tmp_path / "hc" / "hindcast.json").read_text())["forward"]
+    # Common practice, no source: AUC > 0.7 marks a useful model (as above)
+    assert forward["auc"] > 0.7
