@@ -60,7 +60,7 @@ def candidates_from_classes(codes, classes, *, name="--candidates") -> np.ndarra
 
 
 def candidate_patches(candidates, cell_area, lon, lat, *, cost=None, name="--candidates",
-                      cost_name="--cost", max_patch_km2=None) -> CandidatePatches:
+                      cost_name="--cost", max_patch_km2=None, periodic_x=False) -> CandidatePatches:
     """Group nonzero candidate cells into 4-connected patches with area, cost and centroid.
 
     With ``max_patch_km2`` a large connected area is cut into pieces along a square block
@@ -71,7 +71,8 @@ def candidate_patches(candidates, cell_area, lon, lat, *, cost=None, name="--can
     The centroid is the area-weighted mean of the cells' surface normals (n-vectors),
     turned back into longitude and latitude, so patches across the antimeridian or near a
     pole get their true middle (:func:`envelope.kernels.change.normal_vector_sums`, the
-    same method as the range centroid of `envelope change`).
+    same method as the range centroid of `envelope change`). With ``periodic_x`` (a grid that
+    circles the globe) cells touching across the east-west seam are one patch.
 
     References
     ----------
@@ -83,7 +84,7 @@ def candidate_patches(candidates, cell_area, lon, lat, *, cost=None, name="--can
     if not mask.any():
         raise InputError(f"{name}: no candidate cell (no nonzero value); expected cells that could become habitat")
     if max_patch_km2 is None:
-        labels, n = label_patches(mask, connectivity=4)
+        labels, n = label_patches(mask, connectivity=4, periodic_x=periodic_x)
     else:
         largest = float(np.nanmax(np.asarray(cell_area, dtype=np.float64)[mask]))
         if not (max_patch_km2 > 0 and math.isfinite(max_patch_km2)):

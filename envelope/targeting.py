@@ -220,13 +220,13 @@ def target_restoration(now, futures, habitat, start, candidates, *, budget_km2: 
         raise InputError(f"--budget-km2 must be a number > 0, got {budget_km2!r}")
     if budget_cost is not None and not budget_cost > 0:
         raise InputError(f"--budget-cost must be > 0, got {budget_cost!r}")
-    from envelope.grids import cell_area_km2
+    from envelope.grids import cell_area_km2, spans_globe
 
     areas = np.asarray(cell_area_km2(now).values, dtype=np.float64)
     lat, lon = cell_lonlat(now)
     patches = candidate_patches(np.asarray(getattr(candidates, "values", candidates)), areas, lon, lat,
                                 cost=None if cost is None else np.asarray(getattr(cost, "values", cost)),
-                                max_patch_km2=max_patch_km2)
+                                max_patch_km2=max_patch_km2, periodic_x=spans_globe(now))
     _check_some_patch_fits(patches, budget_km2, budget_cost)
     model = ReachGain(now, futures, habitat, start, patches, threshold=threshold, settings=settings,
                       quality=quality, objective=objective, now_year=now_year, step_years=step_years, rate=rate,

@@ -91,7 +91,7 @@ def split_patches(mask, block_rows: int, block_cols: int, *, connectivity=4):
     return labels[keep_rows][:, keep_cols], n
 
 
-def label_patches(habitat_mask, *, connectivity=4):
+def label_patches(habitat_mask, *, connectivity=4, periodic_x=False):
     """Label the connected habitat patches of a boolean grid.
 
     Parameters
@@ -101,23 +101,58 @@ def label_patches(habitat_mask, *, connectivity=4):
     connectivity : {4, 8}, default=4
         4 joins cells that share an edge (rook's case); 8 also joins cells that touch at a
         corner (queen's case).
+    periodic_x : bool, default=False
+        The last column neighbours the first (a geographic grid that circles the globe):
+        patches touching across that seam are one patch.
 
     Returns
     -------
     labels : ndarray of int, shape (rows, columns)
-        0 outside habitat, 1..n_patches inside.
+        0 outside habitat, 1..n_patches inside, numbered in the order their first cell
+        appears row by row.
     n_patches : int
 
     References
     ----------
-    SciPy ``scipy.ndimage.label`` (connected-component labelling).
+    SciPy ``scipy.ndimage.label`` (connected-component labelling) and
+    ``scipy.sparse.csgraph.connected_components`` (joining labels across the seam).
     """
     mask = _check_mask(habitat_mask)
     _check_connectivity(connectivity)
     # rank-1 structure = edge neighbours only; rank-2 = edge and corner neighbours.
     structure = ndimage.generate_binary_structure(2, 1 if connectivity == 4 else 2)
     labels, n_patches = ndimage.label(mask, structure=structure)
+    if periodic_x and n_patches > 1 and mask.shape[1] > 2:
+        labels, n_patches = _join_across_seam(labels, int(n_patches), connectivity)
     return labels, int(n_patches)
+
+
+def _join_across_seam(labels, n, connectivity):
+    """Merge labels that meet across the east-west seam; renumber in raster order."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    east, west = labels[:, -1], labels[:, 0]
+    pairs = [(east, west)]
+    if connectivity == 8:  # corner neighbours across the seam, one row up and down
+        pairs += [(east[:-1], west[1:]), (east[1:], west[:-1])]
+    a = np.concatenate([p[0] for p in pairs])
+    b = np.concatenate([p[1] for p in pairs])
+    keep = (a > 0) & (b > 0)
+    if not keep.any():
+        return labels, n
+    graph = coo_matrix((np.ones(int(keep.sum())), (a[keep], b[keep])), shape=(n + 1, n + 1))
+    _, component = connected_components(graph, directed=False)
+    # new ids in the order of each component's smallest old label (= raster order of first cells)
+    first = np.full(component.max() + 1, n + 1)
+    np.minimum.at(first, component[1:], np.arange(1, n + 1))
+    order = np.argsort(first, kind="stable")
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    new = np.zeros(n + 1, dtype=labels.dtype)
+    new[1:] = rank[component[1:]] + 1
+    used = np.unique(new[1:]).size
+    return new[labels], used
 
 
 def patch_areas(habitat_mask, cell_area, *, connectivity=4):

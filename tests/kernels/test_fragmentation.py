@@ -143,3 +143,50 @@ def test_split_patches_keeps_connectivity_inside_blocks():
     np.testing.assert_array_equal(labels > 0, mask)
     with pytest.raises(InputError, match="at least 1 x 1"):
         split_patches(mask, 0, 3)
+
+
+def _periodic_components(mask, connectivity):
+    """Reference: connected components of the explicit neighbour graph with x periodic (SciPy csgraph)."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    ny, nx = mask.shape
+    idx = np.arange(ny * nx).reshape(ny, nx)
+    steps = [(0, 1), (1, 0)] + ([(1, 1), (1, -1)] if connectivity == 8 else [])
+    a, b = [], []
+    for dy, dx in steps:
+        src = idx[:ny - dy] if dy else idx
+        dst = np.roll(idx, -dx, axis=1)[dy:]
+        ok = mask.ravel()[src.ravel()] & mask.ravel()[dst.ravel()]
+        a.append(src.ravel()[ok])
+        b.append(dst.ravel()[ok])
+    a, b = np.concatenate(a), np.concatenate(b)
+    _, comp = connected_components(coo_matrix((np.ones(a.size), (a, b)), shape=(ny * nx,) * 2), directed=False)
+    return comp.reshape(ny, nx)
+
+
+@pytest.mark.parametrize("connectivity", [4, 8])
+def test_periodic_labels_match_the_explicit_graph(connectivity):
+    # Source: the definition of 4-/8-connectivity on a grid whose last column neighbours the
+    # first, built as an explicit graph (scipy.sparse.csgraph.connected_components)
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        mask = rng.uniform(size=(12, 15)) < 0.45
+        labels, n = fr.label_patches(mask, connectivity=connectivity, periodic_x=True)
+        ref = _periodic_components(mask, connectivity)
+        assert n == np.unique(ref[mask]).size
+        # same partition: a one-to-one map between our labels and the reference components
+        pairs = np.unique(np.c_[labels[mask], ref[mask]], axis=0)
+        assert len(pairs) == n and np.unique(pairs[:, 0]).size == n and np.unique(pairs[:, 1]).size == n
+        assert sorted(np.unique(labels[mask]).tolist()) == list(range(1, n + 1))
+        # numbered in raster order of each patch's first cell
+        firsts = [np.flatnonzero(labels.ravel() == k)[0] for k in range(1, n + 1)]
+        assert firsts == sorted(firsts)
+
+
+def test_patch_across_the_seam_is_one():
+    mask = np.zeros((3, 6), dtype=bool)
+    mask[1, 0] = mask[1, 5] = True
+    assert fr.label_patches(mask)[1] == 2
+    labels, n = fr.label_patches(mask, periodic_x=True)
+    assert n == 1 and labels[1, 0] == labels[1, 5] == 1
