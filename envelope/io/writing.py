@@ -16,6 +16,7 @@ import xarray as xr
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.blocks import WindowWriter
+from envelope.io.overviews import overview_factors, overview_levels, pyramid_vrt
 from envelope.io.rasters import GEOTIFF_SUFFIXES, encode_tag
 
 __all__ = ["DEFLATE_LEVEL", "WRITE_CACHE_MB", "RasterOutput", "WindowedRaster", "windowed_raster", "write_raster",
@@ -58,6 +59,7 @@ class _Prepared:
     categories: dict | None
     nodata: float | None
     dataset: object = None    # the open staging GeoTIFF
+    overviews: list = None    # [(path, open dataset)] of its streamed overview levels, finest first
 
     @property
     def netcdf(self) -> bool:
@@ -208,8 +210,7 @@ def write_rasters(outputs, *, overwrite=False, also=(), progress=None) -> tuple:
         # mixing arrays and Delayed objects in one compute reorders results in dask 2026.8
         # and optimises them apart, which would read shared inputs more than once)
         # (on a cluster the layers are in memory by now and written as the stages open)
-        stores = [_stage_task(prep, tmp, stages) for prep, tmp in zip(prepared, tmps) if not prep.netcdf]
-        stores = [t for t in stores if t is not None]
+        stores = [t for prep, tmp in zip(prepared, tmps) if not prep.netcdf for t in _stage_task(prep, tmp, stages)]
         if not on_cluster:
             with _progress_callback(progress):
                 computed = dask.compute(*stores, *also)
@@ -277,26 +278,49 @@ def _stage_path(tmp: Path) -> Path:
     return tmp.with_name(tmp.name + ".stage.tif")
 
 
-def _stage_task(prep: _Prepared, tmp: Path, stages: contextlib.ExitStack):
-    """Open the uncompressed staging GeoTIFF; return the dask task that fills it (None:
-    in-memory data, written at once)."""
+def _stage_task(prep: _Prepared, tmp: Path, stages: contextlib.ExitStack) -> list:
+    """Open the uncompressed staging GeoTIFF (and, for a streamed float raster, one per
+    overview level); return the dask tasks that fill them (none: in-memory data, written at once)."""
     import dask.array as dsa
-    import rasterio
 
     values = prep.values
     height, width = values.sizes["y"], values.sizes["x"]
-    block = _block_size(width, height)
     stage = _stage_path(tmp)
     stages.callback(_remove_stage, stage)
-    dst = stages.enter_context(rasterio.open(
-        stage, "w", driver="GTiff", width=width, height=height, count=len(prep.names), dtype=values.dtype.name,
-        crs=values.rio.crs, transform=values.rio.transform(), nodata=prep.nodata, tiled=True,
-        blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER"))
+    dst = _open_stage(stages, stage, values, width, height, values.rio.transform(), prep.nodata)
     prep.dataset = dst
     data = values.data
     if not isinstance(data, dsa.Array):
         dst.write(np.asarray(data))
-        return None
+        return []
+    tasks = [_store(data, dst, stages)]
+    levels = None
+    if np.issubdtype(values.dtype, np.floating):
+        levels = overview_levels(data, overview_factors(height, width, _block_size(width, height)))
+    prep.overviews = []
+    for f, level in zip(overview_factors(height, width, _block_size(width, height)), levels or ()):
+        path = stage.with_name(f"{stage.name}.ovr{f}.tif")
+        stages.callback(_remove_stage, path)
+        transform = values.rio.transform() * values.rio.transform().scale(width / level.shape[2], height / level.shape[1])
+        ds = _open_stage(stages, path, values, level.shape[2], level.shape[1], transform, prep.nodata)
+        prep.overviews.append((path, ds))
+        tasks.append(_store(level, ds, stages))
+    return tasks
+
+
+def _open_stage(stages, path, values, width, height, transform, nodata):
+    import rasterio
+
+    block = _block_size(width, height)
+    return stages.enter_context(rasterio.open(
+        path, "w", driver="GTiff", width=width, height=height, count=values.sizes["variable"],
+        dtype=values.dtype.name, crs=values.rio.crs, transform=transform, nodata=nodata, tiled=True,
+        blockxsize=block, blockysize=block, BIGTIFF="IF_SAFER"))
+
+
+def _store(data, dst, stages):
+    import dask.array as dsa
+
     writer = WindowWriter(dst)
     stages.callback(writer.close)  # runs before the dataset closes (the stack unwinds in reverse)
     return dsa.store(data, writer, lock=threading.Lock(), compute=False)
@@ -316,24 +340,47 @@ def _compress_threads() -> int:
 
 
 def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict) -> None:
-    """Band names, units and tags on the staged file, then GDAL's COG copy into ``tmp``."""
+    """Band names, units and tags on the staged file, then GDAL's COG copy into ``tmp``.
+
+    A streamed float raster brings its overview levels (:mod:`envelope.io.overviews`, made
+    in the same pass): a VRT joins them to the staged file and the COG copy takes them as
+    they are instead of reading the whole raster again to build them.
+    """
+    import rasterio
     import rasterio.shutil
 
     dst = prep.dataset
+    stage = _stage_path(tmp)
+    levels = getattr(prep, "overviews", None) or []
+    source = stage
+    if levels:
+        for _, ds in levels:
+            ds.close()
+        dst.close()
+        source = pyramid_vrt(stage.with_name(stage.name + ".vrt"), stage, [p for p, _ in levels],
+                             width=dst.width, height=dst.height, count=dst.count, dtype=dst.dtypes[0],
+                             crs=dst.crs, transform=dst.transform)
+        dst = rasterio.open(source, "r+")
     for i, (name, unit) in enumerate(zip(prep.names, prep.units), start=1):
         dst.set_band_description(i, name)
         dst.update_tags(i, units=unit)
     dst.update_tags(**tags)
     dst.close()
-    stage = _stage_path(tmp)
     floating = np.issubdtype(prep.values.dtype, np.floating)
     block = _block_size(prep.values.sizes["x"], prep.values.sizes["y"])
     tmp.unlink(missing_ok=True)
-    rasterio.shutil.copy(stage, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=str(DEFLATE_LEVEL),
-                         PREDICTOR="3" if floating else "2", BLOCKSIZE=str(block), OVERVIEWS="AUTO",
-                         RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
-                         NUM_THREADS=str(_compress_threads()))
-    _remove_stage(stage)
+    try:
+        rasterio.shutil.copy(source, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=str(DEFLATE_LEVEL),
+                             PREDICTOR="3" if floating else "2", BLOCKSIZE=str(block),
+                             OVERVIEWS="FORCE_USE_EXISTING" if levels else "AUTO",
+                             RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
+                             NUM_THREADS=str(_compress_threads()))
+    finally:
+        if levels:
+            Path(source).unlink(missing_ok=True)
+            for path, _ in levels:
+                _remove_stage(path)
+        _remove_stage(stage)
 
 
 # ----------------------------------------------------------------------------- NetCDF

@@ -92,3 +92,50 @@ def test_same_file_twice_refused(tmp_path):
     with pytest.raises(InputError, match="the same file is given twice"):
         write_rasters([RasterOutput(stack, tmp_path / "x.tif"), RasterOutput(stack, tmp_path / "x.tif")])
     assert list(tmp_path.iterdir()) == []
+
+
+def test_streamed_overviews_match_gdal_average_and_leave_no_files(tmp_path):
+    # A streamed float raster brings its own overview levels (envelope.io.overviews): the COG
+    # is the same at full resolution and in layout; its first overview equals GDAL's own
+    # AVERAGE overview of the same data (Source: GDAL's COG driver, OVERVIEWS=AUTO,
+    # RESAMPLING=AVERAGE, on the in-memory copy), and every level is the mean of the valid
+    # cells of its f x f groups (numpy.nanmean as reference; GDAL's deeper levels differ from
+    # that where a group holds NaN, as measured here). No staging, level or VRT file is left.
+    import dask.array as dsa
+    import rioxarray  # noqa: F401
+    import xarray as xr
+
+    rng = np.random.default_rng(1)
+    ny, nx = 1100, 1400
+    values = rng.normal(size=(2, ny, nx)).astype(np.float32)
+    values[values > 2.2] = np.nan
+    values[:, :40, :60] = np.nan
+
+    def grid(data):
+        da = xr.DataArray(data, dims=("variable", "y", "x"),
+                          coords={"variable": ["a", "b"], "y": 50.0 - 0.01 * (np.arange(ny) + 0.5),
+                                  "x": -150.0 + 0.01 * (np.arange(nx) + 0.5)})
+        return da.rio.write_crs("EPSG:4326")
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    write_rasters([RasterOutput(grid(dsa.from_array(values, chunks=(2, 512, 512))), out_dir / "streamed.tif",
+                                tags={"threshold": 0.5})])
+    write_raster(grid(values), tmp_path / "gdal.tif", tags={"threshold": 0.5})
+    assert sorted(p.name for p in out_dir.iterdir()) == ["streamed.tif"]
+    with rasterio.open(out_dir / "streamed.tif") as a, rasterio.open(tmp_path / "gdal.tif") as b:
+        assert a.tags(ns="IMAGE_STRUCTURE")["LAYOUT"] == "COG"
+        assert a.overviews(1) == b.overviews(1) == [2, 4]
+        assert a.descriptions == b.descriptions == ("a", "b") and a.tags()["threshold"] == b.tags()["threshold"]
+        np.testing.assert_array_equal(a.read(), values)
+    for level, f in enumerate((2, 4)):
+        with rasterio.open(out_dir / "streamed.tif", overview_level=level) as oa:
+            got = oa.read()
+        h, w = -(-ny // f), -(-nx // f)
+        pad = np.full((2, h * f, w * f), np.nan)
+        pad[:, :ny, :nx] = values
+        with np.errstate(invalid="ignore"), pytest.warns(RuntimeWarning):
+            ref = np.nanmean(pad.reshape(2, h, f, w, f), axis=(2, 4))
+        np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-7, equal_nan=True)
+        if level == 0:
+            with rasterio.open(tmp_path / "gdal.tif", overview_level=0) as ob:
+                np.testing.assert_allclose(got, ob.read(), rtol=1e-6, atol=1e-7, equal_nan=True)
