@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -89,7 +90,10 @@ class ReachResult:
     """Outputs of :func:`simulate_reach` on the climate grid."""
 
     classes: xr.DataArray          # uint8 reach classes at the final horizon
-    occupancy: dict                # year -> DataArray expected occupancy / occupancy probability
+    #: year -> DataArray (float32, NaN off the valid cells): expected occupancy / occupancy
+    #: probability. A read-only mapping that keeps the snapshots packed
+    #: (:class:`envelope.kernels.compact.PackedSnapshots`) and unpacks a new layer on each look-up.
+    occupancy: Mapping
     arrival_year: xr.DataArray     # float32 first year with occupancy >= 0.5 (NaN never)
     summary: dict
     front: dict = field(default_factory=dict)  # GeoJSON FeatureCollection
@@ -106,7 +110,7 @@ MAX_KERNEL_QUADRANT_CELLS = 50_000_000
 
 
 #: Grids above this many cells spread in float32 with ``precision="auto"``: a float64 run of
-#: 10,000 x 10,000 cells needs well over 8 GiB (occupancy snapshots, climate maps, FFT spectra).
+#: 10,000 x 10,000 cells peaks at 8.7 GiB, a float32 run at 4.7 GiB (bench/bench_reach_scale.py).
 FLOAT32_ABOVE_CELLS = 25_000_000
 PRECISIONS = ("auto", "float64", "float32")
 
@@ -193,23 +197,44 @@ def reach_classes(now_suitable, future_suitable, habitat, reached, valid) -> np.
     return out
 
 
-def occupied_start(start, grid) -> np.ndarray:
-    """Start occupancy as a 0–1 float array on the grid (NaN -> 0); out-of-range values are an error."""
-    arr = np.asarray(start, dtype=np.float64)
+def _float_values(values) -> np.ndarray:
+    """``values`` as a float array, without a copy when they are float already."""
+    arr = np.asarray(values)
+    return arr if arr.dtype.kind == "f" else arr.astype(np.float64)
+
+
+def occupied_start(start, grid, dtype=np.float64) -> np.ndarray:
+    """Start occupancy as a 0–1 ``dtype`` array on the grid (NaN and infinities -> 0); out-of-range values are an error.
+
+    The range is checked on the values as given, before any conversion to ``dtype``.
+    """
+    arr = _float_values(start)
     if arr.shape != (grid.sizes["y"], grid.sizes["x"]):
         raise InputError(f"start occupancy has shape {arr.shape}, the climate grid {grid.shape[-2:]}")
-    arr = np.where(np.isfinite(arr), arr, 0.0)
-    if arr.min() < 0 or arr.max() > 1:
-        raise InputError(f"start occupancy must lie in 0..1, found {arr.min():g}..{arr.max():g}")
-    return arr
+    unset = ~np.isfinite(arr)
+    lo = float(np.min(arr, where=~unset, initial=np.inf))
+    hi = float(np.max(arr, where=~unset, initial=-np.inf))
+    if unset.any():  # read as 0
+        lo, hi = min(lo, 0.0), max(hi, 0.0)
+    if lo < 0 or hi > 1:
+        raise InputError(f"start occupancy must lie in 0..1, found {lo:g}..{hi:g}")
+    out = arr.astype(dtype)  # a copy: the caller's array is not changed
+    out[unset] = 0.0
+    return out
 
 
-def habitat_array(habitat) -> np.ndarray:
-    """Habitat quality as a float array, NaN (no data) read as 0 = no habitat; values outside 0–1 are an error."""
-    hab = np.asarray(getattr(habitat, "values", habitat), dtype=np.float64)
-    if np.nanmin(hab) < 0 or np.nanmax(hab) > 1:
-        raise InputError(f"habitat must lie in 0..1, found {np.nanmin(hab):g}..{np.nanmax(hab):g}")
-    return np.where(np.isfinite(hab), hab, 0.0)
+def habitat_array(habitat, dtype=np.float64) -> np.ndarray:
+    """Habitat quality as a ``dtype`` array, NaN (no data) read as 0 = no habitat; values outside 0–1 are an error.
+
+    The range is checked on the values as given, before any conversion to ``dtype``.
+    """
+    hab = _float_values(getattr(habitat, "values", habitat))
+    lo, hi = np.nanmin(hab), np.nanmax(hab)
+    if lo < 0 or hi > 1:
+        raise InputError(f"habitat must lie in 0..1, found {lo:g}..{hi:g}")
+    out = hab.astype(dtype)  # a copy: the caller's array is not changed
+    out[np.isnan(out)] = 0.0  # in range, so NaN is the only value that is not finite
+    return out
 
 
 def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, start, *, threshold: float,
@@ -271,8 +296,8 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     dtype = spread_dtype(precision, now.sizes["y"] * now.sizes["x"])
     now_arr = np.asarray(now.values, dtype=dtype)
     maps = [now_arr] + [np.asarray(f.values, dtype=dtype) for _, f in futures]
-    hab = habitat_array(habitat).astype(dtype, copy=False)
-    start_arr = occupied_start(start, now).astype(dtype, copy=False)
+    hab = habitat_array(habitat, dtype)
+    start_arr = occupied_start(start, now, dtype)
     valid = np.isfinite(now_arr)
     for _, f in futures:
         valid &= np.isfinite(np.asarray(f.values))
@@ -312,28 +337,33 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
                            end_year=end_year, step_years=step_years, rate=rate,
                            persistence_steps=persistence_steps, rngs=rngs, snapshot_years=sorted(snaps),
                            progress=progress, dtype=dtype)
+    del operators, rngs  # the kernel spectra: about one grid's worth
 
+    # Big arrays are let go as soon as they are used up: on a 10,000 x 10,000 grid each is
+    # 0.4 GB in float32 (bench/bench_reach_scale.py).
     now_suit = valid & (now_arr >= threshold)
-    fut_arr = maps[-1]
-    fut_suit = valid & (fut_arr >= threshold)
-    reached = result.final >= 0.5
-    classes = reach_classes(now_suit, fut_suit, hab, reached, valid)
+    fut_suit = valid & (maps[-1] >= threshold)
+    del now_arr, maps, climate
+    final = result.final
+    classes = reach_classes(now_suit, fut_suit, hab, final >= 0.5, valid)
+    occupied_horizon = _occupied_area(final, areas, valid)  # before the arrays of the edge and front exist
 
     def area(mask):
         return float(areas[mask].sum())
 
-    lats, lons = cell_lonlat(now)
+    lats = cell_lonlat(now)[0]
     start_occ = start_arr >= 0.5
     # The leading edge is measured on expected occupancy (area x occupancy weights); the
     # starting edge and front use the start cells whose climate is suitable today, so records
     # the model cannot hold (outside its climatic range) do not show up as a retreat.
     held = start_occ & now_suit
     held = held if held.any() else start_occ & valid
-    edges = edge_shift_summary(lats, areas * start_arr, held, valid & (result.final > 1e-6),
-                               weights_after=areas * result.final)
+    edges = edge_shift_summary(lats, areas, held, valid & (final > 1e-6), occupancy_before=start_arr,
+                               occupancy_after=final)
     north = edges["poleward"] != "south"
     held_start = np.where(held, start_arr, 0.0)
-    front_move = front_advance_summary(lats, held_start, result.final, valid, north=north)
+    del held
+    front_move = front_advance_summary(lats, held_start, final, valid, north=north)
 
     def run_values(cls, final):
         """Areas of one run's classes, its reached share of the gain and its front advance."""
@@ -346,8 +376,9 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
                 "front_advance_km": front_km}
 
     if replicates:
-        finals = [np.asarray(r, dtype=np.float64) for r in result.replicate_final]
+        finals = (np.asarray(r, dtype=np.float64) for r in result.replicate_final)  # one at a time
         runs = [run_values(reach_classes(now_suit, fut_suit, hab, f >= 0.5, valid), f) for f in finals]
+        result.replicate_final = None
     else:
         runs = [run_values(classes, None)]
     whole = run_values(classes, None) if replicates else runs[0]
@@ -355,7 +386,7 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
     summary = {
         "area_km2": whole["area_km2"],
         "reached_share_of_gain": whole["reached_share_of_gain"],
-        "occupied_km2": {"start": area(start_occ & valid), "horizon": float((result.final * areas)[valid].sum())},
+        "occupied_km2": {"start": area(start_occ & valid), "horizon": occupied_horizon},
         "front_advance_km": front_move["front_advance_km"],
         "spread_rate_km_per_decade": (front_move["front_advance_km"] / duration * 10.0
                                       if front_move["front_advance_km"] is not None else None),
@@ -386,26 +417,49 @@ def simulate_reach(now: xr.DataArray, futures: list, habitat: xr.DataArray, star
         "n_start_cells_unsuitable": int((start_occ & ~now_suit).sum()),
         "climate_interpolation": "linear in time between the given suitability maps",
     }
+    del held_start, start_arr, start_occ, now_suit, fut_suit
     if fragmentation_band_deg is not None:
         summary["fragmentation_by_latitude"] = _fragmentation(now, hab, valid, fragmentation_band_deg)
-    like = now.copy(data=np.zeros(now.shape, dtype=np.float32))
-
-    def layer(values):
-        """A float32 layer on the grid, NaN off the valid cells; a float32 array is reused, not copied."""
-        values = values.astype(np.float32, copy=False)
-        values[~valid] = np.nan
-        return like.copy(data=values)
-
-    occupancy = {}
-    for yr in sorted(result.snapshots):
-        occupancy[yr] = layer(result.snapshots.pop(yr))
-    arrival = like.copy(data=np.where(valid, result.arrival_year, np.nan).astype(np.float32))
+    del hab
+    # a template without data: each layer below gets its own array
+    like = now.copy(data=np.broadcast_to(np.float32(0.0), now.shape))
+    layer = _ValidLayer(like, valid)
+    # the snapshots stay packed; each look-up unpacks one float32 layer (NaN off the valid cells)
+    occupancy = result.snapshots.mapped(layer)
+    arrival = layer(result.arrival_year)
+    result.arrival_year = None
     classes_da = now.copy(data=classes).astype(np.uint8)
+    del classes
     front = front_geojson(now, occupancy, level=0.5)
-    share = result.final if replicates else (result.final >= 0.5).astype(np.float64)
-    reached_share = like.copy(data=np.where(valid, share, np.nan).astype(np.float32))
+    # reached share: the replicates' mean occupancy, or the one run's 0/1 state (as float32)
+    reached_share = layer(final if replicates else (final >= 0.5))
     return ReachResult(classes=classes_da, occupancy=occupancy, arrival_year=arrival, summary=summary, front=front,
                        runs=runs, reached_share=reached_share)
+
+
+def _occupied_area(occupancy, areas, valid) -> float:
+    """Sum of area x occupancy over the valid cells, float64 (the products of the valid cells only are held)."""
+    weighted = areas[valid]  # a new array (areas may be a broadcast view)
+    weighted *= occupancy[valid]
+    return float(weighted.sum())
+
+
+class _ValidLayer:
+    """Values -> a float32 layer on the grid of ``like``, NaN off the valid cells (picklable).
+
+    A float32 array handed in is taken over and changed in place; any other is converted.
+    The valid cells are kept as bits.
+    """
+
+    def __init__(self, like: xr.DataArray, valid: np.ndarray):
+        self.like, self.shape = like, valid.shape
+        self.invalid = np.packbits(~valid)
+
+    def __call__(self, values) -> xr.DataArray:
+        values = np.asarray(values).astype(np.float32, copy=False)
+        invalid = np.unpackbits(self.invalid, count=values.size).view(bool).reshape(self.shape)
+        values[invalid] = np.nan
+        return self.like.copy(data=values)
 
 
 def _fragmentation(grid, habitat, land, band_deg, threshold=0.5) -> dict:
@@ -417,13 +471,16 @@ def _fragmentation(grid, habitat, land, band_deg, threshold=0.5) -> dict:
     return fragmentation_summary(table, threshold=threshold, band_deg=band_deg, land="cells with climate data")
 
 
-def edge_shift_summary(lat, area, before, after, percentile: float = 95.0, weights_after=None) -> dict:
+def edge_shift_summary(lat, area, before, after, percentile: float = 95.0, weights_after=None, *,
+                       occupancy_before=None, occupancy_after=None) -> dict:
     """Poleward shift (km along the meridian) of the leading edge between two masks.
 
     The leading edge of a set of cells is the weighted ``percentile`` of their latitude
     on the poleward side (the 95th percentile in the northern hemisphere, the 5th in the
     southern; the hemisphere is that of the ``before`` cells' mean latitude). Weights are
-    the cell areas, or ``weights_after`` (area x expected occupancy) for the later set.
+    the cell areas, or ``weights_after`` (area x expected occupancy) for the later set;
+    ``occupancy_before`` / ``occupancy_after`` weigh each set by area x that occupancy,
+    multiplied on the set's cells only (no product grid is made).
     Positive shifts are poleward.
     """
     from envelope.kernels.change import meridian_arc_km, weighted_quantile
@@ -431,12 +488,20 @@ def edge_shift_summary(lat, area, before, after, percentile: float = 95.0, weigh
     lat = np.asarray(lat, dtype=np.float64)
     if not before.any() or not after.any():
         return {"leading_edge_shift_km": None, "poleward": None, "percentile": percentile}
-    north = float(np.average(lat[before], weights=area[before])) >= 0
+
+    def weights(mask, occupancy, given):
+        if occupancy is not None:
+            return area[mask] * np.asarray(occupancy)[mask]
+        return (area if given is None else np.asarray(given, dtype=np.float64))[mask]
+
+    w_before = weights(before, occupancy_before, None)
+    lat_before = lat[before]
+    north = float(np.average(lat_before, weights=w_before)) >= 0
     q = percentile / 100.0 if north else 1.0 - percentile / 100.0
     q = min(max(q, 1e-9), 1.0)
-    lat0 = weighted_quantile(lat[before], area[before], q)
-    w_after = area if weights_after is None else np.asarray(weights_after, dtype=np.float64)
-    lat1 = weighted_quantile(lat[after], w_after[after], q)
+    lat0 = weighted_quantile(lat_before, w_before, q)
+    del lat_before, w_before
+    lat1 = weighted_quantile(lat[after], weights(after, occupancy_after, weights_after), q)
     shift = meridian_arc_km(lat0, lat1)
     return {"leading_edge_shift_km": shift if north else -shift, "poleward": "north" if north else "south",
             "percentile": percentile, "edge_lat_start": lat0, "edge_lat_horizon": lat1}
@@ -534,7 +599,8 @@ def front_geojson(grid: xr.DataArray, occupancy: dict, level: float = 0.5) -> di
 
         to_lonlat = pyproj.Transformer.from_crs(crs, "EPSG:4326", always_xy=True).transform
     features = []
-    for year, occ in sorted(occupancy.items()):
+    for year in sorted(occupancy):  # one layer at a time (a packed mapping unpacks on look-up)
+        occ = occupancy[year]
         window = _crossing_window(occ.values, level)
         lines = []
         if window is None:

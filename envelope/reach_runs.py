@@ -9,6 +9,7 @@ import pandas as pd
 import xarray as xr
 
 from envelope.errors import InputError
+from envelope.kernels.compact import PackedSnapshots
 from envelope.reach import REACH_CLASSES, REACH_NODATA, ReachResult, front_geojson
 
 __all__ = ["AREA_KEYS", "INTERVAL_PERCENTILES", "ReachRunSet", "combine_reach_runs", "distance_levels",
@@ -64,12 +65,39 @@ def _median_or_none(values):
     return float(np.median(v)) if v.size else None
 
 
-def _mode_classes(stack: np.ndarray) -> np.ndarray:
-    """Per cell the most frequent class code across runs (ties: the lower code); nodata stays nodata."""
+# Cells per block where a per-cell statistic over runs is computed a block of rows at a time.
+_BLOCK_CELLS = 1 << 20
+
+
+def _row_blocks(shape):
+    """Row slices covering a (y, x) grid in blocks of about :data:`_BLOCK_CELLS` cells."""
+    rows = max(1, _BLOCK_CELLS // max(1, shape[1]))
+    return [slice(r, r + rows) for r in range(0, shape[0], rows)]
+
+
+def _mode_classes(grids: list) -> np.ndarray:
+    """Per cell the most frequent class code across runs (ties: the lower code); nodata stays nodata.
+
+    ``grids`` are the runs' class grids; a block of rows is stacked at a time.
+    """
     codes = sorted(REACH_CLASSES)
-    counts = np.stack([(stack == c).sum(axis=0) for c in codes])
-    out = np.asarray(codes, dtype=np.uint8)[np.argmax(counts, axis=0)]
-    out[(stack == REACH_NODATA).all(axis=0)] = REACH_NODATA
+    out = np.empty(grids[0].shape, dtype=np.uint8)
+    for rows in _row_blocks(out.shape):
+        stack = np.stack([g[rows] for g in grids])
+        counts = np.stack([(stack == c).sum(axis=0) for c in codes])
+        block = np.asarray(codes, dtype=np.uint8)[np.argmax(counts, axis=0)]
+        block[(stack == REACH_NODATA).all(axis=0)] = REACH_NODATA
+        out[rows] = block
+    return out
+
+
+def _median_arrival(grids: list, valid: np.ndarray) -> np.ndarray:
+    """Per cell the median arrival year over runs (never = later than any), float32, NaN if never or not valid."""
+    out = np.empty(valid.shape, dtype=np.float32)
+    for rows in _row_blocks(out.shape):
+        years = np.stack([np.where(np.isfinite(g[rows]), g[rows], np.inf) for g in grids])
+        med = np.median(years, axis=0)
+        out[rows] = np.where(valid[rows] & np.isfinite(med), med, np.nan)
     return out
 
 
@@ -109,24 +137,36 @@ def combine_reach_runs(results: list, labels: list) -> ReachRunSet:
     first = results[0]
     # each run weighs the same: a path's reached share is the mean of its runs' 0/1 states
     weights = np.asarray([len(r.runs) for r in results], dtype=np.float64)
-    share = sum(w * np.nan_to_num(np.asarray(r.reached_share.values, dtype=np.float64))
-                for w, r in zip(weights, results)) / weights.sum()
+    share = None
+    for w, r in zip(weights, results):  # the weighted sum in place: no grid per term
+        term = np.array(r.reached_share.values, dtype=np.float64)
+        np.nan_to_num(term, copy=False)
+        term *= w
+        share = term if share is None else np.add(share, term, out=share)
+        del term
+    share /= weights.sum()
     valid = np.isfinite(np.asarray(first.reached_share.values))
     like = first.reached_share
-    probability = like.copy(data=np.where(valid, share, np.nan).astype(np.float32))
+    probability = share.astype(np.float32)
+    del share
+    probability[~valid] = np.nan
+    probability = like.copy(data=probability)
     if len(results) == 1:
         classes, arrival, front = first.classes, first.arrival_year, first.front
     else:
-        classes = first.classes.copy(data=_mode_classes(np.stack([np.asarray(r.classes.values) for r in results])))
-        years = np.stack([np.where(np.isfinite(r.arrival_year.values), r.arrival_year.values, np.inf)
-                          for r in results])
-        med = np.median(years, axis=0)
-        arrival = like.copy(data=np.where(valid & np.isfinite(med), med, np.nan).astype(np.float32))
-        # the front where half of the climate paths hold the cell (occupancy >= 0.5) at each snapshot
+        classes = first.classes.copy(data=_mode_classes([np.asarray(r.classes.values) for r in results]))
+        arrival = like.copy(data=_median_arrival([np.asarray(r.arrival_year.values) for r in results], valid))
+        # the front where half of the climate paths hold the cell (occupancy >= 0.5) at each
+        # snapshot; the shares are packed like the runs' own snapshots, one layer unpacked at a time
         snap_years = sorted(set.intersection(*(set(r.occupancy) for r in results)))
-        halves = {yr: like.copy(data=np.mean([np.nan_to_num(r.occupancy[yr].values) >= 0.5 for r in results],
-                                             axis=0).astype(np.float32)) for yr in snap_years}
-        front = front_geojson(like, halves, level=0.5)
+        halves = PackedSnapshots()
+        for yr in snap_years:
+            held = np.zeros(like.shape, dtype=np.int64)
+            for r in results:
+                held += r.occupancy[yr].values >= 0.5  # NaN compares False, as 0 would
+            halves.add(yr, (held / len(results)).astype(np.float32))
+            del held
+        front = front_geojson(like, halves.mapped(lambda values: like.copy(data=values)), level=0.5)
 
     summary = dict(first.summary)
     summary["area_km2"] = {k: _median_or_none(runs[k]) for k in AREA_KEYS}

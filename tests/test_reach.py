@@ -274,3 +274,135 @@ def test_float32_spread_agrees_with_float64_within_its_floor():
     assert spread_dtype("auto", FLOAT32_ABOVE_CELLS + 1) == np.float32
     with pytest.raises(InputError, match="precision"):
         spread_dtype("float16", 10)
+
+
+def _landscape(ny=48, nx=36):
+    """Occupied in the south, climate improving northward over time, no-data cells, habitat 0, 1 or fractional."""
+    rng = np.random.default_rng(11)
+    rows = np.arange(ny)[:, None] * np.ones((1, nx))  # row 0 is the northern edge
+
+    def suitability(edge_share):  # 0.5 on row edge_share * ny, rising southward
+        noise = 0.1 * rng.standard_normal((ny, nx))
+        return np.clip(0.5 + (rows - edge_share * ny) / (0.3 * ny) + noise, 0, 1)
+
+    now, mid, fut = suitability(0.6), suitability(0.4), suitability(0.2)
+    for a in (now, mid, fut):
+        a[:3, :5] = np.nan
+    mid[20:22, 10:12] = np.nan
+    hab = (rng.random((ny, nx)) >= 0.2).astype(float)
+    hab[26:28] *= 0.6
+    hab[5:7, 5:9] = np.nan
+    start = np.zeros((ny, nx))
+    start[int(0.7 * ny):] = 1.0
+    start[int(0.7 * ny):, ::7] = 0.3
+    return layer(now, lat0=40.0), [(2035, layer(mid, lat0=40.0)), (2050, layer(fut, lat0=40.0))], \
+        layer(hab, lat0=40.0), start
+
+
+@pytest.mark.parametrize("precision, replicates", [("float64", 0), ("float32", 0), ("float64", 3), ("float32", 2)])
+def test_packed_snapshots_and_lean_outputs_equal_the_former_dense_path(precision, replicates, monkeypatch):
+    # Exact equality with the former code path, which kept every snapshot as a full copy
+    # (``snapshots[year] = current.copy()``) and weighed the summary with whole grids of
+    # area x occupancy. The snapshots are now packed (envelope.kernels.compact), the weights
+    # multiplied on the selected cells only and the grids let go early: not one output may
+    # change by one bit. Tiny blocks make every block-by-block loop cross its seams.
+    import envelope.kernels.compact as compact
+    import envelope.kernels.spread as spread
+    import envelope.kernels.transient as transient
+    import envelope.reach as reach
+    from envelope.kernels.compact import PackedSnapshots
+
+    monkeypatch.setattr(compact, "_CHUNK_CELLS", 64)
+    monkeypatch.setattr(spread, "_BLOCK_CELLS", 100)
+    monkeypatch.setattr(transient, "_BLOCK_CELLS", 100)
+    dense, kept = {}, {}
+    pack = PackedSnapshots.add
+
+    def add(self, year, values):  # what the former code kept
+        dense[year] = values.copy()
+        pack(self, year, values)
+
+    def run_transient(*args, **kw):
+        result = transient.run_transient(*args, **kw)
+        kept.update(final=result.final.copy(), arrival=result.arrival_year.copy(),
+                    replicates=None if result.replicate_final is None else result.replicate_final.copy())
+        return result
+
+    monkeypatch.setattr(PackedSnapshots, "add", add)
+    monkeypatch.setattr(reach, "run_transient", run_transient)
+    now, futures, hab, start = _landscape()
+    res = simulate_reach(now, futures, hab, start, threshold=0.5, now_year=2020, rate=2.5, precision=precision,
+                         settings=DispersalSettings(kernel="exponential", mean_distance_km=3.0),
+                         replicates=replicates, seed=4, snapshot_every_years=6, fragmentation_band_deg=None)
+    dtype = np.dtype(precision)
+    final = kept["final"]
+    valid = np.isfinite(now.values) & np.isfinite(futures[0][1].values) & np.isfinite(futures[1][1].values)
+
+    def former_layer(values):
+        values = values.astype(np.float32)
+        values[~valid] = np.nan
+        return values
+
+    def bits(a):
+        return np.asarray(a).view(np.uint32)
+
+    assert list(res.occupancy) == sorted(dense) == [2026.0, 2032.0, 2035.0, 2038.0, 2044.0, 2050.0]
+    for year, values in dense.items():
+        np.testing.assert_array_equal(bits(res.occupancy[year].values), bits(former_layer(values)))
+    np.testing.assert_array_equal(dense[2050.0], final)
+    former_layers = {year: now.copy(data=former_layer(v)) for year, v in dense.items()}
+    assert res.front == reach.front_geojson(now, former_layers, level=0.5)
+    np.testing.assert_array_equal(bits(res.arrival_year.values), bits(former_layer(kept["arrival"])))
+    share = final if replicates else (final >= 0.5).astype(np.float64)
+    np.testing.assert_array_equal(bits(res.reached_share.values), bits(former_layer(share)))
+
+    # the summary's values, computed as the former code did, on whole grids
+    column = np.asarray(cell_area_km2(now.isel(x=slice(0, 2))).values, dtype=np.float64)[:, :1]
+    areas = np.broadcast_to(column, now.shape)
+    lats = reach.cell_lonlat(now)[0]
+    start_arr = np.where(np.isfinite(start), start, 0.0).astype(dtype)
+    hab_arr = np.where(np.isfinite(hab.values), hab.values.astype(np.float64), 0.0).astype(dtype)
+    now_suit = valid & (now.values.astype(dtype) >= 0.5)
+    fut_suit = valid & (futures[1][1].values.astype(dtype) >= 0.5)
+    held = (start_arr >= 0.5) & now_suit
+    edges = edge_shift_summary(lats, areas * start_arr, held, valid & (final > 1e-6), weights_after=areas * final)
+    held_start = np.where(held, start_arr, 0.0)
+    s = res.summary
+    assert s["occupied_km2"]["horizon"] == float((final * areas)[valid].sum())
+    assert s["leading_edge_shift_km"] == edges["leading_edge_shift_km"] and s["poleward"] == edges["poleward"]
+    moved = front_advance_summary(lats, held_start.astype(np.float64), final.astype(np.float64), valid)
+    assert s["front_advance_km"] == moved["front_advance_km"]
+    assert s["front_columns_used"] == moved["front_columns_used"]
+    finals = [np.asarray(r, dtype=np.float64) for r in kept["replicates"]] if replicates else [None]
+    for run_values, f in zip(res.runs, finals):
+        cls = res.classes.values if f is None else reach.reach_classes(now_suit, fut_suit, hab_arr, f >= 0.5, valid)
+        for code, name in ((1, "lost"), (2, "stable"), (3, "gained_reached"), (4, "gained_unreached"),
+                           (5, "gained_no_habitat")):
+            assert run_values["area_km2"][name] == float(areas[cls == code].sum())
+        if f is not None:
+            assert run_values["front_advance_km"] == front_advance_summary(lats, held_start, f, valid)[
+                "front_advance_km"]
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_start_and_habitat_are_checked_as_given_then_converted(dtype):
+    # Exact equality with the former code path (float64 checks and fills, then the cast):
+    # NaN and infinities in the start read as 0, NaN habitat as 0; the range is checked on
+    # the values as given, so 1 + 1e-9 is refused although it rounds to 1.0 in float32.
+    from envelope.reach import habitat_array, occupied_start
+
+    grid = layer(np.zeros((2, 3)))
+    start = np.array([[0.0, np.nan, 1.0], [np.inf, -np.inf, 0.3]])
+    got = occupied_start(start, grid, dtype)
+    assert got.dtype == np.dtype(dtype)
+    np.testing.assert_array_equal(got, np.where(np.isfinite(start), start, 0.0).astype(dtype))
+    assert np.isnan(start[0, 1])  # the caller's array is not changed
+    hab = np.array([[0.2, np.nan, 1.0], [0.0, 0.7, 0.5]], dtype=np.float32)
+    np.testing.assert_array_equal(habitat_array(layer(hab), dtype),
+                                  np.where(np.isfinite(hab), hab.astype(np.float64), 0.0).astype(dtype))
+    with pytest.raises(InputError, match=r"start occupancy must lie in 0..1, found 0..1"):
+        occupied_start(np.array([[0.0, 1.0 + 1e-9, 0.5], [0, 0, 0]]), grid, dtype)
+    with pytest.raises(InputError, match=r"start occupancy must lie in 0..1, found -0.5..1"):
+        occupied_start(np.array([[-0.5, 1.0, np.nan], [0, 0, 0]]), grid, dtype)
+    with pytest.raises(InputError, match=r"habitat must lie in 0..1, found 0..inf"):
+        habitat_array(np.array([[0.0, np.inf]]), dtype)

@@ -63,3 +63,42 @@ def test_deterministic_run_is_its_own_single_run():
     c = combine_reach_runs([r], [{}])
     iv = c.summary["intervals"]["front_advance_km"]
     assert iv["p05"] == iv["p50"] == iv["p95"] == pytest.approx(r.summary["front_advance_km"])
+
+
+def test_combined_maps_equal_the_former_whole_grid_path(monkeypatch):
+    # Exact equality with the former code path, which stacked every run's grids whole: the
+    # mode of the classes, the median arrival year, the weighted share and the front where
+    # half of the paths are occupied are now computed a block of rows at a time (2 rows
+    # here) and the halves kept packed; not one value may change.
+    import envelope.reach_runs as reach_runs
+    from envelope.reach import REACH_CLASSES, REACH_NODATA, front_geojson, simulate_reach
+
+    from tests.test_reach import _landscape
+
+    monkeypatch.setattr(reach_runs, "_BLOCK_CELLS", 2 * 36)
+    now, futures, hab, start = _landscape()
+    kw = dict(threshold=0.5, now_year=2020, rate=2.5, snapshot_every_years=6, fragmentation_band_deg=None)
+    results = [simulate_reach(now, futures, hab, start, settings=DispersalSettings(mean_distance_km=d), seed=s,
+                              replicates=r, **kw) for d, r, s in ((2.0, 0, 0), (3.0, 3, 1), (4.5, 0, 2))]
+    combined = combine_reach_runs(results, [{"d": 2.0}, {"d": 3.0}, {"d": 4.5}])
+    weights = np.asarray([len(r.runs) for r in results], dtype=np.float64)
+    share = sum(w * np.nan_to_num(np.asarray(r.reached_share.values, dtype=np.float64))
+                for w, r in zip(weights, results)) / weights.sum()
+    valid = np.isfinite(np.asarray(results[0].reached_share.values))
+    bits = lambda a: np.asarray(a).view(np.uint32)  # noqa: E731
+    np.testing.assert_array_equal(bits(combined.probability.values),
+                                  bits(np.where(valid, share, np.nan).astype(np.float32)))
+    stack = np.stack([np.asarray(r.classes.values) for r in results])
+    codes = sorted(REACH_CLASSES)
+    mode = np.asarray(codes, dtype=np.uint8)[np.argmax(np.stack([(stack == c).sum(axis=0) for c in codes]), axis=0)]
+    mode[(stack == REACH_NODATA).all(axis=0)] = REACH_NODATA
+    np.testing.assert_array_equal(combined.classes.values, mode)
+    years = np.stack([np.where(np.isfinite(r.arrival_year.values), r.arrival_year.values, np.inf) for r in results])
+    med = np.median(years, axis=0)
+    np.testing.assert_array_equal(bits(combined.arrival_year.values),
+                                  bits(np.where(valid & np.isfinite(med), med, np.nan).astype(np.float32)))
+    like = results[0].reached_share
+    halves = {yr: like.copy(data=np.mean([np.nan_to_num(r.occupancy[yr].values) >= 0.5 for r in results],
+                                         axis=0).astype(np.float32)) for yr in results[0].occupancy}
+    assert combined.front == front_geojson(like, halves, level=0.5)
+    assert len(combined.front["features"]) == 6 and any(f["geometry"]["coordinates"] for f in combined.front["features"])

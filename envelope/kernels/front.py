@@ -34,7 +34,9 @@ class FrontShift(NamedTuple):
 
 
 def _as_grid(name, arr, shape=None):
-    a = np.asarray(arr, dtype=np.float64)
+    a = np.asarray(arr)
+    if a.dtype not in (np.float32, np.float64):  # float32 is kept: every comparison is made in float64
+        a = a.astype(np.float64)
     if a.ndim != 2:
         raise InputError(f"{name} must be a 2-D (rows, columns) array, got shape {a.shape}")
     if shape is not None and a.shape != shape:
@@ -105,21 +107,28 @@ def column_front_positions(occupancy, position_km, *, level=0.5, valid=None):
     out = np.full(nx, np.nan)
     if ny < 2:
         return out
-    # Orient every column so that the position grows with the row index.
+    # Orient every column so that the position grows with the row index (a reversed view
+    # when all columns run the same way, as on any grid whose rows are parallels).
     flip = pos[-1] < pos[0]
-    occ = np.where(flip, occ[::-1], occ)
-    pos = np.where(flip, pos[::-1], pos)
-    ok = np.where(flip, ok[::-1], ok)
+    if flip.all():
+        occ, pos, ok = occ[::-1], pos[::-1], ok[::-1]
+    elif flip.any():
+        occ = np.where(flip, occ[::-1], occ)
+        pos = np.where(flip, pos[::-1], pos)
+        ok = np.where(flip, ok[::-1], ok)
     with np.errstate(invalid="ignore"):
-        monotone = np.all(np.diff(pos, axis=0) > 0, axis=0)
-    above = ok & (occ >= level)
+        if pos.strides[1] == 0:  # one position per row (a broadcast view): every column alike
+            monotone = np.broadcast_to(np.all(np.diff(pos[:, :1], axis=0) > 0, axis=0), (nx,))
+        else:
+            monotone = np.all(np.diff(pos, axis=0) > 0, axis=0)
+    above = ok & np.greater_equal(occ, np.float64(level))  # in float64, whatever the occupancy's dtype
     has = above.any(axis=0)
     last = ny - 1 - np.argmax(above[::-1], axis=0)  # farthest cell at or above the level
     cols = np.arange(nx)
     nxt = np.minimum(last + 1, ny - 1)
     usable = has & monotone & (last < ny - 1) & ok[nxt, cols]
     k, c = last[usable], cols[usable]
-    p0, p1 = occ[k, c], occ[k + 1, c]
+    p0, p1 = occ[k, c].astype(np.float64), occ[k + 1, c].astype(np.float64)
     x0, x1 = pos[k, c], pos[k + 1, c]
     out[usable] = x0 + (p0 - level) / (p0 - p1) * (x1 - x0)
     return out

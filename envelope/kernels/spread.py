@@ -21,6 +21,9 @@ __all__ = ["SpreadOperator", "DEFAULT_PRESSURE_FLOOR"]
 # tail weights, hence float32 shortens the reach of the far tail (see docs).
 DEFAULT_PRESSURE_FLOOR = {np.dtype(np.float64): 1e-12, np.dtype(np.float32): 1e-5}
 
+# Cells per block of rows where a grid-sized temporary is avoided by working block by block.
+_BLOCK_CELLS = 1 << 20
+
 
 class _Block:
     """One convolution: kernel transform and the rows it reads and writes."""
@@ -261,12 +264,17 @@ class SpreadOperator:
         np.expm1(colonise, out=colonise)
         np.negative(colonise, out=colonise)
         if rng is None:
-            # p' = c + p * (phi - c)
+            # p' = c + p * (phi - c), written over c a block of rows at a time: no second
+            # grid-sized array (the same operations, cell by cell, as on whole grids)
             occ_t = occ.astype(self.dtype, copy=False)
-            new = persist - colonise
-            new *= occ_t
-            new += colonise
-            return new
+            rows = max(1, _BLOCK_CELLS // self.shape[1])
+            for r in range(0, self.shape[0], rows):
+                block = (..., slice(r, r + rows), slice(None))
+                new = persist[block[1:]] - colonise[block]
+                new *= occ_t[block]
+                new += colonise[block]
+                colonise[block] = new
+            return colonise
         # Stochastic: occupied -> kept w.p. phi; empty -> colonised w.p. c.
         prob = np.where(occ > 0, persist, colonise)
         draws = self._uniform(rng, occ.shape)

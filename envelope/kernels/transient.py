@@ -8,8 +8,13 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from envelope.errors import InputError
+from envelope.kernels.compact import PackedSnapshots
 
 __all__ = ["ClimatePath", "TransientResult", "run_transient", "step_years_list"]
+
+
+# Cells per block where a grid-sized temporary is avoided by working a block of rows at a time.
+_BLOCK_CELLS = 1 << 20
 
 
 @dataclass
@@ -48,16 +53,39 @@ class ClimatePath:
             return self.maps[0]
         if year >= ys[-1]:
             return self.maps[-1]
-        k = int(np.searchsorted(ys, year, side="right")) - 1
-        w = (year - ys[k]) / (ys[k + 1] - ys[k])
+        k, w = self._bracket(year)
         return (1.0 - w) * self.maps[k] + w * self.maps[k + 1]
+
+    def _bracket(self, year):
+        ys = self.years
+        k = int(np.searchsorted(ys, year, side="right")) - 1
+        return k, (year - ys[k]) / (ys[k + 1] - ys[k])
+
+    def suitable_at(self, year: float, threshold: float, dtype=None) -> np.ndarray:
+        """``at(year) >= threshold`` as 0/1 in ``dtype`` (default the path's), NaN counted unsuitable.
+
+        The same values as thresholding :meth:`at`, computed a block of rows at a time, so
+        that no interpolated map of the whole grid is ever held.
+        """
+        dtype = np.dtype(self.dtype if dtype is None else dtype)
+        ys = self.years
+        if year <= ys[0] or year >= ys[-1]:
+            return (self.maps[0 if year <= ys[0] else -1] >= threshold).astype(dtype)
+        k, w = self._bracket(year)
+        a, b = self.maps[k], self.maps[k + 1]
+        out = np.empty(a.shape, dtype=dtype)
+        rows = max(1, _BLOCK_CELLS // max(1, int(np.prod(a.shape[1:]))))
+        for r in range(0, a.shape[0], rows):
+            part = (1.0 - w) * a[r:r + rows] + w * b[r:r + rows]
+            out[r:r + rows] = part >= threshold  # NaN compares False: no climate, not suitable
+        return out
 
 
 @dataclass
 class TransientResult:
     """Expected occupancy (or replicate mean) at snapshot years, arrival years and the final state."""
 
-    snapshots: dict            # year -> 2-D occupancy in [0, 1]
+    snapshots: PackedSnapshots  # year -> 2-D occupancy in [0, 1], kept packed (a new array per look-up)
     arrival_year: np.ndarray   # first year occupancy >= level (NaN = never; start cells = start year)
     final: np.ndarray          # occupancy at the last year
     years: list = field(default_factory=list)  # every simulated year
@@ -104,7 +132,10 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
         replicates occupied. None: deterministic expected occupancy.
     snapshot_years : iterable of float
         Years at which the occupancy is recorded (the end year always is). Years that do
-        not fall on a step end are recorded at the first step end at or after them.
+        not fall on a step end are recorded at the first step end at or after them. The
+        snapshots are kept packed (:class:`envelope.kernels.compact.PackedSnapshots`): the
+        exact 0 and 1 cells as bits, so that a large grid's snapshots take a fraction of
+        the memory of full copies; each look-up gives back the recorded values exactly.
     level : float
         Occupancy level defining arrival (and the expansion front), default 0.5.
     progress : callable(step_index, n_steps), optional
@@ -133,7 +164,7 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
 
     years = step_years_list(float(start_year), float(end_year), float(step_years))
     wanted = sorted({float(y) for y in snapshot_years} | {float(end_year)})
-    snapshots = {}
+    snapshots = PackedSnapshots()
     # float32 holds step years exactly to ~1e-4 year: enough for arrival maps, half the memory
     arrival = np.full(start.shape, np.nan, dtype=np.float32 if dtype == np.float32 else np.float64)
     arrival[start >= level] = start_year
@@ -146,8 +177,7 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
                 if persistence_steps > 0 else [None] * n_tracks)
 
     for i, year in enumerate(years):
-        suit = climate.at(year)
-        suitable = (suit >= threshold).astype(dtype)  # NaN compares False: no climate, not suitable
+        suitable = climate.suitable_at(year, threshold, dtype)  # NaN: no climate, not suitable
         if n_rep and (len(ops) > 1 or persistence_steps > 0):
             # replicates advanced one by one: each has its own kernel or its own lag counter
             for r in range(n_rep):
@@ -163,7 +193,7 @@ def run_transient(operators, start, habitat, climate: ClimatePath, *, threshold,
         newly = np.isnan(arrival) & (current >= level)
         arrival[newly] = year
         while wanted and wanted[0] <= year + 1e-9:
-            snapshots[wanted.pop(0)] = current.copy()
+            snapshots.add(wanted.pop(0), current)
         if progress is not None:
             progress(i + 1, len(years))
     final = occ.mean(axis=0) if n_rep else occ

@@ -100,3 +100,28 @@ def test_bad_input(call, match):
     # Common practice, no source.
     with pytest.raises(InputError, match=match):
         call()
+
+
+@pytest.mark.parametrize("flip", ["none", "all", "some"])
+def test_float32_occupancy_and_broadcast_positions_give_the_float64_result(flip):
+    # Exact equality with the former code path, which converted occupancy and positions to
+    # full float64 grids: float32 occupancy is compared with the level in float64 (0.7 is
+    # not a float32 number: a cell of float32(0.7) lies below it), positions may be a
+    # broadcast view with one value per row, and columns may run either way.
+    rng = np.random.default_rng(3)
+    ny, nx = 30, 12
+    occ = np.sort(rng.random((ny, nx)), axis=0)[::-1].astype(np.float32)
+    occ[10, 2] = np.float32(0.7)
+    occ[11:, 2] = 0.0
+    rows = np.arange(ny, dtype=float)[::-1].copy()[:, None]
+    pos = np.broadcast_to(rows, (ny, nx))
+    if flip == "all":
+        occ, pos = occ[::-1], pos[::-1]
+    elif flip == "some":
+        pos = np.where(np.arange(nx) % 2 == 0, pos, pos[::-1])
+        occ = np.where(np.arange(nx) % 2 == 0, occ, occ[::-1])
+    valid = rng.random((ny, nx)) > 0.05
+    for level in (0.5, 0.7):
+        got = column_front_positions(occ, pos, level=level, valid=valid)
+        want = column_front_positions(occ.astype(np.float64), np.array(pos), level=level, valid=valid)
+        np.testing.assert_array_equal(got, want)

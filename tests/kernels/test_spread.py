@@ -294,3 +294,33 @@ def test_periodic_x_matches_scipy_wrapped_convolution():
     one = np.zeros((1, nx))
     one[0, 0] = 1.0
     assert ring.pressure(one).sum() == pytest.approx(1.0, rel=1e-12)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_step_in_row_blocks_equals_the_whole_grid_formula(dtype, monkeypatch):
+    # Exact equality with the former code path: p' = c + p (phi - c) on whole grids, where
+    # c = 1 - exp(-R pressure h s); the step now writes it over c a block of rows at a time
+    # (3 rows here, so the seams are crossed; 20 rows do not divide evenly).
+    import envelope.kernels.spread as spread
+
+    monkeypatch.setattr(spread, "_BLOCK_CELLS", 3 * 11)
+    rng = np.random.default_rng(8)
+    k = discretise_kernel("exponential", 2.0, cell_dx_km=1.0, cell_dy_km=1.0)
+    occ = (rng.random((20, 11)) * (rng.random((20, 11)) < 0.4)).astype(dtype)
+    hab, suit = rng.random((20, 11)).astype(dtype), (rng.random((20, 11)) < 0.8).astype(dtype)
+    op = SpreadOperator(occ.shape, k, dtype=dtype)
+    c = op.pressure(occ)
+    c *= -1.5
+    c *= hab
+    c *= suit
+    np.expm1(c, out=c)
+    np.negative(c, out=c)
+    want = suit - c
+    want *= occ
+    want += c
+    got = op.step(occ, hab, suit, 1.5)
+    assert got.dtype == np.dtype(dtype)
+    np.testing.assert_array_equal(got, want)
+    # replicates along a leading axis
+    both = op.step(np.stack([occ, occ]), hab, suit, 1.5)
+    np.testing.assert_array_equal(both[1], want)

@@ -301,3 +301,22 @@ def test_bad_inputs_name_the_parameter(change, phrase):
     kw.update(change)
     with pytest.raises(InputError, match=phrase):
         run_transient(ops, start, np.ones((2, 3)), _constant((2, 3)), **kw)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_suitable_at_equals_thresholding_the_interpolated_map(dtype, monkeypatch):
+    # Exact equality with the former code path (``at(year) >= threshold``, then 0/1 in the
+    # path's dtype), computed in blocks of 2 rows here so the blocks' seams are crossed.
+    import envelope.kernels.transient as transient
+
+    monkeypatch.setattr(transient, "_BLOCK_CELLS", 10)
+    rng = np.random.default_rng(5)
+    maps = [rng.random((9, 5)), rng.random((9, 5)), rng.random((9, 5))]
+    maps[1][2, 3] = np.nan
+    path = ClimatePath([2020, 2050, 2080], maps, dtype=dtype)
+    for year in (2000, 2020, 2031.5, 2050, 2064.25, 2080, 2120):
+        for threshold in (0.0, 0.3, 0.7, 1.0):
+            want = (path.at(year) >= threshold).astype(dtype)
+            got = path.suitable_at(year, threshold)
+            assert got.dtype == np.dtype(dtype)
+            np.testing.assert_array_equal(got, want)
