@@ -11,6 +11,7 @@ import xarray as xr
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
 from envelope.kernels.bioclim import bioclim_kernel, variable_long_names, variable_names, variable_units
+from envelope.projection import KERNEL_CELLS, map_cells
 
 __all__ = ["bioclim", "check_monthly", "check_monthly_grids"]
 
@@ -86,6 +87,12 @@ def check_monthly(tmin, tmax, prec, tmean=None, *, names=None) -> None:
                          "cell-months; expected tmin <= tmax (files swapped or on different grids?)")
 
 
+def _bioclim_cells(*months, conventions):
+    """(month, cells) runs of tmin, tmax, prec[, tmean] -> float32 (variable, cells)."""
+    tmean = months[3] if len(months) == 4 else None
+    return bioclim_kernel(*months[:3], tmean, **conventions).astype(np.float32)
+
+
 def bioclim(
     tmin: xr.DataArray,
     tmax: xr.DataArray,
@@ -101,8 +108,10 @@ def bioclim(
     """Bioclimatic variables BIO1-BIO19 (and growing degree days) from 12-month stacks.
 
     Lazy: with dask-backed inputs nothing is computed until the result is written or
-    ``.compute()`` is called; each chunk of cells goes through
-    :func:`envelope.kernels.bioclim.bioclim_kernel` with all 12 months at once.
+    ``.compute()`` is called; each (month, y, x) block goes through
+    :func:`envelope.kernels.bioclim.bioclim_kernel` as it was read, months first (see
+    :func:`envelope.projection.map_cells`), in runs of
+    :data:`envelope.projection.KERNEL_CELLS` cells.
 
     Parameters
     ----------
@@ -138,30 +147,15 @@ def bioclim(
         if unknown:
             raise InputError(f"variables: {unknown[0]!r} is not a bioclimatic variable here; "
                              f"expected some of {', '.join(all_names)}")
-    present = [(k, v) for k, v in inputs.items() if v is not None]
-    # the kernel needs every month of a cell in one chunk; y/x chunks stay as they are
-    arrays = [v.chunk({"month": -1}) if v.chunks is not None else v for _, v in present]
-    args = [a.drop_vars([c for c in a.coords if c not in ("y", "x")]) for a in arrays]
-    has_tmean = tmean is not None
-
-    def _kernel(*blocks):
-        t_mean = blocks[3] if has_tmean else None
-        out = bioclim_kernel(blocks[0], blocks[1], blocks[2], t_mean,
-                             wrap=wrap, ddof=ddof, cv_plus_one=cv_plus_one, gdd_base=gdd_base)
-        return out.astype(np.float32)
-
+    # months first, as read: the kernel works on whole months of cells at a time
+    stacks = [v.transpose("month", "y", "x") for v in inputs.values() if v is not None]
+    conventions = {"wrap": wrap, "ddof": ddof, "cv_plus_one": cv_plus_one, "gdd_base": gdd_base}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        out = xr.apply_ufunc(
-            _kernel,
-            *args,
-            input_core_dims=[["month"]] * len(args),
-            output_core_dims=[["variable"]],
-            dask="parallelized",
-            output_dtypes=[np.float32],
-            dask_gufunc_kwargs={"output_sizes": {"variable": len(all_names)}},
-        )
-    out = out.transpose("variable", "y", "x").assign_coords(
+        out = map_cells(_bioclim_cells, *stacks, bands=len(all_names), batch_cells=KERNEL_CELLS,
+                        conventions=conventions)
+    has_tmean = tmean is not None
+    out = out.assign_coords(
         variable=all_names,
         units=("variable", list(variable_units(gdd_base))),
         long_name=("variable", list(variable_long_names(gdd_base))),

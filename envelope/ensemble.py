@@ -8,6 +8,8 @@ import numpy as np
 import xarray as xr
 
 from envelope.errors import InputError
+from envelope.kernels.rowwise import sum_rows
+from envelope.projection import KERNEL_CELLS, map_cells
 
 __all__ = ["CONSENSUS_CATEGORIES", "COUNT_NODATA", "DEFAULT_AGREEMENT", "ENSEMBLE_STATISTICS", "consensus_count",
            "ensemble_statistics"]
@@ -31,19 +33,23 @@ def consensus_count(n_models: int, agreement: float) -> int:
 
 
 def _ensemble_block(S, threshold, needed, ddof):
-    """Kernel on one chunk: ``S`` is (..., model); returns mean, sd, count, consensus.
+    """Kernel on one block: ``S`` is (model, ...); returns mean, sd, count, consensus.
 
-    A cell with NaN in any model gets NaN mean/SD and the nodata code in count/consensus.
+    Models first, as the stack is read: each step works on one model's cells at a time,
+    and the sums over models are :func:`envelope.kernels.rowwise.sum_rows` (the bits of
+    NumPy's sums along a model-last axis). A cell with NaN in any model gets NaN mean/SD
+    and the nodata code in count/consensus.
     """
     S = np.asarray(S, dtype=np.float64)
-    n = S.shape[-1]
-    valid = np.isfinite(S).all(axis=-1)
-    mean = S.mean(axis=-1)
+    n = S.shape[0]
+    valid = np.isfinite(S).all(axis=0)
+    mean = sum_rows(S) / n
     if n - ddof > 0:
-        sd = np.sqrt(((S - mean[..., None]) ** 2).sum(axis=-1) / (n - ddof))
+        with np.errstate(invalid="ignore"):  # inf - inf in a cell that is nodata anyway
+            sd = np.sqrt(sum_rows((S - mean) ** 2) / (n - ddof))
     else:
         sd = np.full(mean.shape, np.nan)
-    count = (S >= threshold).sum(axis=-1)
+    count = (S >= threshold).sum(axis=0)
     consensus = (count >= needed).astype(np.uint8)
     count = np.where(valid, count, COUNT_NODATA).astype(np.uint8)
     consensus = np.where(valid, consensus, COUNT_NODATA).astype(np.uint8)
@@ -74,20 +80,18 @@ def ensemble_statistics(suitability: xr.DataArray, threshold: float, *,
     nodata where any model has no value), dims (y, x); attrs ``n_models``,
     ``threshold``, ``agreement``, ``consensus_min_models``.
     """
-    if "model" not in suitability.dims:
-        raise InputError(f"suitability: dims {suitability.dims}; expected a 'model' dimension")
+    if set(suitability.dims) != {"model", "y", "x"}:
+        raise InputError(f"suitability: dims {suitability.dims}; expected (model, y, x)")
     n = suitability.sizes["model"]
     needed = consensus_count(n, agreement)
-    if suitability.chunks is not None:
-        suitability = suitability.chunk({"model": -1})
-    mean, sd, count, consensus = xr.apply_ufunc(
-        _ensemble_block, suitability,
-        kwargs={"threshold": float(threshold), "needed": needed, "ddof": int(ddof)},
-        input_core_dims=[["model"]], output_core_dims=[[], [], [], []],
-        dask="parallelized", output_dtypes=[np.float32, np.float32, np.uint8, np.uint8],
-    )
-    ds = xr.Dataset({"mean": mean, "sd": sd, "count": count, "consensus": consensus})
-    ds = ds.drop_vars([c for c in ds.coords if c not in ("y", "x", "spatial_ref")])
+    # models first and one chunk: each block is used as read (see envelope.projection.map_cells)
+    stack = suitability.transpose("model", "y", "x")
+    mean, sd, count, consensus = map_cells(_ensemble_block, stack, dtypes=(np.float32, np.float32, np.uint8, np.uint8),
+                                           batch_cells=KERNEL_CELLS, threshold=float(threshold), needed=needed,
+                                           ddof=int(ddof))
+    # each statistic keeps the layers' attributes, as xarray.apply_ufunc did before
+    ds = xr.Dataset({name: layer.assign_attrs(suitability.attrs) for name, layer in
+                     zip(ENSEMBLE_STATISTICS, (mean, sd, count, consensus))})
     ds.attrs = {"n_models": n, "threshold": float(threshold), "agreement": float(agreement),
                 "consensus_min_models": needed, "sd_ddof": int(ddof)}
     crs = suitability.rio.crs

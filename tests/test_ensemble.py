@@ -40,6 +40,61 @@ def test_ensemble_against_numpy(chunked):
     assert ds.attrs["consensus_min_models"] == 2 and ds.rio.crs.to_epsg() == 4326
 
 
+def _numpy_statistics(S, threshold, needed, ddof):
+    """mean, SD, count, consensus in plain NumPy on a cell-major float64 copy (y, x, model),
+    the layout xarray.apply_ufunc hands a kernel; 255 where any model is NaN."""
+    cells = np.ascontiguousarray(np.moveaxis(S, 0, -1), dtype=np.float64)
+    valid = np.isfinite(cells).all(axis=-1)
+    count = (cells >= threshold).sum(axis=-1)
+    with np.errstate(invalid="ignore"):
+        return (cells.mean(axis=-1).astype(np.float32), cells.std(axis=-1, ddof=ddof).astype(np.float32),
+                np.where(valid, count, 255).astype(np.uint8), np.where(valid, count >= needed, 255).astype(np.uint8))
+
+
+@pytest.mark.parametrize("models", [2, 6, 9])
+@pytest.mark.parametrize("chunks", [None, {"model": 1, "y": 16, "x": 50}, {"y": 150, "x": 7}])
+def test_ensemble_bit_identical_to_numpy(models, chunks):
+    # Source: numpy mean / std(ddof) / sum of (S >= t) along a contiguous model axis, as the
+    # former apply_ufunc path computed them: every bit the same, in memory or dask-backed,
+    # whatever the chunks. 150 x 130 cells are more than envelope.projection.KERNEL_CELLS,
+    # so a block is computed in two runs of cells; 9 models reach NumPy's 8-way sums.
+    rng = np.random.default_rng(models)
+    S = rng.uniform(size=(models, 150, 130)).astype(np.float32)
+    S[:, :4, :4] = 0.5                                   # exactly at the threshold
+    S[0, rng.random((150, 130)) < 0.01] = np.nan
+    S[-1, rng.random((150, 130)) < 0.005] = np.inf
+    da = _stack(S) if chunks is None else _stack(S).chunk(chunks)
+    ds = ensemble_statistics(da, 0.5, agreement=2 / 3, ddof=1)
+    expected = _numpy_statistics(S, 0.5, consensus_count(models, 2 / 3), 1)
+    for name, want in zip(("mean", "sd", "count", "consensus"), expected):
+        got = ds[name].values
+        assert got.dtype == want.dtype, name
+        np.testing.assert_array_equal(got.view(f"u{got.dtype.itemsize}"), want.view(f"u{want.dtype.itemsize}"), name)
+    assert (ds["count"].values == 255).any() and np.isnan(ds["mean"].values).any()
+
+
+def test_ensemble_is_lazy_and_computes_each_block_once():
+    # Common practice, no source (xarray habit: lazy wrappers stay lazy); all four
+    # statistics of one block come from one kernel call.
+    import dask
+    from unittest import mock
+
+    import envelope.ensemble as ensemble_module
+
+    S = np.random.default_rng(1).uniform(size=(3, 20, 30)).astype(np.float32)
+    ds = ensemble_statistics(_stack(S).chunk({"model": 1, "y": 10, "x": 15}), 0.5)
+    assert all(isinstance(ds[k].data, dask.array.Array) for k in ds)
+    with mock.patch.object(ensemble_module, "_ensemble_block", wraps=ensemble_module._ensemble_block) as kernel:
+        ds = ensemble_statistics(_stack(S).chunk({"model": 1, "y": 10, "x": 15}), 0.5)
+        dask.compute(*[ds[k].data for k in ds])
+    assert kernel.call_count == 4  # 2 x 2 blocks
+
+
+def test_ensemble_needs_model_y_x():
+    with pytest.raises(InputError, match=r"suitability: dims \('y', 'x'\); expected \(model, y, x\)"):
+        ensemble_statistics(_stack(np.zeros((1, 2, 3))).isel(model=0), 0.5)
+
+
 def test_ensemble_hand_values():
     # Common practice, no source: worked by hand; threshold uses >=
     S = np.array([[[0.2, 0.5]], [[0.4, 0.9]], [[0.6, 0.1]]])  # 3 models, 1 x 2 cells

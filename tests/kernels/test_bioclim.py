@@ -30,7 +30,7 @@ NAMES = list(variable_names(5.0))
 
 
 def _col(out, name):
-    return out[..., NAMES.index(name)]
+    return out[NAMES.index(name)]
 
 
 @pytest.mark.parametrize("wrap", [True, False])
@@ -87,13 +87,13 @@ def _slow_reference(tmin, tmax, prec, *, wrap, ddof, cv_plus_one, gdd_base):
 def test_matches_slow_reference_on_random_cells(wrap, ddof, cv_plus_one):
     # Source: REFERENCES item 5 definitions, written out as loops with statistics.pstdev/stdev.
     rng = np.random.default_rng(3)
-    tmin = rng.normal(0, 8, size=(7, 12))
-    tmax = tmin + rng.uniform(1, 15, size=(7, 12))
-    prec = rng.gamma(2.0, 30.0, size=(7, 12))
+    tmin = rng.normal(0, 8, size=(12, 7))  # months first, 7 cells
+    tmax = tmin + rng.uniform(1, 15, size=(12, 7))
+    prec = rng.gamma(2.0, 30.0, size=(12, 7))
     fast = bioclim_kernel(tmin, tmax, prec, wrap=wrap, ddof=ddof, cv_plus_one=cv_plus_one, gdd_base=5.0)
     slow = np.array([_slow_reference(a, b, c, wrap=wrap, ddof=ddof, cv_plus_one=cv_plus_one, gdd_base=5.0)
-                     for a, b, c in zip(tmin.tolist(), tmax.tolist(), prec.tolist())])
-    np.testing.assert_allclose(fast, slow, rtol=1e-12, atol=1e-9)
+                     for a, b, c in zip(tmin.T.tolist(), tmax.T.tolist(), prec.T.tolist())])
+    np.testing.assert_allclose(fast, slow.T, rtol=1e-12, atol=1e-9)
 
 
 def test_southern_hemisphere_series_picks_the_shifted_quarters():
@@ -134,11 +134,11 @@ def test_tmean_input_replaces_the_midrange():
 
 def test_nan_month_blanks_only_that_cell():
     # Common practice, no source: a partial year gives no bioclim values.
-    tmin = np.stack([TMIN, TMIN])
-    tmin[1, 4] = np.nan
-    out = bioclim_kernel(tmin, np.stack([TMAX, TMAX]), np.stack([PREC, PREC]))
-    assert np.isnan(out[1]).all()
-    assert _col(out[0], "BIO1") == pytest.approx(6.166667, abs=1e-6)
+    tmin = np.stack([TMIN, TMIN], axis=1)  # (month, cell)
+    tmin[4, 1] = np.nan
+    out = bioclim_kernel(tmin, np.stack([TMAX, TMAX], axis=1), np.stack([PREC, PREC], axis=1))
+    assert np.isnan(out[:, 1]).all()
+    assert _col(out[:, 0], "BIO1") == pytest.approx(6.166667, abs=1e-6)
 
 
 def test_undefined_ratios_are_nan_and_ties_pick_the_earliest_quarter():
@@ -157,10 +157,11 @@ def test_undefined_ratios_are_nan_and_ties_pick_the_earliest_quarter():
 
 def test_leading_dimensions_are_kept():
     rng = np.random.default_rng(0)
-    tmin = rng.normal(size=(3, 4, 12))
+    tmin = rng.normal(size=(12, 3, 4))  # (month, y, x) as a grid block is read
     out = bioclim_kernel(tmin, tmin + 5, np.abs(tmin) * 10)
-    assert out.shape == (3, 4, 20)
-    np.testing.assert_allclose(out[2, 1], bioclim_kernel(tmin[2, 1], tmin[2, 1] + 5, np.abs(tmin[2, 1]) * 10))
+    assert out.shape == (20, 3, 4)
+    cell = tmin[:, 2, 1]
+    np.testing.assert_array_equal(out[:, 2, 1], bioclim_kernel(cell, cell + 5, np.abs(cell) * 10))
 
 
 def test_bad_input_is_named():
@@ -169,4 +170,6 @@ def test_bad_input_is_named():
     with pytest.raises(InputError, match="ddof must be 0 or 1"):
         bioclim_kernel(TMIN, TMAX, PREC, ddof=2)
     with pytest.raises(InputError, match="differ in shape"):
+        bioclim_kernel(np.stack([TMIN, TMIN], axis=1), TMAX, PREC)
+    with pytest.raises(InputError, match="tmin: expected 12 months on the first axis"):
         bioclim_kernel(np.stack([TMIN, TMIN]), TMAX, PREC)
