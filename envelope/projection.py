@@ -76,8 +76,10 @@ def map_cells(function, stack: xr.DataArray, *, bands=None, **kwargs) -> xr.Data
     if isinstance(data, dsa.Array):
         data = data.rechunk({0: -1})
         if bands is None:
-            out = data.map_blocks(function, drop_axis=0, dtype=np.float32, meta=np.empty((0, 0), np.float32),
-                                  **kwargs)
+            # a band axis of length 1, dropped by indexing: map_blocks(drop_axis=0) would first
+            # copy every input block (all its variables) through dask's concatenate
+            out = data.map_blocks(_one_band, function, chunks=((1,),) + data.chunks[1:], dtype=np.float32,
+                                  meta=np.empty((0, 0, 0), np.float32), **kwargs)[0]
         else:
             out = data.map_blocks(function, chunks=((bands,),) + data.chunks[1:], dtype=np.float32,
                                   meta=np.empty((0, 0, 0), np.float32), **kwargs)
@@ -85,6 +87,10 @@ def map_cells(function, stack: xr.DataArray, *, bands=None, **kwargs) -> xr.Data
         out = function(np.asarray(data), **kwargs)
     coords = {"y": stack["y"].values, "x": stack["x"].values}
     return xr.DataArray(out, dims=("y", "x") if bands is None else ("variable", "y", "x"), coords=coords)
+
+
+def _one_band(block, function, **kwargs):
+    return function(block, **kwargs)[None]
 
 
 @functools.cache
