@@ -106,11 +106,14 @@ class VariableSteps:
     number of distinct thresholds at or below ``p``, fixes how many reference values are
     below ``p``: ``e = 0`` at or below the minimum and ``e = q`` above the maximum (the
     extremes), anything between is interior. ``keys`` holds, per code, the interior S as a
-    key (see :class:`MessLookup`), or -1 at the extremes.
+    key (see :class:`MessLookup`), -1 at the extremes, or :data:`CROWDED` in a crowded
+    bucket, whose values take ``event_keys`` (the same keys by event count) after an exact
+    search.
     """
 
     index: StepIndex
     keys: np.ndarray
+    event_keys: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -151,7 +154,8 @@ def _build_lookup(reference: MessReference, dtype: np.dtype) -> MessLookup:
         similarity = np.minimum(two_f, 200.0 - two_f)
         keys = (np.searchsorted(levels, similarity) + 1) * n_vars + i
         keys[[0, q]] = -1  # the extremes: S needs the value itself, not only the count
-        variables.append(VariableSteps(index, index.expand(keys.astype(key_type))))
+        keys = keys.astype(key_type)
+        variables.append(VariableSteps(index, index.expand(keys, CROWDED), keys))
     levels = np.r_[np.nan, levels]
     return MessLookup(tuple(variables), levels, levels.astype(np.float32), n_vars,
                       above(reference.minimum, dtype), above(reference.maximum, dtype))
@@ -260,6 +264,9 @@ def mess(X, reference: MessReference):
     return values, index
 
 
+#: Key of a value in a crowded bucket of its variable's index (searched exactly instead).
+CROWDED = -2
+
 #: Cells evaluated together by :func:`mess_cells`: the scratch rows of one variable stay in
 #: the CPU cache, and numpy's per-call overhead is spread over enough cells (32 768 measured
 #: about 8 % faster than 16 384 and as fast as 65 536, bench/README.md).
@@ -334,10 +341,16 @@ def _mess_pieces(X, reference, values_out, index_out, block_cells, *, nodata_non
         m = stop - start
         b = best[:m]
         b.fill(np.iinfo(key_type).max)
+        k = key[:m]
         for i, var in enumerate(lookup.variables):
-            code = var.index.codes(X[i, start:stop], scratch)
-            np.take(var.keys, code, out=key[:m], mode="wrap")  # in range: "wrap" only avoids a staging copy
-            np.minimum(b, key[:m], out=b)
+            x = X[i, start:stop]
+            code = var.index.codes(x, scratch)
+            np.take(var.keys, code, out=k, mode="wrap")  # in range: "wrap" only avoids a staging copy
+            if var.index.any_crowded:
+                fix = np.flatnonzero(k == CROWDED)
+                if fix.size:
+                    k[fix] = var.event_keys[var.index.exact(x[fix])]
+            np.minimum(b, k, out=b)
         np.divmod(b, n_vars, out=(rank[:m], variable[:m]))
         np.take(levels, rank[:m], out=values_out[start:stop], mode="wrap")  # rank -1: redone below
         np.copyto(index_out[start:stop], variable[:m], casting="unsafe")

@@ -27,11 +27,14 @@ class PercentileTable:
         Per variable, its pivots (``points=True``): every value of the dtype at which the
         variable's score may change.
     scores : tuple of ndarray of float64
-        Per variable, its score for each code of its index.
+        Per variable, its score for each code of its index (-1 in a crowded bucket).
+    event_scores : tuple of ndarray of float64
+        Per variable, its score for each event count (for the values of crowded buckets).
     """
 
     indexes: tuple
     scores: tuple
+    event_scores: tuple
 
     @property
     def dtype(self) -> np.dtype:
@@ -78,7 +81,7 @@ def compile_percentile(variable_score, presence_values, *, lower=None, upper=Non
         raise InputError(f"dtype: {dtype}; expected float32 or float64")
     lo = None if lower is None else np.asarray(lower, dtype=np.float64)
     hi = None if upper is None else np.asarray(upper, dtype=np.float64)
-    indexes, scores = [], []
+    indexes, scores, event_scores = [], [], []
     for j, values in enumerate(presence_values):
         pivots = [at_least(np.ravel(values), dtype)]
         if lo is not None:
@@ -89,11 +92,13 @@ def compile_percentile(variable_score, presence_values, *, lower=None, upper=Non
         x = _representatives(index.pivots).astype(np.float64)
         if lo is not None or hi is not None:
             np.clip(x, None if lo is None else lo[j], None if hi is None else hi[j], out=x)
+        score = np.asarray(variable_score(j, x), dtype=np.float64)
         indexes.append(index)
-        scores.append(index.expand(np.asarray(variable_score(j, x), dtype=np.float64)))
+        scores.append(index.expand(score, -1.0))  # scores are >= 0: -1 marks a crowded bucket
+        event_scores.append(score)
     if not indexes:
         raise InputError("presence_values: no variables; expected one array of values per variable")
-    return PercentileTable(tuple(indexes), tuple(scores))
+    return PercentileTable(tuple(indexes), tuple(scores), tuple(event_scores))
 
 
 def _representatives(pivots: np.ndarray) -> np.ndarray:
@@ -137,6 +142,7 @@ def _envelope_piece(table, X, start, stop, out, scratch, row, score):
     m = stop - start
     best = out[start:stop]
     best.fill(1.0)
+    s = score[:m]
     for j, (index, scores) in enumerate(zip(table.indexes, table.scores)):
         x = X[j, start:stop]
         if row is not None:
@@ -144,6 +150,10 @@ def _envelope_piece(table, X, start, stop, out, scratch, row, score):
             np.copyto(x, X[j, start:stop], casting="unsafe")
         code = index.codes(x, scratch)
         # "wrap": every code is in range; the default mode stages `out` through a copy
-        np.take(scores, code, out=score[:m], mode="wrap")
-        np.minimum(best, score[:m], out=best)
+        np.take(scores, code, out=s, mode="wrap")
+        if index.any_crowded:
+            fix = np.flatnonzero(s < 0)
+            if fix.size:
+                s[fix] = table.event_scores[j][index.exact(x[fix])]
+        np.minimum(best, s, out=best)
     best[~np.isfinite(X[:, start:stop]).all(axis=0)] = np.nan

@@ -206,10 +206,14 @@ def test_bucketed_kernel_equals_previous_implementation(dtype):
         "float32 values": rng.normal(size=(800, 3)).astype(np.float32).astype(np.float64),
         "thinned": rng.gamma(2.0, size=(30_000, 2)),
         "constant variable": np.c_[rng.normal(size=200), np.full(200, 3.0)],
+        "continuous, skewed, an outlier (crowded buckets)": np.c_[rng.normal(size=9000), rng.lognormal(0, 2, 9000),
+                                                                 np.r_[rng.gamma(0.7, size=8999), 1e30]],
         "one row": np.array([[1.0, 2.0]]),
     }
     for name, R in references.items():
-        ref = reference_from_training(R, max_values=1000)
+        ref = reference_from_training(R, max_values=10_000 if "crowded" in name else 1000)
+        if "crowded" in name:
+            assert all(v.index.any_crowded for v in ref.lookup(dtype).variables)
         X = _hostile_cells(R, rng, dtype)
         with np.errstate(invalid="ignore"):
             expected = _previous_mess_cells(X, ref, block_cells=777)

@@ -8,11 +8,15 @@ from envelope.kernels.percentile import compile_percentile, percentile_suitabili
 from envelope.models import PercentileEnvelope
 
 
-def _fit(ties, weights, rng):
-    # presences on a 0.1 lattice (many ties), one variable with few distinct values
-    P = np.c_[rng.normal(0.5, 1.0, 150).round(1), rng.normal(10, 3, 150).round(1), rng.integers(0, 4, 150)]
+def _fit(ties, weights, rng, crowded=False):
+    # presences on a 0.1 lattice (many ties), one variable with few distinct values; or
+    # many continuous presences, one far away (buckets crowd)
+    n = 4000 if crowded else 150
+    P = np.c_[rng.normal(0.5, 1.0, n).round(1), rng.normal(10, 3, n).round(1), rng.integers(0, 4, n)]
+    if crowded:
+        P = np.c_[rng.normal(0.5, 1.0, n), rng.lognormal(0, 2, n), np.r_[rng.normal(size=n - 1), 1e30]]
     B = np.c_[rng.normal(0, 2, 600), rng.normal(9, 5, 600), rng.integers(-2, 7, 600)]
-    X, y = np.r_[P, B], np.r_[np.ones(150), np.zeros(600)]
+    X, y = np.r_[P, B], np.r_[np.ones(n), np.zeros(600)]
     w = rng.uniform(0.2, 3.0, X.shape[0]) if weights else None
     return PercentileEnvelope(ties=ties).fit(X, y, sample_weight=w), X
 
@@ -36,13 +40,15 @@ def _cells(model, X, rng, dtype):
 @pytest.mark.parametrize("weights", [False, True])
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
 @pytest.mark.parametrize("clamp", [True, False])
-def test_table_equals_predict_proba_of_clamped_cells(ties, weights, dtype, clamp):
+@pytest.mark.parametrize("crowded", [False, True])
+def test_table_equals_predict_proba_of_clamped_cells(ties, weights, dtype, clamp, crowded):
     # Source: PercentileEnvelope.predict_proba (the estimator itself) on the cells clipped
     # to the training range in float64, as the projection's generic path does
     rng = np.random.default_rng(5)
-    model, X = _fit(ties, weights, rng)
+    model, X = _fit(ties, weights, rng, crowded)
     lower, upper = (X.min(0), X.max(0)) if clamp else (None, None)
     table = compile_percentile(model.variable_score, model.presence_values_, lower=lower, upper=upper, dtype=dtype)
+    assert any(index.any_crowded for index in table.indexes) == crowded
     cells = _cells(model, X, rng, dtype)
     got = percentile_suitability(table, cells, block_cells=999)
     rows = cells.T.astype(np.float64)
