@@ -26,15 +26,20 @@ class PercentileTable:
     indexes : tuple of :class:`~envelope.kernels.steps.StepIndex`
         Per variable, its pivots (``points=True``): every value of the dtype at which the
         variable's score may change.
-    scores : tuple of ndarray of float64
-        Per variable, its score for each code of its index (-1 in a crowded bucket).
-    event_scores : tuple of ndarray of float64
-        Per variable, its score for each event count (for the values of crowded buckets).
+    levels : ndarray of float64
+        Every score any variable can take, and 1, sorted and distinct.
+    ranks : tuple of ndarray of int16 or int32
+        Per variable, the rank in ``levels`` of its score for each code of its index (-1
+        in a crowded bucket). Ranks order as the scores do, so the minimum is taken over
+        small integers and turned into a score once per cell.
+    event_ranks : tuple of ndarray
+        Per variable, the rank for each event count (for the values of crowded buckets).
     """
 
     indexes: tuple
-    scores: tuple
-    event_scores: tuple
+    levels: np.ndarray
+    ranks: tuple
+    event_ranks: tuple
 
     @property
     def dtype(self) -> np.dtype:
@@ -81,7 +86,7 @@ def compile_percentile(variable_score, presence_values, *, lower=None, upper=Non
         raise InputError(f"dtype: {dtype}; expected float32 or float64")
     lo = None if lower is None else np.asarray(lower, dtype=np.float64)
     hi = None if upper is None else np.asarray(upper, dtype=np.float64)
-    indexes, scores, event_scores = [], [], []
+    indexes, event_scores = [], []
     for j, values in enumerate(presence_values):
         pivots = [at_least(np.ravel(values), dtype)]
         if lo is not None:
@@ -92,13 +97,15 @@ def compile_percentile(variable_score, presence_values, *, lower=None, upper=Non
         x = _representatives(index.pivots).astype(np.float64)
         if lo is not None or hi is not None:
             np.clip(x, None if lo is None else lo[j], None if hi is None else hi[j], out=x)
-        score = np.asarray(variable_score(j, x), dtype=np.float64)
         indexes.append(index)
-        scores.append(index.expand(score, -1.0))  # scores are >= 0: -1 marks a crowded bucket
-        event_scores.append(score)
+        event_scores.append(np.asarray(variable_score(j, x), dtype=np.float64))
     if not indexes:
         raise InputError("presence_values: no variables; expected one array of values per variable")
-    return PercentileTable(tuple(indexes), tuple(scores), tuple(event_scores))
+    levels = np.unique(np.concatenate(event_scores + [np.ones(1)]))
+    rank_type = np.int16 if levels.size < np.iinfo(np.int16).max else np.int32
+    event_ranks = [np.searchsorted(levels, score).astype(rank_type) for score in event_scores]
+    ranks = [index.expand(rank, -1) for index, rank in zip(indexes, event_ranks)]  # -1: a crowded bucket
+    return PercentileTable(tuple(indexes), levels, tuple(ranks), tuple(event_ranks))
 
 
 def _representatives(pivots: np.ndarray) -> np.ndarray:
@@ -117,8 +124,8 @@ def percentile_suitability(table: PercentileTable, X, *, block_cells: int = BLOC
     is NaN or ±inf.
 
     Each variable's row is looked up ``block_cells`` at a time in a few array passes
-    (:meth:`~envelope.kernels.steps.StepIndex.codes`, one gather of the score), and the
-    running minimum over the variables starts from 1, as in the estimator. ``X`` must have
+    (:meth:`~envelope.kernels.steps.StepIndex.codes`, one gather of the score's rank), and
+    the running minimum over the variables starts from 1, as in the estimator. ``X`` must have
     the table's dtype, or any dtype when the table is float64 (converted piece by piece).
     """
     X = np.asarray(X)
@@ -131,29 +138,31 @@ def percentile_suitability(table: PercentileTable, X, *, block_cells: int = BLOC
     out = np.empty(n, dtype=np.float64)
     scratch = Scratch(min(block_cells, max(n, 1)), table.dtype)
     row = np.empty(scratch.width, table.dtype) if convert else None
-    score = np.empty(scratch.width)
+    rank_type = table.ranks[0].dtype
+    rank, best = np.empty(scratch.width, rank_type), np.empty(scratch.width, rank_type)
     with np.errstate(over="ignore"):  # values far outside the pivots overflow harmlessly while bucketed
         for start in range(0, n, block_cells):
-            _envelope_piece(table, X, start, min(start + block_cells, n), out, scratch, row, score)
+            _envelope_piece(table, X, start, min(start + block_cells, n), out, scratch, row, rank, best)
     return out
 
 
-def _envelope_piece(table, X, start, stop, out, scratch, row, score):
+def _envelope_piece(table, X, start, stop, out, scratch, row, rank, best):
     m = stop - start
-    best = out[start:stop]
-    best.fill(1.0)
-    s = score[:m]
-    for j, (index, scores) in enumerate(zip(table.indexes, table.scores)):
+    r, b = rank[:m], best[:m]
+    b.fill(table.levels.size - 1)  # the rank of 1, the estimator's starting value
+    for j, (index, ranks) in enumerate(zip(table.indexes, table.ranks)):
         x = X[j, start:stop]
         if row is not None:
             x = row[:m]
             np.copyto(x, X[j, start:stop], casting="unsafe")
         code = index.codes(x, scratch)
         # "wrap": every code is in range; the default mode stages `out` through a copy
-        np.take(scores, code, out=s, mode="wrap")
+        np.take(ranks, code, out=r, mode="wrap")
         if index.any_crowded:
-            fix = np.flatnonzero(s < 0)
+            fix = np.flatnonzero(r < 0)
             if fix.size:
-                s[fix] = table.event_scores[j][index.exact(x[fix])]
-        np.minimum(best, s, out=best)
-    best[~np.isfinite(X[:, start:stop]).all(axis=0)] = np.nan
+                r[fix] = table.event_ranks[j][index.exact(x[fix])]
+        np.minimum(b, r, out=b)
+    suitability = out[start:stop]
+    np.take(table.levels, b, out=suitability, mode="wrap")
+    suitability[~np.isfinite(X[:, start:stop]).all(axis=0)] = np.nan
