@@ -79,6 +79,11 @@ class MessReference:
                 or maximum.shape != minimum.shape:
             raise InputError(f"mess_reference: values of shape {values.shape[::-1]} (variables, values) "
                              f"and {minimum.size} minima / {maximum.size} maxima do not agree")
+        # the kept values always include the exact extremes (reference_from_training), and
+        # mess relies on it: an extreme S is <= 0, an interior one > 0
+        if not (np.array_equal(minimum, values.min(axis=0)) and np.array_equal(maximum, values.max(axis=0))):
+            raise InputError("mess_reference: 'minimum' and 'maximum' are not the smallest and largest of "
+                             "'values'; expected the reference as written by reference_from_training")
         pct = data.get("percentiles")
         return cls(values=np.sort(values, axis=0), minimum=minimum, maximum=maximum,
                    percentile_levels=tuple(data.get("percentile_levels", PERCENTILE_LEVELS)),
@@ -157,8 +162,9 @@ def _build_lookup(reference: MessReference, dtype: np.dtype) -> MessLookup:
         keys = keys.astype(key_type)
         variables.append(VariableSteps(index, index.expand(keys, CROWDED), keys))
     levels = np.r_[np.nan, levels]
+    # edges as the step index sees them: at or below the smallest kept value, above the largest
     return MessLookup(tuple(variables), levels, levels.astype(np.float32), n_vars,
-                      above(reference.minimum, dtype), above(reference.maximum, dtype))
+                      above(reference.values[0], dtype), above(reference.values[-1], dtype))
 
 
 def reference_from_training(X_ref, *, max_values: int = MAX_REFERENCE_VALUES, cells=None) -> MessReference:

@@ -121,6 +121,8 @@ def test_bad_input():
         reference_from_training(np.full((3, 2), np.nan))
     with pytest.raises(InputError, match="'minimum' is missing"):
         MessReference.from_dict({"values": [[1.0, 2.0]], "maximum": [2.0]})
+    with pytest.raises(InputError, match="not the smallest and largest"):
+        MessReference.from_dict({"values": [[1.0, 2.0]], "minimum": [0.5], "maximum": [2.0]})
 
 
 def _previous_mess_cells(X, reference, block_cells=16384):
