@@ -10,6 +10,7 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.grids import georeferenced_like, match_variables
+from envelope.kernels.percentile import PercentileTable, compile_percentile, percentile_suitability
 from envelope.kernels.predict import (AdditiveTable, compile_pointprocess, predict_cells,
                                       suitability_table)
 
@@ -127,8 +128,10 @@ def map_cells(function, *stacks: xr.DataArray, bands=None, dtypes=None, batch_ce
             out = [together.map_blocks(operator.getitem, i, dtype=dt, meta=np.empty((0, 0), dt))
                    for i, dt in enumerate(dtypes)]
         elif bands is None:
-            out = dsa.map_blocks(function, *datas, drop_axis=0, dtype=np.float32,
-                                 meta=np.empty((0, 0), np.float32), **kwargs)
+            # a band axis of length 1, dropped by indexing: map_blocks(drop_axis=0) would first
+            # copy every input block (all its variables) through dask's concatenate
+            out = dsa.map_blocks(_one_band, *datas, band_kernel=function, chunks=((1,),) + datas[0].chunks[1:],
+                                 dtype=np.float32, meta=np.empty((0, 0, 0), np.float32), **kwargs)[0]
         else:
             out = dsa.map_blocks(function, *datas, chunks=((bands,),) + datas[0].chunks[1:], dtype=np.float32,
                                  meta=np.empty((0, 0, 0), np.float32), **kwargs)
@@ -138,6 +141,10 @@ def map_cells(function, *stacks: xr.DataArray, bands=None, dtypes=None, batch_ce
     if dtypes is not None:
         return [xr.DataArray(o, dims=("y", "x"), coords=coords) for o in out]
     return xr.DataArray(out, dims=("y", "x") if bands is None else ("variable", "y", "x"), coords=coords)
+
+
+def _one_band(*blocks, band_kernel, **kwargs):
+    return band_kernel(*blocks, **kwargs)[None]
 
 
 @functools.cache
@@ -152,7 +159,9 @@ def _suitability_block(block, members, lower, upper):
     X, shape = _as_cells(block)
     total = None
     for weight, table, predict_proba in members:
-        if table is not None:
+        if isinstance(table, PercentileTable):
+            s = percentile_suitability(table, X)  # clamping is compiled into the table
+        elif table is not None:
             # non-finite cells are masked below, so the kernel's own masking is skipped
             s = suitability_table(table, X, lower=lower, upper=upper, mask_unused=False)
         else:
@@ -167,18 +176,39 @@ def _suitability_block(block, members, lower, upper):
     return total.reshape(shape)
 
 
-def _members(estimator) -> list:
-    """``[(weight, table, predict_proba)]``: how to evaluate ``estimator`` on cells.
+def percentile_table(estimator, lower=None, upper=None, dtype=np.float32) -> PercentileTable | None:
+    """The exact fast-path table of a fitted PercentileEnvelope for ``dtype`` inputs,
+    clamping into ``[lower, upper]`` included, else None."""
+    from envelope.models import PercentileEnvelope
 
-    A skill-weighted ensemble is its weighted sum of member suitabilities, so each
-    point-process member still takes the exact table path; weight None = a lone model.
+    if type(estimator) is not PercentileEnvelope:
+        return None
+    return compile_percentile(estimator.variable_score, estimator.presence_values_, lower=lower, upper=upper,
+                              dtype=dtype)
+
+
+def _members(estimator, lower=None, upper=None, dtype=np.float32) -> list:
+    """``[(weight, table, predict_proba)]``: how to evaluate ``estimator`` on cells of ``dtype``.
+
+    ``table`` is a point-process model's :class:`AdditiveTable` or a percentile
+    envelope's :class:`PercentileTable` (clamped into ``[lower, upper]``), else None and
+    ``predict_proba`` is used. A skill-weighted ensemble is its weighted sum of member
+    suitabilities, so each such member still takes its exact table path; weight None =
+    a lone model.
     """
     from envelope.models import SkillWeightedEnsemble
 
+    def table_of(model):
+        table = pointprocess_table(model)
+        return table if table is not None else percentile_table(model, lower, upper, dtype)
+
     if type(estimator) is SkillWeightedEnsemble:
-        return [(float(w), pointprocess_table(m), None if pointprocess_table(m) is not None else m.predict_proba)
-                for w, (_, m) in zip(estimator.weights_, estimator.members_)]
-    table = pointprocess_table(estimator)
+        members = []
+        for w, (_, m) in zip(estimator.weights_, estimator.members_):
+            table = table_of(m)
+            members.append((float(w), table, None if table is not None else m.predict_proba))
+        return members
+    table = table_of(estimator)
     return [(None, table, None if table is not None else _predict_proba_of(estimator))]
 
 
@@ -204,8 +234,9 @@ def project_suitability(estimator, stack: xr.DataArray, variables, training_rang
 
     A PointProcessModel (alone or as a member of a SkillWeightedEnsemble) is evaluated
     with the exact piecewise-quadratic table of :mod:`envelope.kernels.predict` (no
-    feature matrix is built); any other estimator through its own ``predict_proba`` in
-    batches of :data:`CELL_BATCH` cells.
+    feature matrix is built), a PercentileEnvelope with the exact per-variable score
+    tables of :mod:`envelope.kernels.percentile`; any other estimator through its own
+    ``predict_proba`` in batches of :data:`CELL_BATCH` cells.
 
     Parameters
     ----------
@@ -231,20 +262,19 @@ def project_suitability(estimator, stack: xr.DataArray, variables, training_rang
     if clamp:
         lower = np.array([training_range[v][0] for v in variables], dtype=np.float64)
         upper = np.array([training_range[v][1] for v in variables], dtype=np.float64)
-    result = map_cells(_suitability_block, stack, members=_members(estimator), lower=lower, upper=upper)
+    dtype = np.float32 if stack.dtype == np.float32 else np.float64
+    result = map_cells(_suitability_block, stack, members=_members(estimator, lower, upper, dtype), lower=lower,
+                       upper=upper)
     return _layer_like(result, stack, "suitability", {"long_name": "climatic suitability", "units": "1"})
 
 
 def _mess_block(block, reference):
-    from envelope.kernels.mess import mess_cells
+    from envelope.kernels.mess import mess_layers
 
     X, shape = _as_cells(block)
-    values, index = mess_cells(X, reference)
-    out = np.empty((2, X.shape[1]), dtype=np.float32)
-    out[0] = values
-    out[1] = np.where(index >= 0, index, np.nan)
-    out[:, ~np.isfinite(X).all(axis=0)] = np.nan  # ±inf climate is nodata, as for suitability
-    return out.reshape((2,) + shape)
+    # the kernel writes both float32 layers, NaN where a variable is NaN or ±inf (nodata,
+    # as for suitability), with no whole-block temporaries
+    return mess_layers(X, reference).reshape((2,) + shape)
 
 
 def project_mess(stack: xr.DataArray, variables, reference) -> xr.DataArray:
@@ -277,6 +307,7 @@ def project_mess(stack: xr.DataArray, variables, reference) -> xr.DataArray:
         raise InputError(f"mess_reference: {reference.n_variables} variables; the model has "
                          f"{len(variables)} ({', '.join(variables)})")
     stack = match_variables(stack, variables)
+    reference.lookup(np.float32 if stack.dtype == np.float32 else np.float64)  # built once, not per block
     result = map_cells(_mess_block, stack, bands=len(MESS_BANDS), reference=reference)
     result = result.assign_coords(variable=list(MESS_BANDS))
     return _layer_like(result, stack, "mess", {"long_name": "multivariate environmental similarity",
@@ -326,5 +357,6 @@ BINARY_CATEGORIES = {0: "unsuitable", 1: "suitable"}
 BINARY_NODATA = 255
 
 
-__all__ = ["BINARY_CATEGORIES", "BINARY_NODATA", "CELL_BATCH", "KERNEL_CELLS", "MESS_BANDS", "binary_map", "map_cells", "novel_area_sums",
-           "novel_share", "pointprocess_table", "project_mess", "project_suitability", "share_of", "training_range"]
+__all__ = ["BINARY_CATEGORIES", "BINARY_NODATA", "CELL_BATCH", "KERNEL_CELLS", "MESS_BANDS", "binary_map", "map_cells",
+           "novel_area_sums", "novel_share", "percentile_table", "pointprocess_table", "project_mess",
+           "project_suitability", "share_of", "training_range"]

@@ -323,3 +323,84 @@ def test_effort_covariate_model_projects_at_its_reference_effort(tmp_path):
     write_raster(grid, tmp_path / "clim.tif")
     project_file(tmp_path / "effort.envm", tmp_path / "clim.tif", tmp_path / "s.tif")
     np.testing.assert_allclose(open_layer(tmp_path / "s.tif").values.ravel(), want, atol=1e-6)
+
+
+def _percentile_case(seed=7):
+    from envelope.models import PercentileEnvelope
+
+    X, y = _training(seed=seed)
+    X = X.round(1)  # presence values on a lattice: grid cells fall exactly on them
+    w = np.random.default_rng(seed).uniform(0.5, 2.0, y.size)
+    model = PercentileEnvelope().fit(X, y, sample_weight=w)
+    values = np.random.default_rng(seed + 1).normal(0.3, 1.5, (3, 12, 14)).round(1)
+    values[:, 0, :5] = X[y == 1][:5].T  # exactly on presence values
+    values[0, 1, :3] = [X[:, 0].min(), X[:, 0].max(), 50.0]  # on the training bounds and far outside
+    values[1, 2, 2], values[2, 3, 3], values[0, 4, 4] = np.nan, np.inf, -np.inf
+    return model, X, y, _grid(values)
+
+
+@pytest.mark.parametrize("chunked", [False, True])
+def test_percentile_envelope_table_path_equals_estimator(chunked):
+    # Source: PercentileEnvelope.predict_proba on the cells clamped to the training range in float64
+    # (the generic path), equal to the last bit once rounded to the float32 output
+    from envelope.projection import percentile_table
+
+    model, X, _, grid = _percentile_case()
+    stack = grid.chunk({"y": 5, "x": 4}) if chunked else grid
+    bounds = dict(zip(NAMES, zip(X.min(0), X.max(0))))
+    assert percentile_table(model, X.min(0), X.max(0)) is not None
+    got = project_suitability(model, stack, NAMES, bounds).values.ravel()
+    rows = _clamped_rows(grid, X)
+    ok = np.isfinite(grid.values.reshape(3, -1)).all(axis=0)
+    np.testing.assert_array_equal(got[ok], model.predict_proba(rows[ok])[:, 1].astype(np.float32))
+    assert np.isnan(got[~ok]).all() and (~ok).sum() == 3
+    unclamped = project_suitability(model, stack, NAMES, None, clamp=False).values.ravel()
+    raw = grid.values.reshape(3, -1).T.astype(np.float64)
+    np.testing.assert_array_equal(unclamped[ok], model.predict_proba(raw[ok])[:, 1].astype(np.float32))
+
+
+def test_ensemble_with_percentile_member_equals_generic_path(monkeypatch):
+    # Source: the generic path the ensemble took before (each member's predict_proba on the
+    # clamped cells, weighted and summed in float64), bit for bit; and the ensemble's own
+    # predict_proba to float32 precision
+    from envelope.kernels.predict import predict_cells, suitability_table
+    from envelope.models import PercentileEnvelope, SkillWeightedEnsemble
+    from envelope.projection import pointprocess_table
+
+    _, X, y, grid = _percentile_case(seed=9)
+    ens = SkillWeightedEnsemble(members=[("env", PercentileEnvelope(ties="right")),
+                                         ("pp", PointProcessModel(classes=("linear", "quadratic"), C=10.0))],
+                                weights_from={"env": 0.75, "pp": 0.85}).fit(X, y)
+    bounds = dict(zip(NAMES, zip(X.min(0), X.max(0))))
+    import envelope.projection as projection
+
+    calls = []
+    kernel = projection.percentile_suitability
+    monkeypatch.setattr(projection, "percentile_suitability", lambda *a, **k: calls.append(1) or kernel(*a, **k))
+    got = project_suitability(ens, grid.chunk({"x": 5}), NAMES, bounds).values.ravel()
+    assert len(calls) == 3  # the envelope member took its table path, once per chunk
+    cells = grid.values.reshape(3, -1)
+    (w_env, w_pp), ((_, env), (_, pp)) = ens.weights_, ens.members_
+    expected = w_env * predict_cells(env.predict_proba, cells, lower=X.min(0), upper=X.max(0))
+    expected = expected + w_pp * suitability_table(pointprocess_table(pp), cells, lower=X.min(0), upper=X.max(0))
+    ok = np.isfinite(cells).all(axis=0)
+    np.testing.assert_array_equal(got[ok], expected[ok].astype(np.float32))
+    np.testing.assert_allclose(got[ok], ens.predict_proba(_clamped_rows(grid, X)[ok])[:, 1], atol=1e-6)
+    assert np.isnan(got[~ok]).all()
+
+
+@pytest.mark.parametrize("chunks", [None, {"y": 3, "x": 4}])
+def test_infinite_cells_counts_cells_with_an_infinite_variable(chunks):
+    # Source: numpy.isinf on the same values (reference library); NaN is not infinite, and a
+    # chunk that is all NaN or has no ±inf counts 0
+    from envelope.projection import infinite_cells
+
+    values = np.random.default_rng(2).normal(size=(3, 9, 12))
+    values[:, :3, :4] = np.nan
+    values[0, 5, 5] = values[2, 5, 5] = np.inf
+    values[1, 8, 11], values[2, 0, 9] = -np.inf, np.inf
+    grid = _grid(values)
+    stack = grid if chunks is None else grid.chunk(chunks)
+    expected = int(np.isinf(grid.values).any(axis=0).sum())
+    assert expected == 3
+    assert int(np.asarray(infinite_cells(stack).compute() if chunks else infinite_cells(stack))) == expected

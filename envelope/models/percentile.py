@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from sklearn.base import BaseEstimator
+from sklearn.utils.validation import check_is_fitted
 
 from envelope.errors import InputError
 from envelope.models.base import PresenceBackgroundClassifier
@@ -104,12 +105,31 @@ class PercentileEnvelope(PresenceBackgroundClassifier, BaseEstimator):
     def _suitability(self, X):
         s = np.ones(X.shape[0])
         for j in range(X.shape[1]):
-            values, below, at = self.presence_values_[j], self.share_below_[j], self.share_at_[j]
-            idx = np.clip(np.searchsorted(values, X[:, j], side="right") - 1, 0, None)
-            tie_share = 0.5 if self.ties == "mid" else 1.0
-            on_value = values[idx] == X[:, j]
-            F = below[idx] + np.where(on_value, tie_share, 1.0) * at[idx]
-            score = 2.0 * np.minimum(F, 1.0 - F)
-            outside = (X[:, j] < self.lower_[j]) | (X[:, j] > self.upper_[j])
-            s = np.minimum(s, np.where(outside, 0.0, score))
+            s = np.minimum(s, self.variable_score(j, X[:, j]))
         return s
+
+    def variable_score(self, j, x):
+        """Score ``s_j`` of variable ``j`` (0-based, training order) at the values ``x``.
+
+        Suitability is the minimum of these over the variables. The projection tabulates
+        this function (:func:`envelope.kernels.percentile.compile_percentile`), so it is the
+        one definition of the score.
+
+        Parameters
+        ----------
+        j : int
+        x : ndarray of float64, shape (n_samples,)
+
+        Returns
+        -------
+        ndarray of float64, shape (n_samples,)
+        """
+        check_is_fitted(self)
+        values, below, at = self.presence_values_[j], self.share_below_[j], self.share_at_[j]
+        idx = np.clip(np.searchsorted(values, x, side="right") - 1, 0, None)
+        tie_share = 0.5 if self.ties == "mid" else 1.0
+        on_value = values[idx] == x
+        F = below[idx] + np.where(on_value, tie_share, 1.0) * at[idx]
+        score = 2.0 * np.minimum(F, 1.0 - F)
+        outside = (x < self.lower_[j]) | (x > self.upper_[j])
+        return np.where(outside, 0.0, score)

@@ -121,24 +121,112 @@ def test_bad_input():
         reference_from_training(np.full((3, 2), np.nan))
     with pytest.raises(InputError, match="'minimum' is missing"):
         MessReference.from_dict({"values": [[1.0, 2.0]], "maximum": [2.0]})
+    with pytest.raises(InputError, match="not the smallest and largest"):
+        MessReference.from_dict({"values": [[1.0, 2.0]], "minimum": [0.5], "maximum": [2.0]})
 
 
-def test_count_below_equals_searchsorted():
-    # Source: numpy.searchsorted(side="left") on the sorted reference (reference library)
-    from envelope.kernels.mess import count_below
+def _previous_mess_cells(X, reference, block_cells=16384):
+    # The implementation before the bucketed search (envelope 2026-12, kernels/mess.py),
+    # kept verbatim as the reference the new kernel must equal to the last bit.
+    n_ref = reference.values.shape[0]
+    tables = []
+    for i in range(reference.n_variables):
+        unique, first = np.unique(reference.values[:, i], return_index=True)
+        below = np.r_[first, n_ref]
+        two_f = 2.0 * (100.0 * below / n_ref)
+        tables.append((unique, np.r_[unique, np.inf], np.minimum(two_f, 200.0 - two_f),
+                       np.arange(unique.size, dtype=np.float64)))
 
-    rng = np.random.default_rng(8)
-    R = np.sort(np.r_[rng.normal(size=400).round(2), np.full(30, 0.5), [1e-300, -1e-300]])
-    ref = reference_from_training(R[:, None])
-    table = ref.counting_tables[0]
-    uniq = np.unique(R)
-    p = np.r_[rng.normal(scale=2, size=3000), uniq, np.nextafter(uniq, np.inf), np.nextafter(uniq, -np.inf),
-              [np.inf, -np.inf, np.nan, 0.0, uniq[0] - 1e-12]]
-    smooth = np.sort(rng.normal(size=2000))  # neighbouring cells close together, as on a grid
-    for values in (p, smooth, smooth[::-1], p.astype(np.float32)):
-        expected = np.searchsorted(R, values, side="left")
-        expected[np.isnan(values)] = R.size  # NaN sorts last in numpy
-        np.testing.assert_array_equal(count_below(table, values), expected)
+    def position_among(table, p):
+        unique, padded, _, positions = table
+        t = np.interp(p, unique, positions)
+        np.fmin(t, unique.size, out=t)
+        np.ceil(t, out=t)
+        g = t.astype(np.intp)
+        g += padded[g] < p
+        return g
+
+    def extreme(p, below, lo, hi):
+        span = hi - lo
+        if span > 0:
+            s = np.where(below, p - lo, hi - p) * (100.0 / span)
+        else:
+            s = np.where(p == lo, 0.0, -100.0)
+        s[np.isnan(p)] = np.nan
+        return s
+
+    n = X.shape[1]
+    best_all = np.empty(n)
+    index_all = np.zeros(n, dtype=np.int64)
+    for start in range(0, n, block_cells):
+        stop = min(start + block_cells, n)
+        best = best_all[start:stop]
+        best.fill(np.inf)
+        index = index_all[start:stop]
+        for i, table in enumerate(tables):
+            p = X[i, start:stop]
+            g = position_among(table, p)
+            s = table[2][g]
+            g -= 1
+            edge = np.flatnonzero(g.view(np.uintp) >= table[0].size - 1)
+            if edge.size:
+                s[edge] = extreme(p[edge].astype(np.float64), g[edge] < 0,
+                                  float(reference.minimum[i]), float(reference.maximum[i]))
+            lower = s < best
+            np.copyto(index, i, where=lower)
+            np.minimum(best, s, out=best)
+        index[np.isnan(best)] = -1
+    return best_all, index_all
+
+
+def _hostile_cells(R, rng, dtype):
+    """Cells (variables, cells): smooth, on reference values and their float neighbours,
+    at and beyond the extremes, far outside, NaN and ±inf."""
+    n_vars = R.shape[1]
+    on = R[rng.integers(0, R.shape[0], (n_vars, 3000)), np.arange(n_vars)[:, None]].astype(dtype)
+    beside = np.nextafter(on, dtype(np.inf)) if dtype == np.float32 else np.nextafter(on, np.inf)
+    below = np.nextafter(on, dtype(-np.inf))
+    smooth = np.sort(rng.uniform(R.min(0) - 1, R.max(0) + 1, (4000, n_vars)), axis=0).T.astype(dtype)
+    far = rng.normal(scale=20, size=(n_vars, 500)).astype(dtype)
+    extremes = np.repeat(np.c_[R.min(0), R.max(0)].astype(dtype), 50, axis=1)
+    X = np.concatenate([on, beside, below, smooth, far, extremes], axis=1)
+    cols = rng.integers(0, X.shape[1], 30)
+    X[rng.integers(0, n_vars, 10), cols[:10]] = np.nan
+    X[rng.integers(0, n_vars, 10), cols[10:20]] = np.inf
+    X[rng.integers(0, n_vars, 10), cols[20:]] = -np.inf
+    return X
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_bucketed_kernel_equals_previous_implementation(dtype):
+    # Source: the previous implementation (numpy.interp search), copied above as the reference
+    from envelope.kernels.mess import mess_cells, mess_layers
+
+    rng = np.random.default_rng(11)
+    references = {
+        "rounded, with ties": rng.normal(size=(600, 4)).round(1),
+        "float32 values": rng.normal(size=(800, 3)).astype(np.float32).astype(np.float64),
+        "thinned": rng.gamma(2.0, size=(30_000, 2)),
+        "constant variable": np.c_[rng.normal(size=200), np.full(200, 3.0)],
+        "continuous, skewed, an outlier (crowded buckets)": np.c_[rng.normal(size=9000), rng.lognormal(0, 2, 9000),
+                                                                 np.r_[rng.gamma(0.7, size=8999), 1e30]],
+        "one row": np.array([[1.0, 2.0]]),
+    }
+    for name, R in references.items():
+        ref = reference_from_training(R, max_values=10_000 if "crowded" in name else 1000)
+        if "crowded" in name:
+            assert all(v.index.any_crowded for v in ref.lookup(dtype).variables)
+        X = _hostile_cells(R, rng, dtype)
+        with np.errstate(invalid="ignore"):
+            expected = _previous_mess_cells(X, ref, block_cells=777)
+        values, index = mess_cells(X, ref, block_cells=1000)
+        np.testing.assert_array_equal(values, expected[0], err_msg=name)
+        np.testing.assert_array_equal(index, expected[1], err_msg=name)
+        # the raster layers: the same values rounded to float32, NaN for nodata and ±inf
+        layers = mess_layers(X, ref)
+        nodata = ~np.isfinite(X).all(axis=0)
+        np.testing.assert_array_equal(layers[0], np.where(nodata, np.nan, expected[0]).astype(np.float32))
+        np.testing.assert_array_equal(layers[1], np.where(nodata | (expected[1] < 0), np.nan, expected[1]))
 
 
 def test_mess_cells_variable_major_float32():
