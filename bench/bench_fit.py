@@ -155,11 +155,18 @@ def fit_once(method, d, *, with_cv=True):
 
         prefit_members(build_estimator(method, SEED), X, y, folds, groups=folds)
         prefit_s = time.perf_counter() - t2
-    if with_cv:
+    parallel = with_cv and method != "ensemble"
+    if parallel:
+        # as fit_model does: the fold fits and the final fit side by side in worker processes
+        _, cv, estimator = evaluation.cross_validate(lambda: build_estimator(method, SEED), X, y, folds,
+                                                     threshold_rule="max-sss", fit_params=_group_params(method, folds),
+                                                     n_jobs=os.cpu_count() or 1, final_fit=True)
+    elif with_cv:
         _, cv = evaluation.cross_validate(lambda: build_estimator(method, SEED), X, y, folds,
                                           threshold_rule="max-sss", fit_params=_group_params(method, folds))
     t3 = time.perf_counter()
-    estimator = final_fit(method, d, folds)
+    if not parallel:
+        estimator = final_fit(method, d, folds)
     t4 = time.perf_counter()
     out.update(cv_s=(t3 - t2) if with_cv else None, final_fit_s=t4 - t3, prefit_s=prefit_s,
                seconds=out["block_size_s"] + out["folds_s"] + (t3 - t2) + (t4 - t3),

@@ -351,8 +351,47 @@ def _rows(X, idx):
     return X.iloc[idx] if hasattr(X, "iloc") else X[idx]
 
 
+def _fold_fit_args(X, y, n, tr_idx, sample_weight, fit_params) -> tuple:
+    """``(X rows, y rows, fit keyword arguments)`` of the fit on the training rows ``tr_idx``:
+    per-record fit parameters (e.g. the spatial fold ids a model tunes its penalty on) are cut
+    to the training rows, so inner tuning never sees the held-out fold."""
+    kw = {key: (np.asarray(v)[tr_idx] if np.ndim(v) == 1 and len(v) == n else v)
+          for key, v in (fit_params or {}).items()}
+    if sample_weight is not None:
+        kw["sample_weight"] = sample_weight[tr_idx]
+    return _rows(X, tr_idx), y[tr_idx], kw
+
+
+def _fit_alone(estimator, X, y, kw):
+    """One fit in a pool worker, BLAS and OpenMP on one thread (the pool keeps the cores busy)."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1):
+        return estimator.fit(X, y, **kw)
+
+
+def fit_in_parallel(make_estimator, jobs, *, n_jobs=2, progress=None) -> list:
+    """``make_estimator().fit(X, y, **kw)`` for every ``(X, y, kw)`` of ``jobs``, ``n_jobs`` at a
+    time in loky worker processes (one thread each), in order.
+
+    The fits are independent; an estimator whose fit is seeded gives the same model in a
+    worker as in this process (each liblinear solve seeds its own generator, scikit-learn's
+    trees draw from their ``random_state``), so results equal the serial ones (tested).
+    """
+    from joblib import Parallel, delayed
+
+    out = []
+    results = Parallel(n_jobs=max(1, min(n_jobs, len(jobs))), backend="loky", return_as="generator")(
+        delayed(_fit_alone)(make_estimator(), X, y, kw) for X, y, kw in jobs)
+    for i, est in enumerate(results, start=1):
+        out.append(est)
+        if progress is not None:
+            progress(i, len(jobs))
+    return out
+
+
 def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold_rule="max-sss",
-                   fit_params=None, progress=None):
+                   fit_params=None, progress=None, n_jobs=1, final_fit=False, fit_progress=None):
     """Fit on K−1 folds, score on the held-out fold, for each fold; return the table and a summary.
 
     For each fold k a fresh estimator from ``make_estimator()`` is fitted on the other folds
@@ -382,6 +421,15 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
         Extra keyword arguments for ``fit``.
     progress : callable, optional
         Called as ``progress(k)`` after fold ``k`` is scored.
+    n_jobs : int, default=1
+        With 2 or more, the fold fits (and the final fit) run first, that many at a time in
+        worker processes (:func:`fit_in_parallel`); the scores are the same.
+    final_fit : bool, default=False
+        Also fit ``make_estimator()`` on every record (with ``fit_params`` and
+        ``sample_weight``) and return it as a third value: the fit a pipeline makes after
+        the cross-validation, here made together with the fold fits.
+    fit_progress : callable(done, total), optional
+        Called as the parallel fits finish.
 
     Returns
     -------
@@ -395,6 +443,7 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
         ``boyce_mean``, ``boyce_sd``, ``omission_p10_mean``, ``n_folds``, ``threshold_rule``.
         SDs are sample SDs (ddof = 1) across folds; Boyce statistics ignore NaN folds
         (NaN when all folds are NaN).
+    estimator : fitted on every record; only with ``final_fit=True``.
 
     References
     ----------
@@ -424,7 +473,7 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
         raise InputError(f"folds: {labels.size} distinct fold label(s); expected at least 2")
     fit_params = dict(fit_params or {})
 
-    rows = []
+    splits = []
     for k in labels.tolist():
         test = folds == k
         train = ~test
@@ -434,15 +483,20 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
         if empty:
             raise InputError(f"folds: fold {k} leaves {', '.join(empty)} = 0; expected presences and "
                              "background on both sides of every fold (use fewer folds or other blocks)")
-        tr_idx, te_idx = np.flatnonzero(train), np.flatnonzero(test)
-        est = make_estimator()
-        # per-record fit parameters (e.g. the spatial fold ids a model tunes its penalty
-        # on) are cut to the training rows, so inner tuning never sees the held-out fold
-        kw = {key: (np.asarray(v)[tr_idx] if np.ndim(v) == 1 and len(v) == n else v)
-              for key, v in fit_params.items()}
-        if sample_weight is not None:
-            kw["sample_weight"] = sample_weight[tr_idx]
-        est.fit(_rows(X, tr_idx), y[tr_idx], **kw)
+        splits.append((k, counts, np.flatnonzero(train), np.flatnonzero(test)))
+    jobs = [_fold_fit_args(X, y, n, tr_idx, sample_weight, fit_params) for _, _, tr_idx, _ in splits]
+    if final_fit:
+        jobs.append(_fold_fit_args(X, y, n, np.arange(n), sample_weight, fit_params))
+    fitted = fit_in_parallel(make_estimator, jobs, n_jobs=n_jobs, progress=fit_progress) if n_jobs >= 2 else None
+
+    rows = []
+    for i, (k, counts, tr_idx, te_idx) in enumerate(splits):
+        if fitted is not None:
+            est = fitted[i]
+        else:
+            Xt, yt, kw = jobs[i]
+            est = make_estimator()
+            est.fit(Xt, yt, **kw)
         s_train = np.asarray(est.predict_proba(_rows(X, tr_idx)))[:, 1]
         s_test = np.asarray(est.predict_proba(_rows(X, te_idx)))[:, 1]
         tr_p, tr_b = s_train[y[tr_idx] == 1], s_train[y[tr_idx] == 0]
@@ -473,7 +527,12 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
                "kappa_mean": _mean("kappa"), "kappa_sd": _sd("kappa"), "boyce_mean": _mean("boyce"),
                "boyce_sd": _sd("boyce"), "omission_p10_mean": _mean("omission_p10"), "omission_p10_sd": _sd("omission_p10"),
                "n_folds": int(labels.size), "threshold_rule": rows[0]["threshold_rule"]}
-    return per_fold, summary
+    if not final_fit:
+        return per_fold, summary
+    if fitted is not None:
+        return per_fold, summary, fitted[-1]
+    Xa, ya, kw = jobs[-1]
+    return per_fold, summary, make_estimator().fit(Xa, ya, **kw)
 
 
 

@@ -285,3 +285,31 @@ def test_cross_validate_bad_input():
         cross_validate(_WeightSpy, X, y, folds, threshold_rule="best")
     with pytest.raises(InputError, match="outside"):
         cross_validate(_WeightSpy, X, y, folds, threshold_rule=2)
+
+
+@pytest.mark.parametrize("method", ["pointprocess", "brt"])
+def test_parallel_fold_fits_equal_the_serial_ones(method):
+    # The fold fits and the final fit made in two worker processes give exactly the serial
+    # scores and the same final model (every fit is seeded); fold ids reach the model's fit.
+    from envelope.evaluation import cross_validate
+    from envelope.models import BoostedTrees, PointProcessModel
+
+    def make():
+        if method == "pointprocess":
+            return PointProcessModel(C="cv", classes=("linear", "quadratic"), random_state=0)
+        return BoostedTrees(max_iter=30, random_state=0)
+
+    rng = np.random.default_rng(2)
+    X = np.r_[rng.normal(0.7, 0.6, (150, 3)), rng.normal(0, 1, (900, 3))]
+    y = np.r_[np.ones(150, dtype=int), np.zeros(900, dtype=int)]
+    folds = np.r_[np.arange(150) * 4 // 150, np.arange(900) * 4 // 900]
+    w = rng.uniform(0.5, 2.0, y.size)
+    params = {"groups": folds} if method == "pointprocess" else {}
+    serial = cross_validate(make, X, y, folds, sample_weight=w, fit_params=params, final_fit=True)
+    calls = []
+    parallel = cross_validate(make, X, y, folds, sample_weight=w, fit_params=params, final_fit=True, n_jobs=2,
+                              fit_progress=lambda done, total: calls.append((done, total)))
+    pd.testing.assert_frame_equal(serial[0], parallel[0])
+    assert serial[1] == parallel[1]
+    np.testing.assert_array_equal(serial[2].predict_proba(X), parallel[2].predict_proba(X))
+    assert calls[-1] == (5, 5)  # 4 folds + the final fit

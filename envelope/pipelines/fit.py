@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -241,18 +242,20 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         notes.append("--folds 2: the model's own penalty and feature-class CV splits each training half by "
                      + ("spatial block" if opt.cv == "block" else "five random folds"))
     fit_params = {**_group_params(opt.method, inner), **({} if effort is None else {"effort": effort})}
-    if opt.method == "ensemble" and not _in_dask_worker():
+    n_jobs = 1 if _in_dask_worker() else _usable_cores()
+    if opt.method == "ensemble" and n_jobs > 1:
         # the ensemble's nested CV: every member fit it will need, made in parallel first
+        # (the outer fits then find them remembered, so they stay in this process)
         from envelope.models.ensemble import prefit_members
 
-        prefit_members(make(), X, y, folds, sample_weight=sample_weight, groups=inner,
+        prefit_members(make(), X, y, folds, sample_weight=sample_weight, groups=inner, n_jobs=n_jobs,
                        progress=lambda done, total: report("ensemble member fits", done, total))
-    per_fold, cv = evaluation.cross_validate(
+        n_jobs = 1
+    # the fold fits and the final fit are independent: with several cores they run side by side
+    per_fold, cv, estimator = evaluation.cross_validate(
         make, X, y, folds, sample_weight=sample_weight, threshold_rule=opt.threshold_rule,
-        fit_params=fit_params, progress=lambda k: report("cross-validation", k + 1, opt.folds))
-
-    estimator = make()
-    estimator.fit(X, y, sample_weight=sample_weight, **fit_params)
+        fit_params=fit_params, progress=lambda k: report("cross-validation", k + 1, opt.folds),
+        n_jobs=n_jobs, final_fit=True, fit_progress=lambda done, total: report("model fits", done, total))
     report("final fit", 1, 1)
     scores = estimator.predict_proba(X)[:, 1]
     threshold, rule = choose_threshold(opt.threshold_rule, scores[y == 1], scores[y == 0])
@@ -353,6 +356,11 @@ def split_absences(records):
     presences.attrs = dict(records.table.attrs)
     return (dataclasses.replace(records, table=presences),
             records.table.loc[~is_presence].reset_index(drop=True))
+
+
+def _usable_cores() -> int:
+    """The cores this process may run on."""
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
 def _in_dask_worker() -> bool:
