@@ -362,34 +362,6 @@ def _fold_fit_args(X, y, n, tr_idx, sample_weight, fit_params) -> tuple:
     return _rows(X, tr_idx), y[tr_idx], kw
 
 
-def _fit_alone(estimator, X, y, kw):
-    """One fit in a pool worker, BLAS and OpenMP on one thread (the pool keeps the cores busy)."""
-    from threadpoolctl import threadpool_limits
-
-    with threadpool_limits(limits=1):
-        return estimator.fit(X, y, **kw)
-
-
-def fit_in_parallel(make_estimator, jobs, *, n_jobs=2, progress=None) -> list:
-    """``make_estimator().fit(X, y, **kw)`` for every ``(X, y, kw)`` of ``jobs``, ``n_jobs`` at a
-    time in loky worker processes (one thread each), in order.
-
-    The fits are independent; an estimator whose fit is seeded gives the same model in a
-    worker as in this process (each liblinear solve seeds its own generator, scikit-learn's
-    trees draw from their ``random_state``), so results equal the serial ones (tested).
-    """
-    from joblib import Parallel, delayed
-
-    out = []
-    results = Parallel(n_jobs=max(1, min(n_jobs, len(jobs))), backend="loky", return_as="generator")(
-        delayed(_fit_alone)(make_estimator(), X, y, kw) for X, y, kw in jobs)
-    for i, est in enumerate(results, start=1):
-        out.append(est)
-        if progress is not None:
-            progress(i, len(jobs))
-    return out
-
-
 def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold_rule="max-sss",
                    fit_params=None, progress=None, n_jobs=1, final_fit=False, fit_progress=None):
     """Fit on K−1 folds, score on the held-out fold, for each fold; return the table and a summary.
@@ -423,7 +395,7 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
         Called as ``progress(k)`` after fold ``k`` is scored.
     n_jobs : int, default=1
         With 2 or more, the fold fits (and the final fit) run first, that many at a time in
-        worker processes (:func:`fit_in_parallel`); the scores are the same.
+        worker processes (:func:`envelope.models.memory.fit_in_parallel`); the scores are the same.
     final_fit : bool, default=False
         Also fit ``make_estimator()`` on every record (with ``fit_params`` and
         ``sample_weight``) and return it as a third value: the fit a pipeline makes after
@@ -487,7 +459,12 @@ def cross_validate(make_estimator, X, y, folds, *, sample_weight=None, threshold
     jobs = [_fold_fit_args(X, y, n, tr_idx, sample_weight, fit_params) for _, _, tr_idx, _ in splits]
     if final_fit:
         jobs.append(_fold_fit_args(X, y, n, np.arange(n), sample_weight, fit_params))
-    fitted = fit_in_parallel(make_estimator, jobs, n_jobs=n_jobs, progress=fit_progress) if n_jobs >= 2 else None
+    fitted = None
+    if n_jobs >= 2:
+        from envelope.models.memory import fit_in_parallel
+
+        fitted = fit_in_parallel([(make_estimator(), Xt, yt, kw) for Xt, yt, kw in jobs], n_jobs=n_jobs,
+                                 progress=fit_progress)
 
     rows = []
     for i, (k, counts, tr_idx, te_idx) in enumerate(splits):

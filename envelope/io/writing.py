@@ -18,6 +18,7 @@ from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.blocks import WindowWriter
 from envelope.io.overviews import overview_factors, overview_levels, pyramid_vrt
 from envelope.io.rasters import GEOTIFF_SUFFIXES, encode_tag
+from envelope.models.memory import usable_cores
 
 __all__ = ["DEFLATE_LEVEL", "WRITE_CACHE_MB", "RasterOutput", "WindowedRaster", "windowed_raster", "write_raster",
            "write_rasters"]
@@ -240,7 +241,7 @@ def _finish_geotiffs(jobs) -> None:
         return
     from concurrent.futures import ThreadPoolExecutor
 
-    with ThreadPoolExecutor(min(len(jobs), _compress_threads())) as pool:
+    with ThreadPoolExecutor(min(len(jobs), usable_cores())) as pool:
         futures = [pool.submit(_finish_geotiff, *job) for job in jobs]
     for f in futures:
         f.result()  # the first failure is raised once every copy has stopped
@@ -294,11 +295,10 @@ def _stage_task(prep: _Prepared, tmp: Path, stages: contextlib.ExitStack) -> lis
         dst.write(np.asarray(data))
         return []
     tasks = [_store(data, dst, stages)]
-    levels = None
-    if np.issubdtype(values.dtype, np.floating):
-        levels = overview_levels(data, overview_factors(height, width, _block_size(width, height)))
+    factors = overview_factors(height, width, _block_size(width, height))
+    levels = overview_levels(data, factors) if np.issubdtype(values.dtype, np.floating) else None
     prep.overviews = []
-    for f, level in zip(overview_factors(height, width, _block_size(width, height)), levels or ()):
+    for f, level in zip(factors, levels or ()):
         path = stage.with_name(f"{stage.name}.ovr{f}.tif")
         stages.callback(_remove_stage, path)
         transform = values.rio.transform() * values.rio.transform().scale(width / level.shape[2], height / level.shape[1])
@@ -330,13 +330,6 @@ def _remove_stage(stage: Path) -> None:
     stage.unlink(missing_ok=True)
     with contextlib.suppress(FileNotFoundError):
         Path(str(stage) + ".aux.xml").unlink()
-
-
-def _compress_threads() -> int:
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # pragma: no cover - not on Linux
-        return max(1, os.cpu_count() or 1)
 
 
 def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict) -> None:
@@ -374,7 +367,7 @@ def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict) -> None:
                              PREDICTOR="3" if floating else "2", BLOCKSIZE=str(block),
                              OVERVIEWS="FORCE_USE_EXISTING" if levels else "AUTO",
                              RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
-                             NUM_THREADS=str(_compress_threads()))
+                             NUM_THREADS=str(usable_cores()))
     finally:
         if levels:
             Path(source).unlink(missing_ok=True)
@@ -516,6 +509,6 @@ def windowed_raster(path, like: xr.DataArray, *, dtype, nodata, name: str, overw
             rasterio.shutil.copy(stage, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=str(DEFLATE_LEVEL),
                                  PREDICTOR="3" if floating else "2", BLOCKSIZE=str(block), OVERVIEWS="AUTO",
                                  RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
-                                 SPARSE_OK="TRUE", NUM_THREADS=str(_compress_threads()))
+                                 SPARSE_OK="TRUE", NUM_THREADS=str(usable_cores()))
         finally:
             _remove_stage(stage)

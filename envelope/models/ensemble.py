@@ -2,10 +2,7 @@
 
 from __future__ import annotations
 
-import hashlib
-import threading
 import warnings
-from collections import OrderedDict
 
 import numpy as np
 from sklearn.base import BaseEstimator, clone
@@ -13,6 +10,7 @@ from sklearn.model_selection import GroupKFold, StratifiedKFold
 
 from envelope.errors import InputError, ModelError
 from envelope.models.base import PresenceBackgroundClassifier
+from envelope.models.memory import BoundedMemory, content_key, fit_in_parallel, usable_cores
 
 #: Member fits remembered across ensemble fits. A 5-fold nested cross-validation of a
 #: three-member ensemble meets 16 distinct training sets per member (all rows, the 5
@@ -21,8 +19,7 @@ from envelope.models.base import PresenceBackgroundClassifier
 MEMBER_FIT_CACHE_SIZE = 64
 #: Folds of the cross-validation that scores each member (:func:`default_cv_auc`).
 INNER_FOLDS = 5
-_FITS: OrderedDict = OrderedDict()
-_FITS_LOCK = threading.Lock()
+_FITS = BoundedMemory(MEMBER_FIT_CACHE_SIZE)
 
 
 def _fit_key(estimator, X, y, w, groups) -> str | None:
@@ -31,17 +28,9 @@ def _fit_key(estimator, X, y, w, groups) -> str | None:
     params = estimator.get_params(deep=True)
     if any(k.endswith("random_state") and v is None for k, v in params.items()):
         return None
-    h = hashlib.blake2b(digest_size=20)
-    h.update(f"{type(estimator).__module__}.{type(estimator).__qualname__}".encode())
-    h.update(repr(sorted((k, v) for k, v in estimator.get_params(deep=False).items())).encode())
-    for a in (X, y, w, groups):
-        if a is None:
-            h.update(b"none")
-            continue
-        a = np.ascontiguousarray(a)
-        h.update(f"{a.dtype.str}{a.shape}".encode())
-        h.update(a.tobytes())
-    return h.hexdigest()
+    settings = (f"{type(estimator).__module__}.{type(estimator).__qualname__}"
+                + repr(sorted(estimator.get_params(deep=False).items())))
+    return content_key(settings, X, y, w, groups)
 
 
 def _usable_groups(groups):
@@ -63,24 +52,18 @@ def fit_member(estimator, X, y, sample_weight=None, groups=None):
     """
     groups = _usable_groups(groups)
     key = _fit_key(estimator, X, y, sample_weight, groups)
-    if key is not None:
-        with _FITS_LOCK:
-            if key in _FITS:
-                _FITS.move_to_end(key)
-                return _FITS[key]
+    known = None if key is None else _FITS.get(key)
+    if known is not None:
+        return known
     fitted = clone(estimator).fit(X, y, sample_weight=sample_weight, **_groups_for(estimator, groups))
     if key is not None:
-        with _FITS_LOCK:
-            _FITS[key] = fitted
-            while len(_FITS) > MEMBER_FIT_CACHE_SIZE:
-                _FITS.popitem(last=False)
+        _FITS.put(key, fitted)
     return fitted
 
 
 def clear_member_fits() -> None:
     """Forget every remembered member fit (see :func:`fit_member`)."""
-    with _FITS_LOCK:
-        _FITS.clear()
+    _FITS.clear()
 
 
 def _cv_splits(y, groups, n_folds, random_state) -> list:
@@ -120,18 +103,6 @@ def default_cv_auc(estimator, X, y, groups=None, *, n_folds=INNER_FOLDS, random_
     return float(np.mean(scores))
 
 
-def _fit_alone(estimator, X, y, w, groups):
-    """One member fit in a pool worker: one thread for BLAS and OpenMP (the pool already
-    keeps every core busy)."""
-    from threadpoolctl import threadpool_limits
-
-    try:
-        with threadpool_limits(limits=1):
-            return clone(estimator).fit(X, y, sample_weight=w, **_groups_for(estimator, groups))
-    except Exception:  # noqa: BLE001 - the serial code meets the same failure again and reports it
-        return None
-
-
 def prefit_members(ensemble, X, y, folds, *, sample_weight=None, groups=None, n_jobs=None, progress=None) -> int:
     """Fit, in parallel processes, every member fit a cross-validation of ``ensemble`` over
     ``folds`` followed by a fit on all rows will ask for, and remember them (:func:`fit_member`).
@@ -163,10 +134,7 @@ def prefit_members(ensemble, X, y, folds, *, sample_weight=None, groups=None, n_
     """
     if ensemble.weights_from is not None or ensemble.score_func is not None:
         return 0
-    if n_jobs is None:
-        import os
-
-        n_jobs = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    n_jobs = usable_cores() if n_jobs is None else n_jobs
     if n_jobs < 2:
         return 0
     folds = np.asarray(folds)
@@ -184,26 +152,15 @@ def prefit_members(ensemble, X, y, folds, *, sample_weight=None, groups=None, n_
             for train in sets:
                 args = (member, Xt[train], yt[train], wt[train], _usable_groups(gt[train]))
                 key = _fit_key(*args)
-                if key is not None and key not in tasks:
-                    with _FITS_LOCK:
-                        known = key in _FITS
-                    if not known:
-                        tasks[key] = args
+                if key is not None and key not in tasks and key not in _FITS:
+                    tasks[key] = args
     if not tasks:
         return 0
-    from joblib import Parallel, delayed
-
-    results = Parallel(n_jobs=min(n_jobs, len(tasks)), backend="loky", return_as="generator")(
-        delayed(_fit_alone)(*args) for args in tasks.values())
-    for done, (key, est) in enumerate(zip(tasks, results), start=1):
+    # a fit that fails gives None here; the serial code meets the failure again and reports it
+    jobs = [(clone(m), Xs, ys, {"sample_weight": ws, **_groups_for(m, gs)}) for m, Xs, ys, ws, gs in tasks.values()]
+    for key, est in zip(tasks, fit_in_parallel(jobs, n_jobs=n_jobs, progress=progress, tolerate=True)):
         if est is not None:
-            with _FITS_LOCK:
-                _FITS[key] = est
-                _FITS.move_to_end(key)
-                while len(_FITS) > MEMBER_FIT_CACHE_SIZE:
-                    _FITS.popitem(last=False)
-        if progress is not None:
-            progress(done, len(tasks))
+            _FITS.put(key, est)
     return len(tasks)
 
 

@@ -2,21 +2,17 @@
 
 from __future__ import annotations
 
-import hashlib
-import threading
-from collections import OrderedDict
-
 import numpy as np
 from sklearn.metrics import roc_auc_score
 
 from envelope.models.features import FeatureExpander
+from envelope.models.memory import BoundedMemory, content_key
 
 __all__ = ["SOLVE_CACHE_SIZE", "clear_path_cache", "score_paths"]
 
 #: Penalised solves remembered across fits (a few KiB each: one slope vector per entry).
 SOLVE_CACHE_SIZE = 4096
-_SOLVES: OrderedDict = OrderedDict()
-_SOLVES_LOCK = threading.Lock()
+_SOLVES = BoundedMemory(SOLVE_CACHE_SIZE)
 
 #: Parameters that change no single solve, so they stay out of the memory key.
 _KEY_FREE = ("classes", "C", "Cs", "n_folds", "path_patience")
@@ -30,14 +26,8 @@ def _training_key(model, X, y, w, log_effort) -> str | None:
     """
     if model.random_state is None:
         return None
-    h = hashlib.blake2b(digest_size=20)
-    for a in (X, y, w) + (() if log_effort is None else (log_effort,)):
-        a = np.ascontiguousarray(a)
-        h.update(f"{a.dtype.str}{a.shape}".encode())
-        h.update(a.tobytes())
     params = {k: v for k, v in model.get_params(deep=False).items() if k not in _KEY_FREE}
-    h.update(repr(sorted(params.items())).encode())
-    return h.hexdigest()
+    return content_key(repr(sorted(params.items())), X, y, w, log_effort)
 
 
 class _Fold:
@@ -58,20 +48,15 @@ class _Fold:
     def solve(self, C: float):
         """``(coef, intercept, effort_coef)`` at ``C``, from memory when this fold was solved before."""
         key = None if self.key is None else (self.key, tuple(self.classes), float(C))
-        if key is not None:
-            with _SOLVES_LOCK:
-                if key in _SOLVES:
-                    _SOLVES.move_to_end(key)
-                    return _SOLVES[key]
+        known = None if key is None else _SOLVES.get(key)
+        if known is not None:
+            return known
         coef, intercept, _, effort_coef = self.model._solve_with_effort(
             self.F, self.y_train, self.w_train, self.weights, self.n_presence, float(C), self.log_effort_train,
             tol=self.model.cv_tol)
         fit = (coef, intercept, effort_coef)
         if key is not None:
-            with _SOLVES_LOCK:
-                _SOLVES[key] = fit
-                while len(_SOLVES) > SOLVE_CACHE_SIZE:
-                    _SOLVES.popitem(last=False)
+            _SOLVES.put(key, fit)
         return fit
 
     def score(self, C: float) -> float:
@@ -143,5 +128,4 @@ def score_paths(model, X, y, w, splits, sets, Cs, log_effort=None):
 
 def clear_path_cache() -> None:
     """Forget every remembered tuning solve (see :func:`score_paths`)."""
-    with _SOLVES_LOCK:
-        _SOLVES.clear()
+    _SOLVES.clear()

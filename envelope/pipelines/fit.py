@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import logging
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -242,7 +241,9 @@ def fit_model(records_path, climate, *, options: FitOptions = None, bias=None, m
         notes.append("--folds 2: the model's own penalty and feature-class CV splits each training half by "
                      + ("spatial block" if opt.cv == "block" else "five random folds"))
     fit_params = {**_group_params(opt.method, inner), **({} if effort is None else {"effort": effort})}
-    n_jobs = 1 if _in_dask_worker() else _usable_cores()
+    from envelope.models.memory import usable_cores
+
+    n_jobs = 1 if _in_dask_worker() else usable_cores()
     if opt.method == "ensemble" and n_jobs > 1:
         # the ensemble's nested CV: every member fit it will need, made in parallel first
         # (the outer fits then find them remembered, so they stay in this process)
@@ -356,11 +357,6 @@ def split_absences(records):
     presences.attrs = dict(records.table.attrs)
     return (dataclasses.replace(records, table=presences),
             records.table.loc[~is_presence].reset_index(drop=True))
-
-
-def _usable_cores() -> int:
-    """The cores this process may run on."""
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
 def _in_dask_worker() -> bool:

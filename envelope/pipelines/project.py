@@ -152,10 +152,11 @@ def open_model_climate(climate, variables, *, chunks=None, source=None, model_fi
     climate = [climate] if isinstance(climate, (str, os.PathLike)) else list(climate)
     source = source or ", ".join(map(str, climate))
     spec = {"band": -1, **(PROJECT_CHUNKS if chunks is None else chunks)}
-    names = [str(v) for v in open_climate(climate, chunks=spec)["variable"].values]  # names only, no reading
+    everything = open_climate(climate, chunks=spec)  # names only, no reading
+    names = [str(v) for v in everything["variable"].values]
     layer = _held_autocovariate(metadata, model_file, variables, names, source)
     wanted = [v for v in variables if layer is None or v != str(layer.name)]
-    match_variables(open_climate(climate, chunks=spec), wanted, source=source)
+    match_variables(everything, wanted, source=source)
     stack = open_climate(climate, variables=wanted, chunks=spec)
     if layer is None:
         return stack
