@@ -9,7 +9,14 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.kernels.rowwise import sum_rows
-from envelope.projection import KERNEL_CELLS, map_cells
+from envelope.projection import map_cells
+
+# Cells per call of the statistics kernel inside one dask block. Alone, runs of 16 384 were
+# fastest (KERNEL_CELLS); but two dask threads run two blocks at once, and with short runs
+# they wait on each other for Python's GIL between NumPy calls: bench/bench_pieces.py
+# measured two 6-model blocks of 512 x 1024 cells on two threads in 39.7 ms in runs of
+# 16 384 and 20.6 ms in runs of 65 536 (one block alone: 12.2 and 12.5 ms).
+ENSEMBLE_CELLS = 65_536
 
 __all__ = ["CONSENSUS_CATEGORIES", "COUNT_NODATA", "DEFAULT_AGREEMENT", "ENSEMBLE_STATISTICS", "consensus_count",
            "ensemble_statistics"]
@@ -87,7 +94,7 @@ def ensemble_statistics(suitability: xr.DataArray, threshold: float, *,
     # models first and one chunk: each block is used as read (see envelope.projection.map_cells)
     stack = suitability.transpose("model", "y", "x")
     mean, sd, count, consensus = map_cells(_ensemble_block, stack, dtypes=(np.float32, np.float32, np.uint8, np.uint8),
-                                           batch_cells=KERNEL_CELLS, threshold=float(threshold), needed=needed,
+                                           batch_cells=ENSEMBLE_CELLS, threshold=float(threshold), needed=needed,
                                            ddof=int(ddof))
     # each statistic keeps the layers' attributes, as xarray.apply_ufunc did before
     ds = xr.Dataset({name: layer.assign_attrs(suitability.attrs) for name, layer in

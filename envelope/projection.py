@@ -122,10 +122,12 @@ def map_cells(function, *stacks: xr.DataArray, bands=None, dtypes=None, batch_ce
         _, datas = unify_chunks(*(x for i, d in enumerate(datas) for x in (d, (f"lead{i}", "y", "x"))))
         if dtypes is not None:
             # dask's own apply_gufunc pattern: one task per block returns the tuple, and
-            # each output takes its item from it
-            together = dsa.map_blocks(function, *datas, drop_axis=0, dtype=object,
-                                      meta=np.empty((0, 0), object), **kwargs)
-            out = [together.map_blocks(operator.getitem, i, dtype=dt, meta=np.empty((0, 0), dt))
+            # each output takes its item from it (a band axis of length 1 again, dropped by
+            # indexing, for the reason below)
+            one = ((1,),) + datas[0].chunks[1:]
+            together = dsa.map_blocks(_one_band_each, *datas, band_kernel=function, chunks=one, dtype=object,
+                                      meta=np.empty((0, 0, 0), object), **kwargs)
+            out = [together.map_blocks(operator.getitem, i, chunks=one, dtype=dt, meta=np.empty((0, 0, 0), dt))[0]
                    for i, dt in enumerate(dtypes)]
         elif bands is None:
             # a band axis of length 1, dropped by indexing: map_blocks(drop_axis=0) would first
@@ -147,6 +149,10 @@ def _one_band(*blocks, band_kernel, **kwargs):
     return band_kernel(*blocks, **kwargs)[None]
 
 
+def _one_band_each(*blocks, band_kernel, **kwargs):
+    return tuple(b[None] for b in band_kernel(*blocks, **kwargs))
+
+
 @functools.cache
 def _openmp_controller():
     """One threadpoolctl controller (building one scans the loaded libraries)."""
@@ -156,6 +162,12 @@ def _openmp_controller():
 
 
 def _suitability_block(block, members, lower, upper):
+    return _suitability_and_infinite_block(block, members, lower, upper)[0]
+
+
+def _suitability_and_infinite_block(block, members, lower, upper):
+    """Suitability (float32, NaN where a variable is not finite) and a uint8 flag of the cells
+    with a ±inf variable, of one (variable, y, x) block."""
     X, shape = _as_cells(block)
     total = None
     for weight, table, predict_proba in members:
@@ -172,8 +184,28 @@ def _suitability_block(block, members, lower, upper):
         total = s if weight is None else (weight * s if total is None else total + weight * s)
     total = total.astype(np.float32)
     # clamping would turn ±inf into the training bounds: a non-finite climate value is nodata
-    total[~np.isfinite(X).all(axis=0)] = np.nan
-    return total.reshape(shape)
+    missing, infinite = nonfinite_cells(X)
+    total[missing] = np.nan
+    flags = np.zeros(total.size, np.uint8)
+    flags[infinite] = 1
+    return total.reshape(shape), flags.reshape(shape)
+
+
+def nonfinite_cells(X) -> tuple:
+    """Indices of the cells (columns of ``X``, shape (variables, cells)) with a NaN or ±inf
+    variable, and of those with a ±inf variable.
+
+    One sum over the variables finds the suspects (NaN and ±inf propagate through it; a
+    sum that overflows is only a suspect), and only they are checked one by one: a single
+    pass over ``X`` where ``isfinite(X).all(axis=0)`` takes two and a (variables, cells) mask.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        probe = X.sum(axis=0)
+    suspects = np.flatnonzero(~np.isfinite(probe))
+    if not suspects.size:
+        return suspects, suspects
+    cells = X[:, suspects]
+    return (suspects[~np.isfinite(cells).all(axis=0)], suspects[np.isinf(cells).any(axis=0)])
 
 
 def percentile_table(estimator, lower=None, upper=None, dtype=np.float32) -> PercentileTable | None:
@@ -229,7 +261,8 @@ def _predict_proba_of(estimator):
     return lambda X: estimator.predict_proba(pd.DataFrame(X, columns=cols))
 
 
-def project_suitability(estimator, stack: xr.DataArray, variables, training_range, *, clamp=True) -> xr.DataArray:
+def project_suitability(estimator, stack: xr.DataArray, variables, training_range, *, clamp=True,
+                        count_infinite=False):
     """Suitability (0–1, float32, NaN off the valid area) of ``stack`` under ``estimator``.
 
     A PointProcessModel (alone or as a member of a SkillWeightedEnsemble) is evaluated
@@ -247,10 +280,15 @@ def project_suitability(estimator, stack: xr.DataArray, variables, training_rang
         (the default), so the model is not asked to extrapolate its response curves
         beyond the training data (Elith, Kearney & Phillips 2010 discuss the choice).
     clamp : bool, default=True
+    count_infinite : bool, default=False
+        Also return the number of cells with a ±inf variable (nodata in the suitability),
+        counted by the same tasks (lazy like the layer; :func:`infinite_cells` counts it
+        in a pass of its own).
 
     Returns
     -------
-    DataArray (y, x), lazy when ``stack`` is dask-backed, CRS kept.
+    DataArray (y, x), lazy when ``stack`` is dask-backed, CRS kept; with
+    ``count_infinite``, ``(layer, count)``.
 
     References
     ----------
@@ -263,9 +301,15 @@ def project_suitability(estimator, stack: xr.DataArray, variables, training_rang
         lower = np.array([training_range[v][0] for v in variables], dtype=np.float64)
         upper = np.array([training_range[v][1] for v in variables], dtype=np.float64)
     dtype = np.float32 if stack.dtype == np.float32 else np.float64
-    result = map_cells(_suitability_block, stack, members=_members(estimator, lower, upper, dtype), lower=lower,
-                       upper=upper)
-    return _layer_like(result, stack, "suitability", {"long_name": "climatic suitability", "units": "1"})
+    members = _members(estimator, lower, upper, dtype)
+    if count_infinite:
+        result, flags = map_cells(_suitability_and_infinite_block, stack, dtypes=(np.float32, np.uint8),
+                                  members=members, lower=lower, upper=upper)
+        count = flags.sum(dtype=np.int64).data
+    else:
+        result = map_cells(_suitability_block, stack, members=members, lower=lower, upper=upper)
+    layer = _layer_like(result, stack, "suitability", {"long_name": "climatic suitability", "units": "1"})
+    return (layer, count) if count_infinite else layer
 
 
 def _mess_block(block, reference):
@@ -358,5 +402,5 @@ BINARY_NODATA = 255
 
 
 __all__ = ["BINARY_CATEGORIES", "BINARY_NODATA", "CELL_BATCH", "KERNEL_CELLS", "MESS_BANDS", "binary_map", "map_cells",
-           "novel_area_sums", "novel_share", "percentile_table", "pointprocess_table", "project_mess",
+           "nonfinite_cells", "novel_area_sums", "novel_share", "percentile_table", "pointprocess_table", "project_mess",
            "project_suitability", "share_of", "training_range"]

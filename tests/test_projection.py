@@ -201,6 +201,15 @@ def test_project_file_tags_round_trip(files, suffix):
     np.testing.assert_array_equal(b.ravel()[ok], (s.ravel()[ok] >= 0.25).astype(b.dtype))
     assert read_tags(binary)["categories"] in ({"0": "unsuitable", "1": "suitable"}, {0: "unsuitable", 1: "suitable"})
     assert read_tags(mess_out)["categories"] in ({"0": "t", "1": "p", "2": "q"}, {0: "t", 1: "p", 2: "q"})
+    if suffix == ".tif":
+        import rasterio
+
+        # Source: GDAL's IMAGE_STRUCTURE metadata: suitability with the floating-point
+        # predictor, the MESS raster (plateaus of levels and an index) with none
+        with rasterio.open(out) as a, rasterio.open(mess_out) as m:
+            assert a.tags(ns="IMAGE_STRUCTURE").get("PREDICTOR") == "3"
+            assert m.tags(ns="IMAGE_STRUCTURE").get("PREDICTOR") is None
+            assert m.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") == "COG"
 
 
 def test_no_clamp_changes_extrapolation(files):
@@ -404,3 +413,44 @@ def test_infinite_cells_counts_cells_with_an_infinite_variable(chunks):
     expected = int(np.isinf(grid.values).any(axis=0).sum())
     assert expected == 3
     assert int(np.asarray(infinite_cells(stack).compute() if chunks else infinite_cells(stack))) == expected
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_nonfinite_cells_match_numpy_isfinite_and_isinf(dtype):
+    # Source: numpy.isfinite / numpy.isinf on the same columns (reference library). Includes
+    # +inf and -inf in one cell (their sum is NaN), NaN beside inf, and finite values whose
+    # sum overflows the dtype (a suspect of the one-sum probe that must not be reported)
+    from envelope.projection import nonfinite_cells
+
+    big = np.finfo(dtype).max
+    X = np.random.default_rng(5).normal(size=(4, 50)).astype(dtype)
+    X[0, 3] = np.nan
+    X[1, 7], X[2, 7] = np.inf, -np.inf
+    X[3, 11], X[0, 11] = np.nan, np.inf
+    X[:, 20] = big  # finite, the sum overflows
+    X[2, 33] = -np.inf
+    missing, infinite = nonfinite_cells(X)
+    np.testing.assert_array_equal(missing, np.flatnonzero(~np.isfinite(X).all(axis=0)))
+    np.testing.assert_array_equal(infinite, np.flatnonzero(np.isinf(X).any(axis=0)))
+    assert list(missing) == [3, 7, 11, 33] and list(infinite) == [7, 11, 33]
+
+
+@pytest.mark.parametrize("chunks", [None, {"y": 3, "x": 4}])
+def test_suitability_counts_infinite_cells_in_the_same_tasks(chunks):
+    # Source: numpy.isinf on the same values (reference library), and the layer equals the one
+    # project_suitability gives without the count
+    from envelope.models import PercentileEnvelope
+
+    values = np.random.default_rng(2).normal(size=(2, 9, 12))
+    values[:, :3, :4] = np.nan
+    values[0, 5, 5] = np.inf
+    values[1, 8, 11] = -np.inf
+    grid = _grid(values, names=["t", "p"])
+    X = np.random.default_rng(3).normal(size=(60, 2))
+    model = PercentileEnvelope().fit(X, np.r_[np.ones(30), np.zeros(30)])
+    stack = grid if chunks is None else grid.chunk(chunks)
+    layer, count = project_suitability(model, stack, ["t", "p"], None, clamp=False, count_infinite=True)
+    assert int(np.asarray(count.compute() if chunks else count)) == int(np.isinf(values).any(axis=0).sum()) == 2
+    alone = project_suitability(model, stack, ["t", "p"], None, clamp=False)
+    np.testing.assert_array_equal(np.asarray(layer.values), np.asarray(alone.values))
+    assert np.isnan(layer.values[5, 5]) and np.isnan(layer.values[8, 11])

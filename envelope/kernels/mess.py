@@ -273,10 +273,12 @@ def mess(X, reference: MessReference):
 #: Key of a value in a crowded bucket of its variable's index (searched exactly instead).
 CROWDED = -2
 
-#: Cells evaluated together by :func:`mess_cells`: the scratch rows of one variable stay in
-#: the CPU cache, and numpy's per-call overhead is spread over enough cells (32 768 measured
-#: about 8 % faster than 16 384 and as fast as 65 536, bench/README.md).
-BLOCK_CELLS = 32768
+#: Cells evaluated together by :func:`mess_cells`: numpy's per-call overhead is spread over
+#: enough cells, and two dask threads running two blocks do not spend their time waiting on
+#: each other for Python's GIL between the many short NumPy calls: bench/bench_pieces.py
+#: measured two 19 x 512 x 1024 windows on two threads in 177-187 ms in pieces of 16 384,
+#: 116 ms in 32 768 and 65-68 ms in 131 072 (one window alone: 57-73, 60 and 34-50 ms).
+BLOCK_CELLS = 131072
 
 
 def mess_cells(X, reference: MessReference, *, block_cells: int = BLOCK_CELLS):

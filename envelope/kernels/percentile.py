@@ -11,10 +11,12 @@ from envelope.kernels.steps import Scratch, above, at_least, step_index
 
 __all__ = ["BLOCK_CELLS", "PercentileTable", "compile_percentile", "percentile_suitability"]
 
-#: Cells evaluated together: a few scratch rows of this length per variable stay in the CPU
-#: cache, and numpy's per-call overhead is spread over enough cells (32 768 measured
-#: faster than 16 384 and no slower than 65 536, bench/README.md).
-BLOCK_CELLS = 32768
+#: Cells evaluated together: numpy's per-call overhead is spread over enough cells, and two
+#: dask threads running two blocks do not wait on each other for Python's GIL between NumPy
+#: calls: bench/bench_pieces.py measured two 19 x 512 x 1024 windows on two threads in
+#: 227-246 ms in pieces of 16 384, 151 ms in 32 768 and 76-82 ms in 131 072 (one window
+#: alone: 69-92, 76 and 65 ms).
+BLOCK_CELLS = 131072
 
 
 @dataclass(frozen=True)

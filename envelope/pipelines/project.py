@@ -18,8 +18,8 @@ from envelope.io.modelfile import open_model
 from envelope.io.atomic import atomic_outputs, check_distinct, check_writable
 from envelope.io.rasters import open_climate, open_layer
 from envelope.io.tables import SUITABILITY_TABLE_NAME, group_scenarios, read_scenarios, write_suitability_table
-from envelope.io.writing import RasterOutput, write_rasters
-from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, binary_map, infinite_cells, novel_area_sums,
+from envelope.io.writing import PLATEAU_PREDICTOR, RasterOutput, write_rasters
+from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, binary_map, novel_area_sums,
                                  project_mess, project_suitability, share_of, training_range)
 from envelope.provenance import file_sha256
 
@@ -213,12 +213,14 @@ def write_projection(estimator, stack, variables, bounds, metadata, tags, paths,
 
     tags = dict(tags)
     threshold = float(tags["threshold"])
-    suitability = project_suitability(estimator, stack, variables, bounds, clamp=bounds is not None)
-    outputs, also = [], (infinite_cells(stack),)
+    # the cells with a ±inf value are counted by the suitability's own tasks (one pass)
+    suitability, n_infinite = project_suitability(estimator, stack, variables, bounds, clamp=bounds is not None,
+                                                  count_infinite=True)
+    outputs, also = [], (n_infinite,)
     if "mess" in paths:
         mess_da = project_mess(stack, variables, metadata["mess_reference"])
         outputs.append(RasterOutput(mess_da, paths["mess"], tags={**tags, "most_dissimilar_variables": list(variables)},
-                                    categories=dict(enumerate(variables))))
+                                    categories=dict(enumerate(variables)), predictor=PLATEAU_PREDICTOR))
         mess_values = mess_da.sel(variable="mess")
         also += novel_area_sums(mess_values, cell_area_km2(mess_values))
 

@@ -139,3 +139,27 @@ def test_streamed_overviews_match_gdal_average_and_leave_no_files(tmp_path):
         if level == 0:
             with rasterio.open(tmp_path / "gdal.tif", overview_level=0) as ob:
                 np.testing.assert_allclose(got, ob.read(), rtol=1e-6, atol=1e-7, equal_nan=True)
+
+
+@pytest.mark.parametrize("predictor, expected", [(None, "3"), (1, None), (2, "2")])
+def test_predictor_of_a_float_raster(tmp_path, predictor, expected):
+    # Source: GDAL's IMAGE_STRUCTURE metadata of the written file (GDAL omits PREDICTOR when
+    # there is none); the values read back are the same whichever predictor (lossless DEFLATE)
+    stack = make_stack(nx=300, ny=200).chunk({"y": 128, "x": 128})
+    write_rasters([RasterOutput(stack, tmp_path / "p.tif", predictor=predictor)])
+    with rasterio.open(tmp_path / "p.tif") as src:
+        assert src.tags(ns="IMAGE_STRUCTURE").get("PREDICTOR") == expected
+        assert src.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") == "COG"
+        np.testing.assert_array_equal(src.read(), stack.values)
+
+
+@pytest.mark.parametrize("predictor, dtype, message", [(4, None, "predictor 4"),
+                                                      (3, "uint8", "predictor 3 .floating point. for an integer")])
+def test_bad_predictor_refused(tmp_path, predictor, dtype, message):
+    from envelope.errors import InputError
+
+    # Source: the TIFF 6.0 specification (Predictor tag 317: 1 = none, 2 = horizontal
+    # differencing) and GDAL's GeoTIFF driver (3 = floating point, float rasters only)
+    with pytest.raises(InputError, match=message):
+        write_rasters([RasterOutput(make_stack(), tmp_path / "x.tif", predictor=predictor, dtype=dtype, nodata=255)])
+    assert list(tmp_path.iterdir()) == []
