@@ -8,7 +8,7 @@ from xml.etree import ElementTree as ET
 
 import numpy as np
 
-__all__ = ["overview_factors", "overview_levels", "pyramid_vrt"]
+__all__ = ["overview_factors", "overview_levels", "pyramid_vrt", "whole_groups"]
 
 
 def overview_factors(height: int, width: int, block: int) -> list:
@@ -24,6 +24,19 @@ def overview_factors(height: int, width: int, block: int) -> list:
 def _aligned(chunks, factor: int) -> bool:
     """Every chunk but the last is a whole number of ``factor`` cells."""
     return all(c % factor == 0 for c in chunks[:-1])
+
+
+def whole_groups(data, factor: int):
+    """``data`` (bands, y, x) as a dask array whose chunk boundaries fall on whole ``factor`` x
+    ``factor`` groups (as it is when they already do), for :func:`overview_levels`."""
+    import dask.array as dsa
+
+    side = factor * max(1, 1024 // factor)
+    if not isinstance(data, dsa.Array):
+        return dsa.from_array(np.asarray(data), chunks=(-1, side, side))
+    if _aligned(data.chunks[1], factor) and _aligned(data.chunks[2], factor):
+        return data
+    return data.rechunk({1: side, 2: side})
 
 
 def _first_sums(block):
@@ -59,15 +72,17 @@ def _means(block, dtype):
         return np.where(block[1] > 0, block[0] / block[1], np.nan).astype(dtype)
 
 
-def overview_levels(data, factors):
+def overview_levels(data, factors, *, nearest=()):
     """Lazy overview levels of the dask array ``data`` (bands, y, x), one per factor, or None.
 
     Level ``f`` holds the mean of the valid cells of each ``f`` x ``f`` group of cells (the
     last groups of a side that is not a multiple of ``f`` are partial), as GDAL's AVERAGE
     resampling gives for the first level of a NaN-nodata band (deeper GDAL levels differ
     where a group holds NaN); its sums and counts are carried from level to
-    level, so every level is exact, not a mean of means. None when a chunk boundary does
-    not fall on a whole group of the largest factor (GDAL then builds the overviews).
+    level, so every level is exact, not a mean of means. The bands listed in ``nearest``
+    (0-based; class codes, indices) take instead the first cell of each group (its top-left
+    cell), so an overview shows codes that exist. None when a chunk boundary does not fall
+    on a whole group of the largest factor (GDAL then builds the overviews).
     """
     import dask.array as dsa
 
@@ -76,6 +91,22 @@ def overview_levels(data, factors):
     if not (_aligned(data.chunks[1], factors[-1]) and _aligned(data.chunks[2], factors[-1])):
         return None
     data = data.rechunk({0: -1})
+    nearest = {int(b) for b in nearest}
+    if not nearest:
+        return _mean_levels(data, factors)
+    # band by band (basic slices: views of the blocks, no copies), then joined per level
+    per_band = []
+    for b in range(data.shape[0]):
+        band = data[b:b + 1]
+        if b in nearest:
+            # chunks hold whole groups, so each chunk's strided slice is its own groups' first cells
+            per_band.append([band[:, ::f, ::f] for f in factors])
+        else:
+            per_band.append(_mean_levels(band, factors))
+    return [dsa.concatenate([levels[k] for levels in per_band], axis=0) for k in range(len(factors))]
+
+
+def _mean_levels(data, factors):
     levels, current = [], None
     for _ in factors:
         source = data if current is None else current

@@ -16,7 +16,7 @@ import xarray as xr
 from envelope.errors import InputError
 from envelope.io.atomic import atomic_outputs, check_writable
 from envelope.io.blocks import WindowWriter
-from envelope.io.overviews import overview_factors, overview_levels, pyramid_vrt
+from envelope.io.overviews import overview_factors, overview_levels, pyramid_vrt, whole_groups
 from envelope.io.rasters import GEOTIFF_SUFFIXES, encode_tag
 from envelope.models.memory import usable_cores
 
@@ -52,6 +52,9 @@ class RasterOutput:
     #: 2 (horizontal differencing) for integer ones; 1 = none, for layers of plateaus (see
     #: :data:`PLATEAU_PREDICTOR`).
     predictor: int | None = None
+    #: Bands (0-based) of a float raster whose overviews take the first cell of each group
+    #: instead of the mean: class codes and indices (a MESS raster's most dissimilar variable).
+    nearest_bands: tuple = ()
 
 
 #: The predictor for float layers made of plateaus of a few values (a MESS raster: interior
@@ -73,6 +76,7 @@ class _Prepared:
     categories: dict | None
     nodata: float | None
     predictor: int | None = None
+    nearest_bands: tuple = ()
     dataset: object = None    # the open staging GeoTIFF
     overviews: list = None    # [(path, open dataset)] of its streamed overview levels, finest first
 
@@ -139,7 +143,11 @@ def _prepare(output: RasterOutput, overwrite: bool) -> _Prepared:
                          "differencing or 3 = floating point)")
     if output.predictor == 3 and integer:
         raise InputError(f"{path}: predictor 3 (floating point) for an integer raster (expected 1 or 2)")
-    return _Prepared(values, path, names, units, output.tags or {}, output.categories, nodata, output.predictor)
+    nearest = tuple(int(b) for b in output.nearest_bands)
+    if any(not 0 <= b < len(names) for b in nearest):
+        raise InputError(f"{path}: nearest_bands {list(nearest)} (expected 0-based band numbers below {len(names)})")
+    return _Prepared(values, path, names, units, output.tags or {}, output.categories, nodata, output.predictor,
+                     nearest)
 
 
 def _all_tags(prep: _Prepared, also_values) -> dict:
@@ -310,12 +318,16 @@ def _stage_task(prep: _Prepared, tmp: Path, stages: contextlib.ExitStack) -> lis
     dst = _open_stage(stages, stage, values, width, height, values.rio.transform(), prep.nodata)
     prep.dataset = dst
     data = values.data
+    factors = overview_factors(height, width, _block_size(width, height))
+    floating = np.issubdtype(values.dtype, np.floating)
+    if prep.nearest_bands and factors and floating:
+        # GDAL would average every band: the levels are made here, from chunks of whole groups
+        data = whole_groups(data, factors[-1])
     if not isinstance(data, dsa.Array):
         dst.write(np.asarray(data))
         return []
     tasks = [_store(data, dst, stages)]
-    factors = overview_factors(height, width, _block_size(width, height))
-    levels = overview_levels(data, factors) if np.issubdtype(values.dtype, np.floating) else None
+    levels = overview_levels(data, factors, nearest=prep.nearest_bands) if floating else None
     prep.overviews = []
     for f, level in zip(factors, levels or ()):
         path = stage.with_name(f"{stage.name}.ovr{f}.tif")

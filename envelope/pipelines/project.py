@@ -19,7 +19,7 @@ from envelope.io.atomic import atomic_outputs, check_distinct, check_writable
 from envelope.io.rasters import open_climate, open_layer
 from envelope.io.tables import SUITABILITY_TABLE_NAME, group_scenarios, read_scenarios, write_suitability_table
 from envelope.io.writing import PLATEAU_PREDICTOR, RasterOutput, write_rasters
-from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, binary_map, novel_area_sums,
+from envelope.projection import (BINARY_CATEGORIES, BINARY_NODATA, MESS_BANDS, binary_map, novel_area_sums,
                                  project_mess, project_suitability, share_of, training_range)
 from envelope.provenance import file_sha256
 
@@ -220,7 +220,8 @@ def write_projection(estimator, stack, variables, bounds, metadata, tags, paths,
     if "mess" in paths:
         mess_da = project_mess(stack, variables, metadata["mess_reference"])
         outputs.append(RasterOutput(mess_da, paths["mess"], tags={**tags, "most_dissimilar_variables": list(variables)},
-                                    categories=dict(enumerate(variables)), predictor=PLATEAU_PREDICTOR))
+                                    categories=dict(enumerate(variables)), predictor=PLATEAU_PREDICTOR,
+                                    nearest_bands=(MESS_BANDS.index("most_dissimilar"),)))
         mess_values = mess_da.sel(variable="mess")
         also += novel_area_sums(mess_values, cell_area_km2(mess_values))
 

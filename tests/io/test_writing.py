@@ -163,3 +163,47 @@ def test_bad_predictor_refused(tmp_path, predictor, dtype, message):
     with pytest.raises(InputError, match=message):
         write_rasters([RasterOutput(make_stack(), tmp_path / "x.tif", predictor=predictor, dtype=dtype, nodata=255)])
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("chunks", [None, (2, 512, 512), (2, 300, 700)])
+def test_nearest_bands_take_the_first_cell_of_each_group(tmp_path, chunks):
+    # A band of codes (an index stored as float, as in a MESS raster) gets overviews holding
+    # codes that exist: the top-left cell of each f x f group (numpy strided slicing as
+    # reference), while the other band keeps the mean of the valid cells (numpy.nanmean).
+    # In memory, in aligned chunks and in chunks that do not hold whole groups (rechunked).
+    import dask.array as dsa
+    import rioxarray  # noqa: F401
+    import xarray as xr
+
+    rng = np.random.default_rng(4)
+    ny, nx = 1100, 1400
+    values = np.stack([rng.normal(size=(ny, nx)), rng.integers(0, 19, size=(ny, nx))]).astype(np.float32)
+    values[:, :40, :60] = np.nan
+    data = values if chunks is None else dsa.from_array(values, chunks=chunks)
+    da = xr.DataArray(data, dims=("variable", "y", "x"),
+                      coords={"variable": ["mess", "most_dissimilar"], "y": 50.0 - 0.01 * (np.arange(ny) + 0.5),
+                              "x": -150.0 + 0.01 * (np.arange(nx) + 0.5)}).rio.write_crs("EPSG:4326")
+    write_rasters([RasterOutput(da, tmp_path / "m.tif", nearest_bands=(1,))])
+    with rasterio.open(tmp_path / "m.tif") as src:
+        assert src.overviews(2) == [2, 4] and src.tags(ns="IMAGE_STRUCTURE")["LAYOUT"] == "COG"
+        np.testing.assert_array_equal(src.read(), values)
+    for level, f in enumerate((2, 4)):
+        with rasterio.open(tmp_path / "m.tif", overview_level=level) as ov:
+            got = ov.read()
+        np.testing.assert_array_equal(got[1], values[1, ::f, ::f])
+        assert set(np.unique(got[1][np.isfinite(got[1])])) <= set(range(19))
+        h, w = -(-ny // f), -(-nx // f)
+        pad = np.full((h * f, w * f), np.nan)
+        pad[:ny, :nx] = values[0]
+        with np.errstate(invalid="ignore"), pytest.warns(RuntimeWarning):
+            ref = np.nanmean(pad.reshape(h, f, w, f), axis=(1, 3))
+        np.testing.assert_allclose(got[0], ref, rtol=1e-6, atol=1e-7, equal_nan=True)
+
+
+def test_bad_nearest_band_refused(tmp_path):
+    from envelope.errors import InputError
+
+    # Common practice, no source: a band number outside the raster names the option
+    with pytest.raises(InputError, match=r"nearest_bands \[5\]"):
+        write_rasters([RasterOutput(make_stack(), tmp_path / "x.tif", nearest_bands=(5,))])
+    assert list(tmp_path.iterdir()) == []
