@@ -9,7 +9,7 @@ import rioxarray  # noqa: F401  (registers the .rio accessor)
 import xarray as xr
 
 from envelope.errors import InputError
-from envelope.grids import check_same_grid
+from envelope.grids import check_same_grid, georeferenced_like
 from envelope.kernels.bioclim import bioclim_kernel, variable_long_names, variable_names, variable_units
 from envelope.projection import KERNEL_CELLS, map_cells
 
@@ -174,7 +174,5 @@ def bioclim(
     if gdd_base is not None:
         out.attrs["gdd_method"] = (f"sum over months of max(Tavg - {float(gdd_base):g}, 0) x days in month "
                                    "(365-day year)")
-    crs = tmin.rio.crs
-    if crs is not None:
-        out = out.rio.write_crs(crs)
-    return out
+    # CRS, and the stated transform of a one-row or one-column grid (its cell size is not in the coordinates)
+    return georeferenced_like(out, tmin)

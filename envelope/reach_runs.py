@@ -10,6 +10,7 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.kernels.compact import PackedSnapshots
+from envelope.kernels.rowblocks import row_blocks
 from envelope.reach import REACH_CLASSES, REACH_NODATA, ReachResult, front_geojson
 
 __all__ = ["AREA_KEYS", "INTERVAL_PERCENTILES", "ReachRunSet", "combine_reach_runs", "distance_levels",
@@ -65,16 +66,6 @@ def _median_or_none(values):
     return float(np.median(v)) if v.size else None
 
 
-# Cells per block where a per-cell statistic over runs is computed a block of rows at a time.
-_BLOCK_CELLS = 1 << 20
-
-
-def _row_blocks(shape):
-    """Row slices covering a (y, x) grid in blocks of about :data:`_BLOCK_CELLS` cells."""
-    rows = max(1, _BLOCK_CELLS // max(1, shape[1]))
-    return [slice(r, r + rows) for r in range(0, shape[0], rows)]
-
-
 def _mode_classes(grids: list) -> np.ndarray:
     """Per cell the most frequent class code across runs (ties: the lower code); nodata stays nodata.
 
@@ -82,7 +73,7 @@ def _mode_classes(grids: list) -> np.ndarray:
     """
     codes = sorted(REACH_CLASSES)
     out = np.empty(grids[0].shape, dtype=np.uint8)
-    for rows in _row_blocks(out.shape):
+    for rows in row_blocks(out.shape):
         stack = np.stack([g[rows] for g in grids])
         counts = np.stack([(stack == c).sum(axis=0) for c in codes])
         block = np.asarray(codes, dtype=np.uint8)[np.argmax(counts, axis=0)]
@@ -94,7 +85,7 @@ def _mode_classes(grids: list) -> np.ndarray:
 def _median_arrival(grids: list, valid: np.ndarray) -> np.ndarray:
     """Per cell the median arrival year over runs (never = later than any), float32, NaN if never or not valid."""
     out = np.empty(valid.shape, dtype=np.float32)
-    for rows in _row_blocks(out.shape):
+    for rows in row_blocks(out.shape):
         years = np.stack([np.where(np.isfinite(g[rows]), g[rows], np.inf) for g in grids])
         med = np.median(years, axis=0)
         out[rows] = np.where(valid[rows] & np.isfinite(med), med, np.nan)

@@ -208,3 +208,19 @@ def test_month_axis_anywhere_and_mixed_backends():
     out = bioclim(_grid(tmin).transpose("y", "x", "month"), _grid(tmax, {"y": 7}), _grid(prec, {"x": 11}))
     assert out.dims == ("variable", "y", "x")
     _same_bits(out.values, expected)
+
+
+@pytest.mark.parametrize("ny, nx", [(1, 6), (5, 1)])
+def test_one_row_or_column_grid_keeps_its_transform(ny, nx):
+    # A one-row or one-column grid cannot recover its cell size from its coordinates: the
+    # output carries the input's stated transform (Source: rioxarray's rio.transform of the
+    # input, written with rio.write_transform), not an identity one
+    from affine import Affine
+
+    stated = Affine(1.0, 0.0, -150.0, 0.0, -1.0, -20.0)  # the cells of monthly(): 1 degree from (-150, -20)
+    tmin = monthly(np.linspace(-2, 14, 12), ny=ny, nx=nx).rio.write_transform(stated)
+    tmax = (tmin + 8.0).rio.write_transform(stated)
+    prec = (tmin * 0 + 50.0).rio.write_transform(stated)
+    assert tmin.rio.transform() == stated
+    out = bioclim(tmin, tmax, prec)
+    assert out.rio.transform() == stated and out.rio.crs == tmin.rio.crs

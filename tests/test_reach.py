@@ -307,14 +307,13 @@ def test_packed_snapshots_and_lean_outputs_equal_the_former_dense_path(precision
     # multiplied on the selected cells only and the grids let go early: not one output may
     # change by one bit. Tiny blocks make every block-by-block loop cross its seams.
     import envelope.kernels.compact as compact
-    import envelope.kernels.spread as spread
+    import envelope.kernels.rowblocks as rowblocks
     import envelope.kernels.transient as transient
     import envelope.reach as reach
     from envelope.kernels.compact import PackedSnapshots
 
     monkeypatch.setattr(compact, "_CHUNK_CELLS", 64)
-    monkeypatch.setattr(spread, "_BLOCK_CELLS", 100)
-    monkeypatch.setattr(transient, "_BLOCK_CELLS", 100)
+    monkeypatch.setattr(rowblocks, "ROW_BLOCK_CELLS", 100)  # the spread step and the transient path
     dense, kept = {}, {}
     pack = PackedSnapshots.add
 

@@ -70,12 +70,12 @@ def test_combined_maps_equal_the_former_whole_grid_path(monkeypatch):
     # mode of the classes, the median arrival year, the weighted share and the front where
     # half of the paths are occupied are now computed a block of rows at a time (2 rows
     # here) and the halves kept packed; not one value may change.
-    import envelope.reach_runs as reach_runs
+    import envelope.kernels.rowblocks as rowblocks
     from envelope.reach import REACH_CLASSES, REACH_NODATA, front_geojson, simulate_reach
 
     from tests.test_reach import _landscape
 
-    monkeypatch.setattr(reach_runs, "_BLOCK_CELLS", 2 * 36)
+    monkeypatch.setattr(rowblocks, "ROW_BLOCK_CELLS", 2 * 36)
     now, futures, hab, start = _landscape()
     kw = dict(threshold=0.5, now_year=2020, rate=2.5, snapshot_every_years=6, fragmentation_band_deg=None)
     results = [simulate_reach(now, futures, hab, start, settings=DispersalSettings(mean_distance_km=d), seed=s,

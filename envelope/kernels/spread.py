@@ -8,6 +8,7 @@ import numpy as np
 import scipy.fft
 
 from envelope.errors import InputError
+from envelope.kernels.rowblocks import row_blocks
 
 __all__ = ["SpreadOperator", "DEFAULT_PRESSURE_FLOOR"]
 
@@ -21,8 +22,6 @@ __all__ = ["SpreadOperator", "DEFAULT_PRESSURE_FLOOR"]
 # tail weights, hence float32 shortens the reach of the far tail (see docs).
 DEFAULT_PRESSURE_FLOOR = {np.dtype(np.float64): 1e-12, np.dtype(np.float32): 1e-5}
 
-# Cells per block of rows where a grid-sized temporary is avoided by working block by block.
-_BLOCK_CELLS = 1 << 20
 
 
 class _Block:
@@ -267,9 +266,8 @@ class SpreadOperator:
             # p' = c + p * (phi - c), written over c a block of rows at a time: no second
             # grid-sized array (the same operations, cell by cell, as on whole grids)
             occ_t = occ.astype(self.dtype, copy=False)
-            rows = max(1, _BLOCK_CELLS // self.shape[1])
-            for r in range(0, self.shape[0], rows):
-                block = (..., slice(r, r + rows), slice(None))
+            for rows in row_blocks(self.shape):
+                block = (..., rows, slice(None))
                 new = persist[block[1:]] - colonise[block]
                 new *= occ_t[block]
                 new += colonise[block]

@@ -9,12 +9,11 @@ import numpy as np
 
 from envelope.errors import InputError
 from envelope.kernels.compact import PackedSnapshots
+from envelope.kernels.rowblocks import row_blocks
 
 __all__ = ["ClimatePath", "TransientResult", "run_transient", "step_years_list"]
 
 
-# Cells per block where a grid-sized temporary is avoided by working a block of rows at a time.
-_BLOCK_CELLS = 1 << 20
 
 
 @dataclass
@@ -74,10 +73,9 @@ class ClimatePath:
         k, w = self._bracket(year)
         a, b = self.maps[k], self.maps[k + 1]
         out = np.empty(a.shape, dtype=dtype)
-        rows = max(1, _BLOCK_CELLS // max(1, int(np.prod(a.shape[1:]))))
-        for r in range(0, a.shape[0], rows):
-            part = (1.0 - w) * a[r:r + rows] + w * b[r:r + rows]
-            out[r:r + rows] = part >= threshold  # NaN compares False: no climate, not suitable
+        for rows in row_blocks(a.shape):
+            part = (1.0 - w) * a[rows] + w * b[rows]
+            out[rows] = part >= threshold  # NaN compares False: no climate, not suitable
         return out
 
 

@@ -301,9 +301,9 @@ def test_step_in_row_blocks_equals_the_whole_grid_formula(dtype, monkeypatch):
     # Exact equality with the former code path: p' = c + p (phi - c) on whole grids, where
     # c = 1 - exp(-R pressure h s); the step now writes it over c a block of rows at a time
     # (3 rows here, so the seams are crossed; 20 rows do not divide evenly).
-    import envelope.kernels.spread as spread
+    import envelope.kernels.rowblocks as rowblocks
 
-    monkeypatch.setattr(spread, "_BLOCK_CELLS", 3 * 11)
+    monkeypatch.setattr(rowblocks, "ROW_BLOCK_CELLS", 3 * 11)
     rng = np.random.default_rng(8)
     k = discretise_kernel("exponential", 2.0, cell_dx_km=1.0, cell_dy_km=1.0)
     occ = (rng.random((20, 11)) * (rng.random((20, 11)) < 0.4)).astype(dtype)

@@ -307,9 +307,9 @@ def test_bad_inputs_name_the_parameter(change, phrase):
 def test_suitable_at_equals_thresholding_the_interpolated_map(dtype, monkeypatch):
     # Exact equality with the former code path (``at(year) >= threshold``, then 0/1 in the
     # path's dtype), computed in blocks of 2 rows here so the blocks' seams are crossed.
-    import envelope.kernels.transient as transient
+    import envelope.kernels.rowblocks as rowblocks
 
-    monkeypatch.setattr(transient, "_BLOCK_CELLS", 10)
+    monkeypatch.setattr(rowblocks, "ROW_BLOCK_CELLS", 10)
     rng = np.random.default_rng(5)
     maps = [rng.random((9, 5)), rng.random((9, 5)), rng.random((9, 5))]
     maps[1][2, 3] = np.nan
