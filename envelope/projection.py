@@ -161,13 +161,9 @@ def _openmp_controller():
     return ThreadpoolController()
 
 
-def _suitability_block(block, members, lower, upper):
-    return _suitability_and_infinite_block(block, members, lower, upper)[0]
-
-
-def _suitability_and_infinite_block(block, members, lower, upper):
-    """Suitability (float32, NaN where a variable is not finite) and a uint8 flag of the cells
-    with a ±inf variable, of one (variable, y, x) block."""
+def _suitability_block(block, members, lower, upper, flag_infinite=False):
+    """Suitability (float32, NaN where a variable is not finite) of one (variable, y, x) block;
+    with ``flag_infinite``, also a uint8 flag of the cells with a ±inf variable."""
     X, shape = _as_cells(block)
     total = None
     for weight, table, predict_proba in members:
@@ -186,6 +182,8 @@ def _suitability_and_infinite_block(block, members, lower, upper):
     # clamping would turn ±inf into the training bounds: a non-finite climate value is nodata
     missing, infinite = nonfinite_cells(X)
     total[missing] = np.nan
+    if not flag_infinite:
+        return total.reshape(shape)
     flags = np.zeros(total.size, np.uint8)
     flags[infinite] = 1
     return total.reshape(shape), flags.reshape(shape)
@@ -303,8 +301,8 @@ def project_suitability(estimator, stack: xr.DataArray, variables, training_rang
     dtype = np.float32 if stack.dtype == np.float32 else np.float64
     members = _members(estimator, lower, upper, dtype)
     if count_infinite:
-        result, flags = map_cells(_suitability_and_infinite_block, stack, dtypes=(np.float32, np.uint8),
-                                  members=members, lower=lower, upper=upper)
+        result, flags = map_cells(_suitability_block, stack, dtypes=(np.float32, np.uint8), members=members,
+                                  lower=lower, upper=upper, flag_infinite=True)
         count = flags.sum(dtype=np.int64).data
     else:
         result = map_cells(_suitability_block, stack, members=members, lower=lower, upper=upper)

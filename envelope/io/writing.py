@@ -363,6 +363,16 @@ def _remove_stage(stage: Path) -> None:
         Path(str(stage) + ".aux.xml").unlink()
 
 
+def _cog_options(floating: bool, block: int, predictor: int | None = None) -> dict:
+    """GDAL COG driver options of every GeoTIFF output (overview options apart): DEFLATE at
+    :data:`DEFLATE_LEVEL`, ``predictor`` or 3 (float) / 2 (integer), ``block``-cell tiles,
+    AVERAGE (float) or NEAREST overviews, compressed on every usable core."""
+    return {"driver": "COG", "COMPRESS": "DEFLATE", "LEVEL": str(DEFLATE_LEVEL),
+            "PREDICTOR": str(predictor or (3 if floating else 2)), "BLOCKSIZE": str(block),
+            "RESAMPLING": "AVERAGE" if floating else "NEAREST", "BIGTIFF": "IF_SAFER",
+            "NUM_THREADS": str(usable_cores())}
+
+
 def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict) -> None:
     """Band names, units and tags on the staged file, then GDAL's COG copy into ``tmp``.
 
@@ -375,7 +385,7 @@ def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict) -> None:
 
     dst = prep.dataset
     stage = _stage_path(tmp)
-    levels = getattr(prep, "overviews", None) or []
+    levels = prep.overviews or []
     source = stage
     if levels:
         for _, ds in levels:
@@ -394,11 +404,8 @@ def _finish_geotiff(prep: _Prepared, tmp: Path, tags: dict) -> None:
     block = _block_size(prep.values.sizes["x"], prep.values.sizes["y"])
     tmp.unlink(missing_ok=True)
     try:
-        rasterio.shutil.copy(source, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=str(DEFLATE_LEVEL),
-                             PREDICTOR=str(prep.predictor or (3 if floating else 2)), BLOCKSIZE=str(block),
-                             OVERVIEWS="FORCE_USE_EXISTING" if levels else "AUTO",
-                             RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
-                             NUM_THREADS=str(usable_cores()))
+        rasterio.shutil.copy(source, tmp, **_cog_options(floating, block, prep.predictor),
+                             OVERVIEWS="FORCE_USE_EXISTING" if levels else "AUTO")
     finally:
         if levels:
             Path(source).unlink(missing_ok=True)
@@ -537,9 +544,6 @@ def windowed_raster(path, like: xr.DataArray, *, dtype, nodata, name: str, overw
                 dst.update_tags(**out)
             tmp.unlink(missing_ok=True)
             floating = np.issubdtype(dtype, np.floating)
-            rasterio.shutil.copy(stage, tmp, driver="COG", COMPRESS="DEFLATE", LEVEL=str(DEFLATE_LEVEL),
-                                 PREDICTOR="3" if floating else "2", BLOCKSIZE=str(block), OVERVIEWS="AUTO",
-                                 RESAMPLING="AVERAGE" if floating else "NEAREST", BIGTIFF="IF_SAFER",
-                                 SPARSE_OK="TRUE", NUM_THREADS=str(usable_cores()))
+            rasterio.shutil.copy(stage, tmp, **_cog_options(floating, block), OVERVIEWS="AUTO", SPARSE_OK="TRUE")
         finally:
             _remove_stage(stage)
