@@ -7,7 +7,8 @@
 Every generated part of a docs page sits between ``<!-- generated: NAME -->`` and
 ``<!-- end generated -->``: a block when a newline follows the opening comment, an inline
 span (a number or a sentence inside prose) when it does not. Each name has one function
-below, registered with :func:`block`; it reads the run folder through
+below, registered with :func:`block`; so has each picture in docs/img (:func:`picture`, a
+matplotlib Figure drawn from the run's rasters with ``envelope.figures``); it reads the run folder through
 :class:`envelope.study.layout.RunLayout` (never a hard-coded path) and returns the text.
 The user guide's command excerpts are the commands' own output: :meth:`Demo.commands`
 runs them with click's test runner on the demo data, with the demo study's settings. :func:`rewrite` puts the texts in place;
@@ -56,6 +57,25 @@ def block(name):
     """Register the function that makes the generated text ``name``."""
     def register(fn):
         GENERATORS[name] = fn
+        return fn
+    return register
+
+
+#: The pictures of the pages: file name in docs/img -> the function that draws it (a
+#: matplotlib Figure) from the run, registered with :func:`picture`.
+PICTURES: dict = {}
+#: Where the pictures live and the resolution they are drawn at.
+IMG, PICTURE_DPI = DOCS / "img", 72
+#: Largest RMS difference (0-255 grey levels) between a committed picture and a fresh
+#: drawing that --check and the docs test accept. Common practice, no source: with the pinned
+#: matplotlib the drawings are identical; the margin absorbs anti-aliasing of another FreeType.
+PICTURE_TOLERANCE = 2.0
+
+
+def picture(filename):
+    """Register the function that draws docs/img/``filename`` from the run."""
+    def register(fn):
+        PICTURES[filename] = fn
         return fn
     return register
 
@@ -702,6 +722,76 @@ def guide_rerun(run: Demo) -> str:
     return fence(f"$ envelope run sample_grids/study.toml --out {GUIDE_RUN}\n…\n{rerun_steps(run)}")
 
 
+# ---------------------------------------------------------------------- pictures
+def _land(run: Demo):
+    from envelope.io.rasters import open_layer
+    from envelope.study.demo import demo_dir
+
+    return open_layer(demo_dir() / "landmask.tif").load()
+
+
+@picture("tutorial-suitability-now.png")
+def suitability_now_picture(run: Demo):
+    from envelope import figures
+    from envelope.io.rasters import open_layer
+
+    return figures.map_continuous(open_layer(run.layout.now).load(), title="Demo: suitability today (fictional island)",
+                                  label="suitability (relative)", vmin=0, vmax=1, land_mask=_land(run),
+                                  threshold_contour=round(run.fit["threshold"]["value"], 3))
+
+
+@picture("tutorial-reach-high.png")
+def reach_high_picture(run: Demo):
+    from envelope import figures
+    from envelope.io.rasters import open_layer
+    from envelope.palettes import REACH_CLASS_COLOURS
+    from envelope.reach import REACH_CLASSES
+
+    classes = open_layer(run.layout.reach("high")["classes"], categorical=True).load()
+    return figures.map_classes(classes.where(classes != 255), REACH_CLASSES, colours=REACH_CLASS_COLOURS,
+                               title=f"Demo: reach classes by {run.last_horizon}, pathway high", land_mask=_land(run))
+
+
+@picture("tutorial-arrival-high.png")
+def arrival_high_picture(run: Demo):
+    from envelope import figures
+    from envelope.io.rasters import open_layer
+
+    return figures.map_arrival(open_layer(run.layout.reach("high")["arrival"]).load(),
+                               title="Demo: first year occupied, pathway high", land_mask=_land(run))
+
+
+def pictures(run_dir, out_dir) -> dict:
+    """Draw every picture from the demo run in ``run_dir`` into ``out_dir``; {file name: path}."""
+    from envelope import figures
+
+    run = Demo(run_dir)
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    drawn = {}
+    for name, draw in PICTURES.items():
+        drawn[name] = out_dir / name
+        drawn[name].write_bytes(figures.figure_to_png_bytes(draw(run), dpi=PICTURE_DPI))
+    return drawn
+
+
+def stale_pictures(drawn: dict) -> list:
+    """The committed pictures that differ from the fresh drawings ``drawn`` (or are missing)."""
+    from matplotlib.testing.compare import compare_images
+    from matplotlib.testing.exceptions import ImageComparisonFailure
+
+    stale = []
+    for name, fresh in drawn.items():
+        committed = IMG / name
+        try:
+            same = committed.exists() and compare_images(str(committed), str(fresh), PICTURE_TOLERANCE) is None
+        except ImageComparisonFailure:  # another size
+            same = False
+        if not same:
+            stale.append(f"img/{name}")
+    return stale
+
+
 def blocks(run_dir) -> dict:
     """The text of every generated block and span, from the demo run in ``run_dir``."""
     run = Demo(run_dir)
@@ -744,6 +834,11 @@ def main(argv=None) -> int:
                 stale.append(page)
                 if not args.check:
                     path.write_text(new, encoding="utf-8")
+        drawn = pictures(run, Path(tmp) / "img")
+        for name in stale_pictures(drawn):
+            stale.append(name)
+            if not args.check:
+                (DOCS / name).write_bytes(drawn[Path(name).name].read_bytes())
     if args.check and stale:
         print(f"out of date: {', '.join(stale)}; run python docs/figures.py", file=sys.stderr)
         return 1

@@ -127,3 +127,19 @@ def test_tutorial_figures_match_a_fresh_run(demo_run):
         assert mod.rewrite(text, generated) == text, f"docs/{page} is out of date: run python docs/figures.py"
     # every generator feeds a page, so no figure is made and then quoted by hand elsewhere
     assert used == set(generated), f"generators no page uses: {sorted(set(generated) - used)}"
+
+
+def test_tutorial_pictures_match_a_fresh_run(demo_run, tmp_path):
+    # Common practice, no source: the committed pictures in docs/img are what docs/figures.py
+    # draws from a fresh demo run (compared with matplotlib.testing.compare.compare_images, RMS
+    # tolerance PICTURE_TOLERANCE), and every picture a page shows is one it draws.
+    spec = importlib.util.spec_from_file_location("docs_figures", ROOT / "docs" / "figures.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    drawn = mod.pictures(demo_run, tmp_path)
+    assert mod.stale_pictures(drawn) == [], "docs/img is out of date: run python docs/figures.py"
+    shown = set()
+    for page in (ROOT / "docs").glob("*.md"):
+        shown |= set(re.findall(r"!\[[^\]]*\]\(img/([^)]+)\)", page.read_text(encoding="utf-8")))
+    assert shown == set(drawn), f"pictures shown but not drawn: {sorted(shown - set(drawn))}; " \
+                                f"drawn but not shown: {sorted(set(drawn) - shown)}"
