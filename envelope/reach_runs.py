@@ -9,17 +9,20 @@ import pandas as pd
 import xarray as xr
 
 from envelope.errors import InputError
-from envelope.kernels.compact import PackedSnapshots
+from envelope.kernels.compact import CodedGrid, PackedSnapshots, code_grid
 from envelope.kernels.rowblocks import row_blocks
 from envelope.reach import REACH_CLASSES, REACH_NODATA, ReachResult, front_geojson
 
-__all__ = ["AREA_KEYS", "INTERVAL_PERCENTILES", "ReachRunSet", "combine_reach_runs", "distance_levels",
+__all__ = ["AREA_KEYS", "INTERVAL_PERCENTILES", "ReachRunCombiner", "ReachRunSet", "combine_reach_runs", "distance_levels",
            "percentile_interval"]
 
 #: The percentiles of every interval: the 5 %, 50 % and 95 % values across runs.
 INTERVAL_PERCENTILES = (5, 50, 95)
 #: The ``area_km2`` keys of a reach summary (reach classes 1-5), in summary order.
 AREA_KEYS = ("gained_reached", "gained_unreached", "gained_no_habitat", "lost", "stable")
+#: Integer type of the per-cell counts of climate paths holding a cell (one grid per snapshot
+#: year); promoted to int64 when the paths outnumber its range.
+COUNT_DTYPE = np.uint16
 #: How the intervals are computed, stated in every combined summary.
 INTERVAL_METHOD = ("5th, 50th and 95th percentiles over the runs, linear interpolation between order statistics "
                    "(numpy's default; Hyndman & Fan 1996 definition 7)")
@@ -83,13 +86,139 @@ def _mode_classes(grids: list) -> np.ndarray:
 
 
 def _median_arrival(grids: list, valid: np.ndarray) -> np.ndarray:
-    """Per cell the median arrival year over runs (never = later than any), float32, NaN if never or not valid."""
+    """Per cell the median arrival year over runs (never = later than any), float32, NaN if never or not valid.
+
+    ``grids`` are arrays or :class:`envelope.kernels.compact.CodedGrid` (decoded a block of rows at a time).
+    """
     out = np.empty(valid.shape, dtype=np.float32)
     for rows in row_blocks(out.shape):
-        years = np.stack([np.where(np.isfinite(g[rows]), g[rows], np.inf) for g in grids])
+        years = np.stack([g.values(rows, nan=np.inf) if isinstance(g, CodedGrid)
+                          else np.where(np.isfinite(g[rows]), g[rows], np.inf) for g in grids])
         med = np.median(years, axis=0)
         out[rows] = np.where(valid[rows] & np.isfinite(med), med, np.nan)
     return out
+
+
+class _FirstOf:
+    """What the combination keeps of its first result once there are more: the summary and grid templates."""
+
+    def __init__(self, result: ReachResult):
+        self.summary, self.classes, self.reached_share = result.summary, result.classes, result.reached_share
+
+
+class ReachRunCombiner:
+    """:func:`combine_reach_runs` one result at a time, keeping of each only what the combination needs.
+
+    :meth:`add` takes a result's runs, adds its reached share and, per snapshot year, its
+    occupied cells to running counts, and keeps its class grid (1 byte a cell) and its
+    arrival years as codes (:func:`envelope.kernels.compact.code_grid`, 1 or 2 bytes); the
+    result itself can then be dropped. A set of many climate paths on a large grid so holds
+    about 2-3 bytes a cell per path instead of every path's grids (:meth:`result` gives
+    the same combination as :func:`combine_reach_runs` of the list).
+    """
+
+    def __init__(self):
+        self.rows, self.labels, self._classes, self._arrivals = [], [], [], []
+        self._weights, self._horizon_km2, self._edges = [], [], []
+        self._share = self._first = None
+        self._held = {}  # year -> [count of paths holding each cell, number of paths with that year]
+
+    def add(self, result: ReachResult, label: dict) -> None:
+        """Take one reach result (see :func:`combine_reach_runs`) labelled ``label``."""
+        if not isinstance(result, ReachResult) or not result.runs:
+            raise InputError(f"combine_reach_runs: run {label}: expected a ReachResult with its runs")
+        for k, run in enumerate(result.runs):
+            self.rows.append({**label, "replicate": k if result.summary["replicates"] else None, **run["area_km2"],
+                              "reached_share_of_gain": run["reached_share_of_gain"],
+                              "front_advance_km": run["front_advance_km"]})
+        self.labels.append(label)
+        # each run weighs the same: a path's reached share is the mean of its runs' 0/1 states
+        w = float(len(result.runs))
+        self._weights.append(w)
+        term = np.array(result.reached_share.values, dtype=np.float64)  # the weighted sum in place
+        np.nan_to_num(term, copy=False)
+        term *= w
+        self._share = term if self._share is None else np.add(self._share, term, out=self._share)
+        del term
+        self._horizon_km2.append(result.summary["occupied_km2"]["horizon"])
+        self._edges.append(result.summary["leading_edge_shift_km"])
+        if self._first is None:
+            # while it is the only one, the first result's own classes, arrival and front stand for the set
+            self._first = result
+            return
+        if isinstance(self._first, ReachResult):  # the second result: the first's grids are needed now
+            self._keep(self._first)
+            self._first = _FirstOf(self._first)
+        self._keep(result)
+
+    def _keep(self, result: ReachResult) -> None:
+        self._classes.append(np.asarray(result.classes.values))
+        arrival = np.asarray(result.arrival_year.values)
+        self._arrivals.append(code_grid(arrival) or arrival)
+        # per snapshot year, how many climate paths hold the cell (occupancy >= 0.5; NaN compares False)
+        for yr in result.occupancy:
+            counts = self._held.get(yr)
+            if counts is None:
+                counts = self._held[yr] = [np.zeros(result.classes.shape, dtype=COUNT_DTYPE), 0]
+            if counts[1] == np.iinfo(counts[0].dtype).max:
+                counts[0] = counts[0].astype(np.int64)
+            counts[0] += result.occupancy[yr].values >= 0.5
+            counts[1] += 1
+
+    def result(self) -> ReachRunSet:
+        """The combination of every result added (:func:`combine_reach_runs`)."""
+        if self._first is None:
+            raise InputError("combine_reach_runs: 0 results and 0 label rows; expected at least one result and one "
+                             "label row each")
+        first, labels, n = self._first, self.labels, len(self.labels)
+        runs = pd.DataFrame(self.rows)
+        weights = np.asarray(self._weights, dtype=np.float64)
+        share = self._share
+        share /= weights.sum()
+        valid = np.isfinite(np.asarray(first.reached_share.values))
+        like = first.reached_share
+        probability = share.astype(np.float32)
+        self._share = share = None
+        probability[~valid] = np.nan
+        probability = like.copy(data=probability)
+        if n == 1:
+            classes, arrival, front = first.classes, first.arrival_year, first.front
+        else:
+            classes = first.classes.copy(data=_mode_classes(self._classes))
+            arrival = like.copy(data=_median_arrival(self._arrivals, valid))
+            # the front where half of the climate paths hold the cell at each snapshot year
+            # (the years every path has); the shares are packed like the runs' own snapshots
+            halves = PackedSnapshots()
+            for yr in sorted(self._held):
+                counts, seen = self._held[yr]
+                if seen == n:
+                    halves.add(yr, (counts / n).astype(np.float32))
+            front = front_geojson(like, halves.mapped(lambda values: like.copy(data=values)), level=0.5)
+        self._held, self._classes, self._arrivals = {}, [], []
+
+        summary = dict(first.summary)
+        summary["area_km2"] = {k: _median_or_none(runs[k]) for k in AREA_KEYS}
+        summary["reached_share_of_gain"] = _median_or_none(runs["reached_share_of_gain"])
+        summary["front_advance_km"] = _median_or_none(runs["front_advance_km"])
+        duration = summary["horizon_years"][-1] - summary["start_year"]
+        fa = summary["front_advance_km"]
+        summary["spread_rate_km_per_decade"] = fa / duration * 10.0 if fa is not None else None
+        summary["occupied_km2"] = {"start": first.summary["occupied_km2"]["start"],
+                                   "horizon": _median_or_none(self._horizon_km2)}
+        summary["leading_edge_shift_km"] = _median_or_none(self._edges)
+        summary["intervals"] = {
+            "area_km2": {k: percentile_interval(runs[k]) for k in AREA_KEYS},
+            "front_advance_km": percentile_interval(runs["front_advance_km"]),
+            "reached_share_of_gain": percentile_interval(runs["reached_share_of_gain"]),
+            "method": INTERVAL_METHOD,
+        }
+        summary["n_runs"] = int(len(runs))
+        summary["runs_by"] = {k: sorted({lab[k] for lab in labels}, key=str) for k in labels[0]}
+        summary["combination"] = ("medians and intervals over every run (each stochastic replicate of each climate "
+                                  "path counts once); classes: the class most runs give a cell; arrival year: the "
+                                  "median over climate paths; front: where half of the climate paths are occupied")
+        return ReachRunSet(classes=classes, probability=probability, arrival_year=arrival, summary=summary,
+                           front=front, runs=runs)
 
 
 def combine_reach_runs(results: list, labels: list) -> ReachRunSet:
@@ -111,74 +240,13 @@ def combine_reach_runs(results: list, labels: list) -> ReachRunSet:
     ``spread_rate_km_per_decade`` the medians over runs, ``occupied_km2`` and
     ``leading_edge_shift_km`` the medians over the climate paths, and adds ``intervals``
     (``area_km2.<class>``, ``front_advance_km``, ``reached_share_of_gain``: p05/p50/p95),
-    ``n_runs`` and ``runs_by`` (the levels of each label).
+    ``n_runs`` and ``runs_by`` (the levels of each label). :class:`ReachRunCombiner` makes
+    the same combination from results handed over one at a time.
     """
     if not results or len(results) != len(labels):
         raise InputError(f"combine_reach_runs: {len(results)} results and {len(labels)} label rows; "
                          "expected at least one result and one label row each")
-    rows = []
+    combiner = ReachRunCombiner()
     for result, label in zip(results, labels):
-        if not isinstance(result, ReachResult) or not result.runs:
-            raise InputError(f"combine_reach_runs: run {label}: expected a ReachResult with its runs")
-        for k, run in enumerate(result.runs):
-            rows.append({**label, "replicate": k if result.summary["replicates"] else None, **run["area_km2"],
-                         "reached_share_of_gain": run["reached_share_of_gain"],
-                         "front_advance_km": run["front_advance_km"]})
-    runs = pd.DataFrame(rows)
-    first = results[0]
-    # each run weighs the same: a path's reached share is the mean of its runs' 0/1 states
-    weights = np.asarray([len(r.runs) for r in results], dtype=np.float64)
-    share = None
-    for w, r in zip(weights, results):  # the weighted sum in place: no grid per term
-        term = np.array(r.reached_share.values, dtype=np.float64)
-        np.nan_to_num(term, copy=False)
-        term *= w
-        share = term if share is None else np.add(share, term, out=share)
-        del term
-    share /= weights.sum()
-    valid = np.isfinite(np.asarray(first.reached_share.values))
-    like = first.reached_share
-    probability = share.astype(np.float32)
-    del share
-    probability[~valid] = np.nan
-    probability = like.copy(data=probability)
-    if len(results) == 1:
-        classes, arrival, front = first.classes, first.arrival_year, first.front
-    else:
-        classes = first.classes.copy(data=_mode_classes([np.asarray(r.classes.values) for r in results]))
-        arrival = like.copy(data=_median_arrival([np.asarray(r.arrival_year.values) for r in results], valid))
-        # the front where half of the climate paths hold the cell (occupancy >= 0.5) at each
-        # snapshot; the shares are packed like the runs' own snapshots, one layer unpacked at a time
-        snap_years = sorted(set.intersection(*(set(r.occupancy) for r in results)))
-        halves = PackedSnapshots()
-        for yr in snap_years:
-            held = np.zeros(like.shape, dtype=np.int64)
-            for r in results:
-                held += r.occupancy[yr].values >= 0.5  # NaN compares False, as 0 would
-            halves.add(yr, (held / len(results)).astype(np.float32))
-            del held
-        front = front_geojson(like, halves.mapped(lambda values: like.copy(data=values)), level=0.5)
-
-    summary = dict(first.summary)
-    summary["area_km2"] = {k: _median_or_none(runs[k]) for k in AREA_KEYS}
-    summary["reached_share_of_gain"] = _median_or_none(runs["reached_share_of_gain"])
-    summary["front_advance_km"] = _median_or_none(runs["front_advance_km"])
-    duration = summary["horizon_years"][-1] - summary["start_year"]
-    fa = summary["front_advance_km"]
-    summary["spread_rate_km_per_decade"] = fa / duration * 10.0 if fa is not None else None
-    summary["occupied_km2"] = {"start": first.summary["occupied_km2"]["start"],
-                               "horizon": _median_or_none([r.summary["occupied_km2"]["horizon"] for r in results])}
-    summary["leading_edge_shift_km"] = _median_or_none([r.summary["leading_edge_shift_km"] for r in results])
-    summary["intervals"] = {
-        "area_km2": {k: percentile_interval(runs[k]) for k in AREA_KEYS},
-        "front_advance_km": percentile_interval(runs["front_advance_km"]),
-        "reached_share_of_gain": percentile_interval(runs["reached_share_of_gain"]),
-        "method": INTERVAL_METHOD,
-    }
-    summary["n_runs"] = int(len(runs))
-    summary["runs_by"] = {k: sorted({lab[k] for lab in labels}, key=str) for k in labels[0]}
-    summary["combination"] = ("medians and intervals over every run (each stochastic replicate of each climate "
-                              "path counts once); classes: the class most runs give a cell; arrival year: the "
-                              "median over climate paths; front: where half of the climate paths are occupied")
-    return ReachRunSet(classes=classes, probability=probability, arrival_year=arrival, summary=summary,
-                       front=front, runs=runs)
+        combiner.add(result, label)
+    return combiner.result()

@@ -102,3 +102,58 @@ def test_combined_maps_equal_the_former_whole_grid_path(monkeypatch):
                                          axis=0).astype(np.float32)) for yr in results[0].occupancy}
     assert combined.front == front_geojson(like, halves, level=0.5)
     assert len(combined.front["features"]) == 6 and any(f["geometry"]["coordinates"] for f in combined.front["features"])
+
+
+def test_combiner_drops_each_result_and_equals_the_list(monkeypatch):
+    # Exact equality: results handed to ReachRunCombiner one at a time (each dropped by the
+    # caller) give the very combination combine_reach_runs makes of the list, and the
+    # combiner keeps no result alive beyond the first while it is the only one.
+    import gc
+    import weakref
+
+    from envelope.reach import simulate_reach
+    from envelope.reach_runs import ReachRunCombiner
+
+    from tests.test_reach import _landscape
+
+    now, futures, hab, start = _landscape()
+    kw = dict(threshold=0.5, now_year=2020, rate=2.5, snapshot_every_years=6, fragmentation_band_deg=None)
+    settings = [(2.0, 0, 0), (3.0, 3, 1), (4.5, 0, 2)]
+
+    def make(d, r, s):
+        return simulate_reach(now, futures, hab, start, settings=DispersalSettings(mean_distance_km=d), seed=s,
+                              replicates=r, **kw)
+
+    labels = [{"d": d} for d, _, _ in settings]
+    expected = combine_reach_runs([make(*x) for x in settings], labels)
+    combiner, alive = ReachRunCombiner(), []
+    for x, label in zip(settings, labels):
+        result = make(*x)
+        alive.append(weakref.ref(result))
+        combiner.add(result, label)
+        del result
+        gc.collect()
+        assert [ref() is not None for ref in alive] == [len(alive) == 1] + [False] * (len(alive) - 1)
+    got = combiner.result()
+    for name in ("classes", "probability", "arrival_year"):
+        np.testing.assert_array_equal(getattr(got, name).values, getattr(expected, name).values)
+    assert got.summary == expected.summary and got.front == expected.front
+    assert got.runs.equals(expected.runs)
+    with pytest.raises(InputError, match="at least one result"):
+        ReachRunCombiner().result()
+
+
+def test_combiner_counts_widen_past_their_type(monkeypatch):
+    # Analytic: 300 copies of one deterministic run hold a cell in all or none of the paths,
+    # so the combination is that run's own state: with 8-bit counts (monkeypatched) the
+    # counts must widen at 255 paths instead of wrapping round.
+    import envelope.reach_runs as reach_runs
+
+    monkeypatch.setattr(reach_runs, "COUNT_DTYPE", np.uint8)
+    now, fut, hab, start = corridor()
+    r = run(now, fut, hab, start)
+    many = combine_reach_runs([r] * 300, [{"k": k} for k in range(300)])
+    two = combine_reach_runs([r, r], [{"k": 0}, {"k": 1}])
+    assert many.front == two.front and any(f["geometry"]["coordinates"] for f in two.front["features"])
+    np.testing.assert_array_equal(many.probability.values, two.probability.values)
+    np.testing.assert_array_equal(many.classes.values, r.classes.values)

@@ -1,4 +1,4 @@
-"""Occupancy grids kept compactly and losslessly: cells exactly 0, 1 or NaN as bits, every other value as it is."""
+"""Grids kept compactly and losslessly: occupancy as bit masks of its exact 0, 1 and NaN cells, arrival years as codes."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import numpy as np
 
 from envelope.errors import InputError
 
-__all__ = ["PackedGrid", "PackedSnapshots", "pack_grid"]
+__all__ = ["CodedGrid", "PackedGrid", "PackedSnapshots", "code_grid", "pack_grid"]
 
 # Cells handled per pass while packing or unpacking: the temporaries stay a few MB whatever
 # the grid's size. A multiple of 8, so that the bit masks of the chunks join end to end.
@@ -124,3 +124,55 @@ class PackedSnapshots(Mapping):
 
     def __len__(self):
         return len(self._packed)
+
+
+class CodedGrid:
+    """A float grid of few distinct values as ``uint8`` / ``uint16`` codes into a sorted table of them.
+
+    Meant for arrival-year grids, whose cells hold one of a few step years or NaN: 1 or 2
+    bytes a cell instead of 4 or 8. :meth:`values` gives back the very values coded (every
+    NaN as the table's one NaN).
+    """
+
+    __slots__ = ("codes", "table")
+
+    def __init__(self, codes: np.ndarray, table: np.ndarray):
+        self.codes, self.table = codes, table
+
+    @property
+    def shape(self) -> tuple:
+        return self.codes.shape
+
+    @property
+    def nbytes(self) -> int:
+        return int(self.codes.nbytes + self.table.nbytes)
+
+    def values(self, rows=slice(None), *, nan=None) -> np.ndarray:
+        """The grid's rows ``rows`` as a new array; ``nan``, when given, stands in for NaN."""
+        table = self.table if nan is None else np.where(np.isnan(self.table), nan, self.table).astype(self.table.dtype)
+        return table[self.codes[rows]]
+
+
+def code_grid(values, max_levels: int = 65_535) -> CodedGrid | None:
+    """Code a 2-D float grid (:class:`CodedGrid`), or None when it holds more than ``max_levels``
+    distinct values (NaN counted once); the grid itself is not kept or changed."""
+    import pandas as pd
+
+    a = np.asarray(values)
+    if a.ndim != 2 or a.dtype.kind != "f":
+        raise InputError(f"values must be a 2-D float grid, got {a.ndim}-D {a.dtype}")
+    flat = a.reshape(-1)
+    distinct, has_nan = set(), False
+    for lo in range(0, flat.size, _CHUNK_CELLS):  # hashing, not sorting: one linear pass
+        found = pd.unique(flat[lo:lo + _CHUNK_CELLS])
+        nan = np.isnan(found)
+        has_nan |= bool(nan.any())
+        distinct.update(found[~nan].tolist())
+        if len(distinct) + has_nan > max_levels:
+            return None
+    # NaN last, where searchsorted puts it
+    table = np.array(sorted(distinct) + ([np.nan] if has_nan else []), dtype=a.dtype)
+    codes = np.empty(flat.size, dtype=np.uint8 if table.size <= 256 else np.uint16)
+    for lo in range(0, flat.size, _CHUNK_CELLS):
+        codes[lo:lo + _CHUNK_CELLS] = np.searchsorted(table, flat[lo:lo + _CHUNK_CELLS])
+    return CodedGrid(codes.reshape(a.shape), table)

@@ -72,9 +72,9 @@ def run_reach_set(inputs_by_method: dict, *, pathway: str, distances_km, replica
     :class:`envelope.reach_runs.ReachRunSet` (its runs labelled ``method``, ``climate_model``,
     ``pathway``, ``distance_km``).
     """
-    from envelope.reach_runs import combine_reach_runs
+    from envelope.reach_runs import ReachRunCombiner
 
-    results, labels = [], []
+    combiner = ReachRunCombiner()  # each result is combined as it comes, then dropped: no grid set per path
     k = 0
     for method, inputs in inputs_by_method.items():
         for climate_model, futures in inputs.futures.items():
@@ -84,11 +84,11 @@ def run_reach_set(inputs_by_method: dict, *, pathway: str, distances_km, replica
                 settings = replace(inputs.settings, mean_distance_km=float(d), mean_distance_range_km=None)
                 result = simulate_reach(inputs.now, futures, inputs.habitat, inputs.start, threshold=inputs.threshold,
                                         settings=settings, replicates=replicates, seed=seed + k, **inputs.timing())
-                results.append(result)
-                labels.append({"method": method, "climate_model": climate_model, "pathway": pathway,
-                               "distance_km": float(d)})
+                combiner.add(result, {"method": method, "climate_model": climate_model, "pathway": pathway,
+                                      "distance_km": float(d)})
+                del result
                 k += 1
-    combined = combine_reach_runs(results, labels)
+    combined = combiner.result()
     first = next(iter(inputs_by_method.values()))
     combined.summary["start"] = first.start_info
     combined.summary["inputs"] = dict(first.inputs)

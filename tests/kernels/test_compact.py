@@ -100,3 +100,30 @@ def test_snapshots_mapping():
 def test_bad_input(values):
     with pytest.raises(InputError, match="values must be a 2-D float32 or float64 grid"):
         pack_grid(values)
+
+
+@pytest.mark.parametrize("chunk", [7, 1 << 22])
+def test_coded_grid_gives_back_the_values(chunk, monkeypatch):
+    # Analytic: an arrival-year grid (a few step years and NaN) coded as uint8 codes into its
+    # sorted distinct values comes back value for value; with ``nan`` the NaN cells read as it.
+    monkeypatch.setattr(compact, "_CHUNK_CELLS", chunk)
+    rng = np.random.default_rng(3)
+    years = rng.choice(np.array([2020, 2025, 2030, 2042.5, np.nan], dtype=np.float32), size=(23, 17))
+    coded = compact.code_grid(years)
+    assert coded.codes.dtype == np.uint8 and coded.codes.shape == years.shape
+    assert coded.table.tolist()[:4] == [2020, 2025, 2030, 2042.5] and np.isnan(coded.table[-1])
+    np.testing.assert_array_equal(coded.values(), years)
+    np.testing.assert_array_equal(coded.values(slice(2, 5), nan=np.inf), np.where(np.isnan(years), np.inf, years)[2:5])
+    assert coded.nbytes < years.nbytes
+
+
+def test_coded_grid_widens_then_gives_up():
+    # Analytic: 300 distinct values need uint16 codes; more than max_levels gives None (the
+    # caller keeps the grid as it is); a grid that is not 2-D float is refused.
+    grid = np.arange(600, dtype=np.float64).reshape(20, 30) % 300
+    coded = compact.code_grid(grid)
+    assert coded.codes.dtype == np.uint16
+    np.testing.assert_array_equal(coded.values(), grid)
+    assert compact.code_grid(grid, max_levels=299) is None
+    with pytest.raises(InputError, match="2-D float grid"):
+        compact.code_grid(np.zeros((3, 3), dtype=np.int32))
