@@ -166,7 +166,9 @@ class ReachRunCombiner:
             counts[1] += 1
 
     def result(self) -> ReachRunSet:
-        """The combination of every result added (:func:`combine_reach_runs`)."""
+        """The combination of every result added (:func:`combine_reach_runs`); once (its grids are handed over)."""
+        if self._first is not None and self._share is None:
+            raise RuntimeError("ReachRunCombiner.result() was already called; make a new combiner for another set")
         if self._first is None:
             raise InputError("combine_reach_runs: 0 results and 0 label rows; expected at least one result and one "
                              "label row each")

@@ -139,6 +139,8 @@ def test_combiner_drops_each_result_and_equals_the_list(monkeypatch):
         np.testing.assert_array_equal(getattr(got, name).values, getattr(expected, name).values)
     assert got.summary == expected.summary and got.front == expected.front
     assert got.runs.equals(expected.runs)
+    with pytest.raises(RuntimeError, match="already called"):
+        combiner.result()
     with pytest.raises(InputError, match="at least one result"):
         ReachRunCombiner().result()
 
