@@ -1,6 +1,6 @@
 """The figures the tutorial and the user guide quote, generated from a run of the demo study so that the docs cannot drift.
 
-    python docs/figures.py                 # run the demo into a temporary folder, rewrite the blocks
+    python docs/figures.py                 # run the demo into a temporary folder, rewrite the blocks and pictures
     python docs/figures.py --run-dir DIR   # use a finished demo run
     python docs/figures.py --check         # exit 1 when the docs differ from a fresh run
 
