@@ -127,6 +127,9 @@ class ReachRunCombiner:
         """Take one reach result (see :func:`combine_reach_runs`) labelled ``label``."""
         if not isinstance(result, ReachResult) or not result.runs:
             raise InputError(f"combine_reach_runs: run {label}: expected a ReachResult with its runs")
+        if self._first is not None and result.classes.shape != self._first.classes.shape:
+            raise InputError(f"combine_reach_runs: run {label}: grid of {result.classes.shape} cells, the first "
+                             f"run's is {self._first.classes.shape}; expected every run on the same grid")
         for k, run in enumerate(result.runs):
             self.rows.append({**label, "replicate": k if result.summary["replicates"] else None, **run["area_km2"],
                               "reached_share_of_gain": run["reached_share_of_gain"],

@@ -159,3 +159,13 @@ def test_combiner_counts_widen_past_their_type(monkeypatch):
     assert many.front == two.front and any(f["geometry"]["coordinates"] for f in two.front["features"])
     np.testing.assert_array_equal(many.probability.values, two.probability.values)
     np.testing.assert_array_equal(many.classes.values, r.classes.values)
+
+
+def test_combiner_refuses_runs_on_another_grid():
+    # Common practice, no source: runs on different grids cannot be combined cell by cell; the
+    # error names the run and both shapes instead of a NumPy broadcasting error.
+    now, fut, hab, start = corridor()
+    r = run(now, fut, hab, start)
+    small = run(now.isel(x=slice(0, -1)), fut.isel(x=slice(0, -1)), hab.isel(x=slice(0, -1)), start[:, :-1])
+    with pytest.raises(InputError, match=r"run \{'k': 1\}: grid of .* the first run's is"):
+        combine_reach_runs([r, small], [{"k": 0}, {"k": 1}])
