@@ -36,7 +36,9 @@ def species_row(name: str, layout: RunLayout, pathways) -> dict:
     the centroid shift are medians over the climate models of the change table (first
     method); the reached share of the gain with its 5 and 95 % interval and the front advance
     come from the pathway's reach summary (medians and ``intervals`` over its runs); ``cv_auc``
-    is the mean AUC over the spatial cross-validation folds of the first method.
+    is the mean AUC over the spatial cross-validation folds of the first method. ``method``
+    names that first method and ``reach_methods`` the methods of the reach runs, so the table
+    itself says where its two kinds of column come from.
     """
     fit = json.loads(layout.fit_summary().read_text())
     row = {"species": name, "range_now_km2": math.nan}
@@ -59,7 +61,13 @@ def species_row(name: str, layout: RunLayout, pathways) -> dict:
         row[f"front_advance_km.{p}"] = _number(s.get("front_advance_km"))
         row[f"centroid_shift_km.{p}"] = _median(last["centroid_shift_km"]) if have else math.nan
     cv = fit["cv"]
-    row.update({"cv_auc": _number(cv.get("auc_mean")), "cv_auc_sd": _number(cv.get("auc_sd")),
+    reach_methods = set()
+    for p in pathways:
+        summary_path = layout.reach_set(p)["summary"]
+        if summary_path.is_file():
+            reach_methods |= set(json.loads(summary_path.read_text()).get("runs_by", {}).get("method", []))
+    row.update({"method": str(fit.get("method", "")), "reach_methods": "+".join(sorted(reach_methods)),
+                "cv_auc": _number(cv.get("auc_mean")), "cv_auc_sd": _number(cv.get("auc_sd")),
                 "n_presences": int(fit["n_presences"]), "horizon": horizon if horizon is not None else math.nan,
                 "folder": layout.run_dir.parent.name + "/" + layout.run_dir.name})
     return row

@@ -169,6 +169,8 @@ def test_species_summary_holds_each_species_numbers(local_run):
         last = change[change["horizon"] == 2080].set_index("pathway")
         fit = json.loads((folder / "models" / "pointprocess.fit.json").read_text())
         assert row["cv_auc"] == pytest.approx(fit["cv"]["auc_mean"], rel=1e-12)
+        # the table names its sources: the fit's method, and the methods of the reach runs
+        assert row["method"] == fit["method"] == "pointprocess" and row["reach_methods"] == "pointprocess"
         assert row["range_now_km2"] == pytest.approx(change["range_km2.now"].iloc[0], rel=1e-12)
         for p in ("high", "low"):
             runs = pd.read_csv(folder / "reach" / f"{p}_runs.csv")
