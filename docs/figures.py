@@ -164,6 +164,14 @@ class Demo:
         self.layout = RunLayout.of(self.study, run_dir)
 
     @cached_property
+    def land(self):
+        """The demo's land mask, the coast of every picture."""
+        from envelope.io.rasters import open_layer
+        from envelope.study.demo import demo_dir
+
+        return open_layer(demo_dir() / "landmask.tif").load()
+
+    @cached_property
     def fit(self) -> dict:
         return json.loads(self.layout.fit_summary().read_text())
 
@@ -723,20 +731,13 @@ def guide_rerun(run: Demo) -> str:
 
 
 # ---------------------------------------------------------------------- pictures
-def _land(run: Demo):
-    from envelope.io.rasters import open_layer
-    from envelope.study.demo import demo_dir
-
-    return open_layer(demo_dir() / "landmask.tif").load()
-
-
 @picture("tutorial-suitability-now.png")
 def suitability_now_picture(run: Demo):
     from envelope import figures
     from envelope.io.rasters import open_layer
 
     return figures.map_continuous(open_layer(run.layout.now).load(), title="Demo: suitability today (fictional island)",
-                                  label="suitability (relative)", vmin=0, vmax=1, land_mask=_land(run),
+                                  label="suitability (relative)", vmin=0, vmax=1, land_mask=run.land,
                                   threshold_contour=round(run.fit["threshold"]["value"], 3))
 
 
@@ -749,7 +750,7 @@ def reach_high_picture(run: Demo):
 
     classes = open_layer(run.layout.reach("high")["classes"], categorical=True).load()
     return figures.map_classes(classes.where(classes != 255), REACH_CLASSES, colours=REACH_CLASS_COLOURS,
-                               title=f"Demo: reach classes by {run.last_horizon}, pathway high", land_mask=_land(run))
+                               title=f"Demo: reach classes by {run.last_horizon}, pathway high", land_mask=run.land)
 
 
 @picture("tutorial-arrival-high.png")
@@ -758,7 +759,7 @@ def arrival_high_picture(run: Demo):
     from envelope.io.rasters import open_layer
 
     return figures.map_arrival(open_layer(run.layout.reach("high")["arrival"]).load(),
-                               title="Demo: first year occupied, pathway high", land_mask=_land(run))
+                               title="Demo: first year occupied, pathway high", land_mask=run.land)
 
 
 def pictures(run_dir, out_dir) -> dict:

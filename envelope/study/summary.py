@@ -44,6 +44,7 @@ def species_row(name: str, layout: RunLayout, pathways) -> dict:
     row = {"species": name, "range_now_km2": math.nan}
     change = pd.read_csv(layout.change_table) if layout.change_table.is_file() else None
     horizon = None
+    reach_methods = set()
     if change is not None and len(change):
         horizon = int(change["horizon"].max())
         row["range_now_km2"] = _median(change["range_km2.now"])
@@ -54,6 +55,7 @@ def species_row(name: str, layout: RunLayout, pathways) -> dict:
         row[f"gained_km2.{p}"] = _median(last["area_km2.gained_total"]) if have else math.nan
         summary_path = layout.reach_set(p)["summary"]
         s = json.loads(summary_path.read_text()) if summary_path.is_file() else {}
+        reach_methods |= set(s.get("runs_by", {}).get("method", []))
         share_iv = s.get("intervals", {}).get("reached_share_of_gain") or {}
         row[f"reached_share.{p}"] = _number(s.get("reached_share_of_gain"))
         row[f"reached_share_p05.{p}"] = _number(share_iv.get("p05"))
@@ -61,11 +63,6 @@ def species_row(name: str, layout: RunLayout, pathways) -> dict:
         row[f"front_advance_km.{p}"] = _number(s.get("front_advance_km"))
         row[f"centroid_shift_km.{p}"] = _median(last["centroid_shift_km"]) if have else math.nan
     cv = fit["cv"]
-    reach_methods = set()
-    for p in pathways:
-        summary_path = layout.reach_set(p)["summary"]
-        if summary_path.is_file():
-            reach_methods |= set(json.loads(summary_path.read_text()).get("runs_by", {}).get("method", []))
     row.update({"method": str(fit.get("method", "")), "reach_methods": "+".join(sorted(reach_methods)),
                 "cv_auc": _number(cv.get("auc_mean")), "cv_auc_sd": _number(cv.get("auc_sd")),
                 "n_presences": int(fit["n_presences"]), "horizon": horizon if horizon is not None else math.nan,
