@@ -363,12 +363,16 @@ def _remove_stage(stage: Path) -> None:
         Path(str(stage) + ".aux.xml").unlink()
 
 
+_COG_PREDICTOR = {1: "NO", 2: "STANDARD", 3: "FLOATING_POINT"}
+
+
 def _cog_options(floating: bool, block: int, predictor: int | None = None) -> dict:
     """GDAL COG driver options of every GeoTIFF output (overview options apart): DEFLATE at
     :data:`DEFLATE_LEVEL`, ``predictor`` or 3 (float) / 2 (integer), ``block``-cell tiles,
     AVERAGE (float) or NEAREST overviews, compressed on every usable core."""
     return {"driver": "COG", "COMPRESS": "DEFLATE", "LEVEL": str(DEFLATE_LEVEL),
-            "PREDICTOR": str(predictor or (3 if floating else 2)), "BLOCKSIZE": str(block),
+            # the COG driver names "no predictor" NO (a "1" works too, with a warning per file)
+            "PREDICTOR": _COG_PREDICTOR[predictor or (3 if floating else 2)], "BLOCKSIZE": str(block),
             "RESAMPLING": "AVERAGE" if floating else "NEAREST", "BIGTIFF": "IF_SAFER",
             "NUM_THREADS": str(usable_cores())}
 
