@@ -473,17 +473,17 @@ def _read_named(layer: ClimateLayer, *, time, chunks) -> xr.DataArray:
     band = layer.band
     if band is None:
         if len(names) != 1:
-            raise InputError(f"--climate {layer}: {layer.path} holds {len(names)} layers ({', '.join(names)}); "
+            raise InputError(f"{layer}: {layer.path} holds {len(names)} layers ({', '.join(names)}); "
                              f"name one with {layer.name}={layer.path}:BAND (a band number or name)")
         index = 0
     elif isinstance(band, int):
         if not 1 <= band <= len(names):
-            raise InputError(f"--climate {layer}: band {band} does not exist ({layer.path} has bands 1..{len(names)})")
+            raise InputError(f"{layer}: band {band} does not exist (the file has bands 1..{len(names)})")
         index = band - 1
     elif band in names:
         index = names.index(band)
     else:
-        raise InputError(f"--climate {layer}: {layer.path} has no band or variable {band!r} "
+        raise InputError(f"{layer}: {layer.path} has no band or variable {band!r} "
                          f"(it holds {', '.join(names)})")
     if len(names) > 1:
         part = (part.isel(variable=[index]) if raster_format(layer.path) == "NetCDF"

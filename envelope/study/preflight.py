@@ -72,6 +72,9 @@ def check_study_grids(study) -> None:
     try:
         baseline = open_climate(list(study.climate.baseline))
     except (InputError, GridMismatchError) as exc:
+        for layer in study.climate.baseline:  # a [climate.layers] entry's fault names its own key
+            if hasattr(layer, "name") and str(exc).startswith(f"{layer}: "):
+                fail(InputError(str(exc).removeprefix(f"{layer}: ")), f"climate.layers.{layer.name}", layer.path)
         fail(exc, baseline_key, ", ".join(map(str, study.climate.baseline)))
     have = [str(v) for v in baseline["variable"].values]
     wanted = list(study.climate.variables) if study.climate.variables else have

@@ -636,6 +636,18 @@ def _dispersal(c: _Checker, doc, needed: bool) -> DispersalSection | None:
     )
 
 
+def _check_step_span(c: _Checker, step_years: float, now_year: float, last_horizon: int) -> None:
+    """A dispersal step longer than the whole span would take no step before the last horizon.
+
+    Checked here, with the study's own key names, so the run stops before any model is fitted
+    (:func:`envelope.reach.check_timing` checks the same for the command line).
+    """
+    span = last_horizon - now_year
+    if step_years > span + 1e-9:
+        c.fail("dispersal.step_years", f"expected at most {span:g} (the years from climate.now_year = "
+                                       f"{now_year:g} to the last horizon {last_horizon}), got {step_years:g}")
+
+
 def _outputs(c: _Checker, doc) -> OutputsSection:
     t = c.table(doc, "outputs", _OUTPUTS) or {}
     flags = {k: c.boolean(f"outputs.{k}", t.get(k, True)) for k in _OUTPUTS if k != "format"}
@@ -734,6 +746,8 @@ def load_study(path) -> Study:
     dispersal = _dispersal(c, doc, outputs.reach)
     if dispersal is not None and dispersal.start is None:
         dispersal = replace(dispersal, start=records.path)
+    if dispersal is not None and scenarios:
+        _check_step_span(c, dispersal.step_years, climate.now_year, max(s.horizon for s in scenarios))
     from envelope.study.observed import margins_section
 
     return Study(file, study, records, climate, model, scenario_set, scenarios, habitat, dispersal,

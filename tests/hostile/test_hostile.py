@@ -101,6 +101,9 @@ def data(tmp_path_factory):
     (d / "unknown_key.toml").write_text(study.replace("[model]\n", "[model]\nmethod = 'brt'\n", 1))
     (d / "negative_seed.toml").write_text(study.replace("seed = 0", "seed = -1", 1))
     (d / "missing_records.toml").write_text(study.replace(f"{demo}/presences.csv", f"{demo}/nothere.csv", 1))
+    (d / "step_past_horizon.toml").write_text(study.replace("step_years = 5", "step_years = 1e300", 1))
+    (d / "layer_band_missing.toml").write_text(study.replace("now_year = 2020\n", "now_year = 2020\n[climate.layers]\n"
+                                                             f"bio5 = \"{demo}/baseline.tif:9\"\n", 1))
     (d / "tiny_study.toml").write_text(f"""[study]
 name = "hostile corpus"
 
