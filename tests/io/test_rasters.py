@@ -193,6 +193,29 @@ def test_netcdf_projected_xy_with_grid_mapping(tmp_path):
         open_climate(_nc(tmp_path / "bare.nc", bare))
 
 
+def test_netcdf_regular_grid_given_as_2d_lat_lon(tmp_path):
+    """A regular grid whose only coordinates are CF auxiliary 2-D lat(y, x) / lon(y, x)
+    (CF conventions 1.8, section 5.2) reads as the same grid written with 1-D axes."""
+    lat = np.array([40.5, 41.5, 42.5])
+    lon = np.array([200.5, 201.5, 202.5, 203.5])
+    values = RNG.normal(size=(3, 4)).astype("float32")
+    one_d = open_climate(_nc(tmp_path / "one_d.nc", _lat_lon_ds(lat, lon, t=values)))
+    lon2, lat2 = np.meshgrid(lon, lat)
+    ds = xr.Dataset({"t": (("y", "x"), values, {"units": "degC", "coordinates": "lat lon"})},
+                    coords={"lat": (("y", "x"), lat2, {"units": "degrees_north", "standard_name": "latitude"}),
+                            "lon": (("y", "x"), lon2, {"units": "degrees_east", "standard_name": "longitude"})})
+    two_d = open_climate(_nc(tmp_path / "two_d.nc", ds))
+    # Source: the 1-D file above, read by the same reader (values, axes, CRS and transform equal)
+    np.testing.assert_array_equal(two_d.values, one_d.values)
+    np.testing.assert_array_equal(two_d["x"].values, one_d["x"].values)
+    np.testing.assert_array_equal(two_d["y"].values, one_d["y"].values)
+    assert two_d.rio.crs == one_d.rio.crs and two_d.rio.transform() == one_d.rio.transform()
+    # a curvilinear grid (rows not of one latitude) is refused, naming what to do
+    ds["lat"] = (("y", "x"), lat2 + 0.01 * lon2, ds["lat"].attrs)
+    with pytest.raises(InputError, match=r"curved\.nc: a curvilinear grid .*regrid it first"):
+        open_climate(_nc(tmp_path / "curved.nc", ds))
+
+
 @pytest.mark.parametrize("content, phrase", [
     # Common practice, no source: bad inputs give one line naming the path and what was expected
     (None, "file not found"), (b"", "file is empty"), (b"not a raster at all\n", "not a readable"),
