@@ -599,9 +599,16 @@ def clean_occurrences(
     bad = ~(np.isfinite(x_record) & np.isfinite(y_record))
     if MALFORMED_FLAG in table.columns:
         bad |= table[MALFORMED_FLAG].fillna(False).to_numpy(dtype=bool)
+    range_hint = ""
     if record_crs.is_geographic:
         with np.errstate(invalid="ignore"):
-            bad |= (np.abs(x_record) > 180) | (np.abs(y_record) > 90)
+            out_of_range = (np.abs(x_record) > 180) | (np.abs(y_record) > 90)
+            swapped_fits = out_of_range & (np.abs(y_record) <= 180) & (np.abs(x_record) <= 90)
+        bad |= out_of_range
+        swapped_fits &= code == 0
+        if swapped_fits.any():
+            range_hint = (f"; {int(swapped_fits.sum())} records have a latitude beyond ±90 that would be a valid "
+                          "longitude: are the longitude and latitude columns swapped?")
     drop(bad, "malformed")
 
     if max_uncertainty_m is not None:
@@ -677,6 +684,7 @@ def clean_occurrences(
     kept = code == 0
     log.info("%s: read %d, kept %d; dropped %s", source, n, int(kept.sum()), _format_counts(dropped))
     if not kept.any():
+        hint = hint or (range_hint if dropped["malformed"] * 2 > n else "")
         raise InputError(f"{source}: no records left after cleaning (read {n}; dropped {_format_counts(dropped)}){hint}")
 
     out = pd.DataFrame({

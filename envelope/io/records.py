@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import codecs
 import csv
+import logging
 import os
+import re
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +25,10 @@ _SNIFF_BYTES = 1 << 16
 MAX_BROKEN_SHARE = 0.05
 MAX_BROKEN_ROWS = 2
 _SUFFIX_DELIMITERS = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": "\t"}
+#: A degree value written with a decimal comma (European spreadsheet exports): ``-144,17368``.
+_DECIMAL_COMMA = re.compile(r"^[+-]?\d+,\d+$")
+
+log = logging.getLogger(__name__)
 
 
 def read_occurrences(
@@ -117,6 +123,12 @@ def read_occurrences(
             hint = "" if user_columns else " (or name them with x_column/y_column and crs)"
             raise InputError(f"{path}: no column {name!r}; columns found: {found}{hint}")
 
+    comma = record_crs.is_geographic and any(_has_decimal_commas(table[c]) for c in (x_column, y_column))
+    if comma:
+        log.warning("%s: coordinates written with a decimal comma (-144,17) are read as decimal degrees", path)
+        for name in (x_column, y_column):
+            table[name] = _comma_to_point(table[name])
+        read_info = {**read_info, "decimal_comma": True}
     x = to_float(table[x_column])
     y = to_float(table[y_column])
     usable_xy = np.isfinite(x) & np.isfinite(y)
@@ -137,9 +149,23 @@ def read_occurrences(
     return table
 
 
+def _has_decimal_commas(column: pd.Series) -> bool:
+    """Whether a coordinate column is written with decimal commas: no value holds a point and
+    most non-empty values are ``digits,digits``. Only for degrees, which cannot carry thousands
+    separators (|value| <= 180), so the comma there is never a grouping mark."""
+    text = column.dropna().astype(str)
+    if text.empty or text.str.contains(".", regex=False).any():
+        return False
+    return int(text.map(lambda v: bool(_DECIMAL_COMMA.match(v))).sum()) * 2 >= len(text)
+
+
+def _comma_to_point(column: pd.Series) -> pd.Series:
+    return column.map(lambda v: v.replace(",", ".") if isinstance(v, str) and _DECIMAL_COMMA.match(v) else v)
+
+
 def _read_delimited(path: Path, delimiter):
     """Header, rows, line numbers, wrong-length flags and a description of a delimited text file."""
-    text, bom = _read_text(path)
+    text, encoding, bom = _read_text(path)
     if not text.strip():
         raise InputError(f"{path}: file is empty; expected a header line naming the columns "
                          f"(e.g. {DWC_LONGITUDE},{DWC_LATITUDE})")
@@ -170,29 +196,50 @@ def _read_delimited(path: Path, delimiter):
         raise InputError(f"{path}: {n_broken} of {len(rows)} records have a wrong number of fields or broken quotes "
                          f"(first at line {first}); expected {len(header)} {_delimiter_name(delimiter)}-separated "
                          "fields per line. Is the delimiter or the quoting wrong?")
-    info = {"format": "delimited text", "delimiter": delimiter, "encoding": "UTF-8", "byte_order_mark": bom}
+    info = {"format": "delimited text", "delimiter": delimiter, "encoding": encoding, "byte_order_mark": bom}
     return header, rows, lines, wrong_length, info
 
 
-def _read_text(path: Path) -> str:
+def _read_text(path: Path) -> tuple[str, str, bool]:
+    """The text of a delimited file, its encoding's name and whether it starts with a byte-order mark.
+
+    UTF-8 (with or without a byte-order mark) and UTF-16 with a byte-order mark (a spreadsheet's
+    "Unicode text" export) are read as such. Other text that is not UTF-8 is read as
+    Windows-1252, the default of spreadsheet CSV exports on Western European systems, with a
+    warning: its digits and Latin letters are the same in every such code page, but accented
+    letters in names may not be. A file with other NUL bytes is binary and refused.
+    """
     if not path.exists():
         raise InputError(f"{path}: file not found; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
     if path.is_dir():
         raise InputError(f"{path}: is a folder; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
     if not path.is_file():  # a device (/dev/zero), a pipe or a socket: never read whole
         raise InputError(f"{path}: not a regular file; expected an occurrence table (CSV, TSV or Darwin Core Archive)")
+    expected = "expected a UTF-8 CSV or TSV file, or a Darwin Core Archive (zip with meta.xml)"
     with open(path, "rb") as fh:
         head = fh.read(_SNIFF_BYTES)
+        if head.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+            data = head + fh.read()
+            try:
+                return data.decode("utf-16"), "UTF-16", True
+            except UnicodeDecodeError as exc:
+                raise InputError(f"{path}: starts with a UTF-16 byte-order mark but is not UTF-16 text "
+                                 f"(byte {exc.start}); {expected}") from None
         nul = head.find(b"\0")
         if nul >= 0:
-            raise InputError(f"{path}: binary data (a NUL byte at byte {nul}), not text; "
-                             "expected a UTF-8 CSV or TSV file, or a Darwin Core Archive (zip with meta.xml)")
+            raise InputError(f"{path}: binary data (a NUL byte at byte {nul}), not text; {expected}")
         data = head + fh.read()
     try:
-        return data.decode("utf-8-sig"), data.startswith(codecs.BOM_UTF8)
+        return data.decode("utf-8-sig"), "UTF-8", data.startswith(codecs.BOM_UTF8)
     except UnicodeDecodeError as exc:
-        raise InputError(f"{path}: not UTF-8 text (byte {exc.start}); expected a UTF-8 CSV or TSV file, "
-                         "or a Darwin Core Archive (zip with meta.xml)") from None
+        first = exc.start
+    try:
+        text = data.decode("cp1252")
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: not UTF-8 text (byte {first}), nor Windows-1252; {expected}") from None
+    log.warning("%s: not UTF-8 (byte %d); read as Windows-1252 -- check accented letters in names, or save "
+                "the file as UTF-8", path, first)
+    return text, "Windows-1252", False
 
 
 def _rows(text: str, delimiter: str):

@@ -188,3 +188,64 @@ def test_a_device_is_not_read(tmp_path):
     path.write_bytes(b"decimalLongitude,decimalLatitude\n\x00\x01\x02")
     with pytest.raises(InputError, match="bin.csv: binary data"):
         read_occurrences(path)
+
+
+SPREADSHEET_ROWS = ("occurrenceID;scientificName;decimalLongitude;decimalLatitude\n"
+                    "r1;Aus bus (Müller, 1880);-149,95;44,95\n"
+                    "r2;Aus bus (Müller, 1880);-149,85;44,85\n")
+
+
+@pytest.mark.parametrize("encoding, label, bom", [("utf-16", "UTF-16", True), ("cp1252", "Windows-1252", False)])
+def test_spreadsheet_encodings_read_as_their_text(tmp_path, encoding, label, bom):
+    # Source: Python's codecs (the same text written in UTF-8 is the reference). A spreadsheet's
+    # "Unicode text" export is UTF-16 with a byte-order mark; Western European CSV exports are
+    # Windows-1252 (common practice, no source).
+    text = ("occurrenceID\tscientificName\tdecimalLongitude\tdecimalLatitude\n"
+            "r1\tAus bus (Müller, 1880)\t-149.95\t44.95\nr2\tAus bus (Müller, 1880)\t-149.85\t44.85\n")
+    reference = read_occurrences(write(tmp_path, "ref.txt", text))
+    path = tmp_path / f"{encoding}.txt"
+    path.write_bytes(text.encode(encoding))
+    table = read_occurrences(path)
+    assert table.attrs["read"]["encoding"] == label and table.attrs["read"]["byte_order_mark"] is bom
+    assert table["scientificName"].tolist() == ["Aus bus (Müller, 1880)"] * 2
+    np.testing.assert_array_equal(table["x_record"], reference["x_record"])
+    np.testing.assert_array_equal(table["y_record"], reference["y_record"])
+
+
+def test_bytes_undefined_in_windows_1252_are_refused(tmp_path):
+    # Source: the Windows-1252 code page leaves 0x81, 0x8D, 0x8F, 0x90 and 0x9D undefined
+    path = tmp_path / "odd.csv"
+    path.write_bytes(b"decimalLongitude,decimalLatitude,name\n-149.5,44.5,a\x81b\n")
+    with pytest.raises(InputError, match=r"odd\.csv: not UTF-8 text \(byte 51\), nor Windows-1252") as info:
+        read_occurrences(path)
+    one_line_error(info)
+
+
+def test_decimal_comma_degrees(tmp_path):
+    # Common practice, no source: European spreadsheets write degrees with a decimal comma,
+    # semicolon-separated or quoted; degrees (|value| <= 180) never carry thousands separators.
+    semi = read_occurrences(write(tmp_path, "semi.csv", SPREADSHEET_ROWS))
+    quoted = read_occurrences(write(tmp_path, "quoted.csv", 'decimalLongitude,decimalLatitude\n"-149,95","44,95"\n'
+                                                             '"-149,85","44,85"\n'))
+    for table in (semi, quoted):
+        assert table.attrs["read"]["decimal_comma"] is True
+        np.testing.assert_array_equal(table["x_record"], [-149.95, -149.85])
+        np.testing.assert_array_equal(table["y_record"], [44.95, 44.85])
+        assert not table["malformed"].any()
+    # projected metres may carry thousands separators: a comma there is not read as a decimal mark
+    with pytest.raises(InputError, match="none of the 1 records has usable coordinates"):
+        read_occurrences(write(tmp_path, "metres.csv", 'e;n\n405,000;4980,000\n'),
+                         x_column="e", y_column="n", crs="EPSG:32606")
+    # a column that also holds decimal points is left as written: its comma row is malformed
+    mixed = read_occurrences(write(tmp_path, "mixed.csv", "decimalLongitude;decimalLatitude\n-149.95;44.95\n"
+                                                          "-149,85;44,85\n"))
+    assert mixed["malformed"].tolist() == [False, True] and "decimal_comma" not in mixed.attrs["read"]
+
+
+def test_swapped_coordinate_columns_are_named_in_the_error(tmp_path):
+    # Common practice, no source: latitudes beyond ±90 that would be valid longitudes suggest swapped columns
+    path = write(tmp_path, "swapped.csv", "decimalLongitude,decimalLatitude\n44.95,-149.95\n44.85,-149.85\n")
+    grid = make_stack()
+    with pytest.raises(InputError, match=r"2 records have a latitude beyond ±90 .*columns swapped\?") as info:
+        clean_occurrences(read_occurrences(path), grid)
+    one_line_error(info)
