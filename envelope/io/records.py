@@ -109,6 +109,9 @@ def read_occurrences(
         header, rows, lines, wrong_length, read_info = core.columns, core.rows, core.lines, core.wrong_length, core.info
         if not rows:
             raise InputError(f"{path}: the archive's core file {core.info['core']} holds no records")
+    elif path.suffix.lower() == ".zip" and path.is_file():
+        raise InputError(f"{path}: not a zip archive (damaged or not a download); expected a Darwin Core "
+                         "Archive zip with a meta.xml, or a CSV/TSV file")
     else:
         header, rows, lines, wrong_length, read_info = _read_delimited(path, delimiter)
     table = pd.DataFrame(rows, columns=header, dtype=object)

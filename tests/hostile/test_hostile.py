@@ -91,6 +91,9 @@ def data(tmp_path_factory):
         f"r{i},{'9' * 140_000},45.0,present\n" for i in range(3)))
     (d / "binary.csv").write_bytes(b"decimalLongitude,decimalLatitude\n" + bytes(range(256)) * 4)
     (d / "header_only.csv").write_text(lines[0] + "\n")
+    (d / "not_a_zip.zip").write_text("not a zip")
+    (d / "swapped.csv").write_text("decimalLongitude,decimalLatitude\n" + "".join(
+        f"{y:.5f},{x:.5f}\n" for x, y in zip(lon, lat)))
     (d / "no_coords.csv").write_text("id,name\n1,a\n2,b\n")
     (d / "deep.toml").write_text("a = " + "[" * 5000 + "]" * 5000 + "\n")
     (d / "bad_syntax.toml").write_text("[study\nname = 'x'\n")
