@@ -78,9 +78,9 @@ def bioclim(tmin, tmax, prec, tmean, out, period, variables, gdd_base, wrap, ddo
     Examples:
       $ envelope bioclim --tmin tmin.tif --tmax tmax.tif --prec prec.tif --out bio.tif
       $ envelope bioclim --tmin t.nc --tmax T.nc --prec p.nc --out bio.tif --variables BIO1,BIO12,GDD5
-      $ envelope bioclim --tmin 'tasmin_*.nc' --tmax 'tasmax_*.nc' --prec 'pr_*.nc' \
+      $ envelope bioclim --tmin 'tasmin_*.nc' --tmax 'tasmax_*.nc' --prec 'pr_*.nc' \\
           --period 1991-2020 --out bio_1991_2020.tif
-      $ envelope bioclim --tmin tasmin_1991-2000.nc --tmin tasmin_2001-2010.nc --tmin tasmin_2011-2020.nc \
+      $ envelope bioclim --tmin tasmin_1991-2000.nc --tmin tasmin_2001-2010.nc --tmin tasmin_2011-2020.nc \\
           --tmax 'tasmax_*.nc' --prec 'pr_*.nc' --period 1991-2020 --out bio.tif
     """
     from envelope.io.atomic import check_distinct

@@ -43,3 +43,16 @@ def test_unknown_command_is_usage_error():
     result = CliRunner().invoke(cli, ["no-such-command"])
     assert result.exit_code == 2
     assert "No such command" in result.output
+
+
+def test_every_command_help_has_examples_each_on_its_own_lines():
+    # Common practice, no source: each command's --help shows examples; a continued example line
+    # ends in a backslash (a lone backslash in a docstring would join the lines with a run of spaces)
+    import re
+
+    for name in main_mod.COMMANDS:
+        result = CliRunner().invoke(cli, [name, "--help"])
+        assert result.exit_code == 0, name
+        assert "$ envelope " + name in result.output, name
+        for line in result.output.splitlines():
+            assert not re.search(r"\S {4,}--", line.strip()), f"{name}: {line.strip()}"
