@@ -169,7 +169,7 @@ def _temperature_offset(units: str, where: str) -> float:
 
 def _check_files(files, role, requested, hint):
     """Per file: the variable, its units and the calendar; one calendar and one unit for the series."""
-    variables, calendars, units = [], {}, {}
+    variables, calendars, units, months = [], {}, {}, {}
     for path in files:
         with _header(path) as ds:
             name = series_variable(ds, path, role=role, requested=requested, hint=hint)
@@ -184,12 +184,15 @@ def _check_files(files, role, requested, hint):
             calendars[path] = _calendar(ds[tdim].attrs) if tdim in ds.variables else "standard"
             units[path] = unit
             variables.append(name)
+            if len(files) > 1 and tdim in ds.variables:
+                months[path] = _file_months(ds[tdim], calendars[path], path)
     if len(set(calendars.values())) > 1:
         seen = {}
         for path, cal in calendars.items():
             seen.setdefault(cal, path)
         detail = ", ".join(f"{p.name} {c}" for c, p in seen.items())
         raise InputError(f"{files[0].parent}: mixed calendars in one series ({detail}); expected one calendar")
+    _check_no_overlap(months, files)
     if len(set(units.values())) > 1:
         detail = ", ".join(f"{p.name} {u!r}" for p, u in list(units.items())[:3])
         raise InputError(f"{files[0]}: units differ between the files of one series ({detail}); expected one")
@@ -197,6 +200,37 @@ def _check_files(files, role, requested, hint):
         raise InputError(f"{files[0]}: the files name the variable differently ({', '.join(sorted(set(variables)))}); "
                          "expected one variable per series (give --variable)")
     return variables[0], next(iter(calendars.values())), next(iter(units.values()))
+
+
+def _file_months(time: xr.DataArray, calendar: str, path) -> set:
+    """The (year * 12 + month - 1) keys of a file's undecoded time steps, decoded with cftime."""
+    import cftime
+
+    units = time.attrs.get("units")
+    if not units:
+        raise InputError(f"{path}: time has no units attribute; expected CF time units such as "
+                         "'days since 1850-01-01'")
+    try:
+        dates = cftime.num2date(np.atleast_1d(np.asarray(time.values)), units, calendar)
+    except Exception as exc:  # noqa: BLE001 - cftime raises ValueError/TypeError on unusable units
+        raise InputError(f"{path}: time units {units!r} with calendar {calendar!r} cannot be decoded ({exc}); "
+                         "expected CF time units such as 'days since 1850-01-01'") from None
+    return {d.year * 12 + d.month - 1 for d in np.ravel(dates)}
+
+
+def _check_no_overlap(months: dict, files) -> None:
+    """Two files of one series must not hold the same month: combining them would keep one
+    file's values without saying so (a second version of a file, or another ensemble member,
+    matched by the same glob pattern)."""
+    seen = {}
+    for path in files:
+        for key in sorted(months.get(path, ())):
+            if key in seen:
+                raise InputError(f"{path}: month {_month_label(key // 12, key % 12 + 1)} is also in "
+                                 f"{seen[key].name}; expected each month in one file of the series (does a "
+                                 "pattern match two versions or ensemble members?)")
+        for key in months.get(path, ()):
+            seen[key] = path
 
 
 def _open_series(files, name, chunks):

@@ -176,6 +176,22 @@ def test_bad_series_one_line_errors(tmp_path):
         parse_period("1991")
 
 
+def test_two_files_holding_the_same_months_are_refused(tmp_path):
+    # Common practice, no source: a glob that matches a second version of a decade file (or another
+    # ensemble member) must not be combined silently. Before this check, xarray's combine kept one
+    # file's values for the shared months (found by probing: BIO1 moved by 1.25 degC without a word).
+    first = write_series(tmp_path / "tas_1991-2000.nc", range(1991, 2001), lambda y, m: 280.0)
+    write_series(tmp_path / "tas_1991-2000_v2.nc", range(1991, 2001), lambda y, m: 285.0)
+    write_series(tmp_path / "tas_2001-2010.nc", range(2001, 2011), lambda y, m: 280.0)
+    with pytest.raises(InputError, match=r"tas_1991-2000_v2\.nc: month 1991-01 is also in tas_1991-2000\.nc; "
+                                         r"expected each month in one file") as info:
+        open_monthly_series(str(tmp_path / "tas_*.nc"), name="t", period=(1991, 2010))
+    assert "\n" not in str(info.value)
+    # the two decade files alone combine, and give the analytic climatology (280 K = 6.85 degC + cell pattern)
+    clim = open_monthly_series([first, tmp_path / "tas_2001-2010.nc"], name="t", period=(1991, 2010))
+    np.testing.assert_allclose(clim.values[:, 0, 0], 280.0 - 273.15, atol=1e-5)  # float32 output
+
+
 # ------------------------------------------------------------------ commands
 
 
