@@ -26,7 +26,7 @@ MAX_BROKEN_SHARE = 0.05
 MAX_BROKEN_ROWS = 2
 _SUFFIX_DELIMITERS = {".csv": ",", ".tsv": "\t", ".tab": "\t", ".txt": "\t"}
 #: A degree value written with a decimal comma (European spreadsheet exports): ``-144,17368``.
-_DECIMAL_COMMA = re.compile(r"^[+-]?\d+,\d+$")
+_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+")
 
 log = logging.getLogger(__name__)
 
@@ -159,11 +159,11 @@ def _has_decimal_commas(column: pd.Series) -> bool:
     text = column.dropna().astype(str)
     if text.empty or text.str.contains(".", regex=False).any():
         return False
-    return int(text.map(lambda v: bool(_DECIMAL_COMMA.match(v))).sum()) * 2 >= len(text)
+    return int(text.str.fullmatch(_DECIMAL_COMMA).sum()) * 2 >= len(text)
 
 
 def _comma_to_point(column: pd.Series) -> pd.Series:
-    return column.map(lambda v: v.replace(",", ".") if isinstance(v, str) and _DECIMAL_COMMA.match(v) else v)
+    return column.mask(column.str.fullmatch(_DECIMAL_COMMA).fillna(False), column.str.replace(",", ".", regex=False))
 
 
 def _read_delimited(path: Path, delimiter):

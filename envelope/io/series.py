@@ -224,13 +224,14 @@ def _check_no_overlap(months: dict, files) -> None:
     matched by the same glob pattern)."""
     seen = {}
     for path in files:
-        for key in sorted(months.get(path, ())):
-            if key in seen:
-                raise InputError(f"{path}: month {_month_label(key // 12, key % 12 + 1)} is also in "
-                                 f"{seen[key].name}; expected each month in one file of the series (does a "
-                                 "pattern match two versions or ensemble members?)")
-        for key in months.get(path, ()):
-            seen[key] = path
+        held = months.get(path, set())
+        shared = sorted(held & seen.keys())
+        if shared:
+            key = shared[0]
+            raise InputError(f"{path}: month {_month_label(key // 12, key % 12 + 1)} is also in "
+                             f"{seen[key].name}; expected each month in one file of the series (does a "
+                             "pattern match two versions or ensemble members?)")
+        seen.update(dict.fromkeys(held, path))
 
 
 def _open_series(files, name, chunks):
