@@ -163,7 +163,7 @@ def _has_decimal_commas(column: pd.Series) -> bool:
 
 
 def _comma_to_point(column: pd.Series) -> pd.Series:
-    return column.mask(column.str.fullmatch(_DECIMAL_COMMA).fillna(False), column.str.replace(",", ".", regex=False))
+    return column.map(lambda v: v.replace(",", ".") if isinstance(v, str) and _DECIMAL_COMMA.fullmatch(v) else v)
 
 
 def _read_delimited(path: Path, delimiter):
