@@ -12,12 +12,29 @@ class InputError(EnvelopeError, ValueError):
     """
 
 
+class LayerError(InputError):
+    """A fault in one named climate layer (``NAME=PATH[:BAND]``).
+
+    ``layer`` is the layer (an :class:`envelope.io.layers.ClimateLayer`) and ``detail`` the
+    fault without the layer's name, so a caller can name the layer its own way (a study key).
+    """
+
+    def __init__(self, message, layer=None, detail=None):
+        super().__init__(message)
+        self.layer = layer
+        self.detail = message if detail is None else detail
+
+
 class GridMismatchError(InputError):
     """Two grids that must share CRS, transform and shape do not; the message names the first difference."""
 
 
 class ModelError(EnvelopeError):
     """A model is not fitted, or a model file is foreign, tampered with or of an unknown version."""
+
+
+class LayerGridMismatchError(LayerError, GridMismatchError):
+    """A named climate layer is not on the grid of the first one."""
 
 
 class OutputExistsError(InputError):

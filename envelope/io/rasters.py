@@ -11,7 +11,7 @@ import numpy as np
 import xarray as xr
 import rioxarray  # noqa: F401  (registers .rio)
 
-from envelope.errors import InputError
+from envelope.errors import GridMismatchError, InputError, LayerError, LayerGridMismatchError
 from envelope.io.layers import ClimateLayer
 
 log = logging.getLogger(__name__)
@@ -471,10 +471,16 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
         raise InputError(f"climate: no files given ({_EXPECTED})")
     parts = []
     for path in items:
-        part = _read_named(path, time=time, chunks=chunks) if isinstance(path, ClimateLayer) else \
-            _read(path, time=time, chunks=chunks)
-        if parts:
-            check_same_grid(parts[0], part, ref_name=str(items[0]), other_name=str(path))
+        try:
+            part = _read_named(path, time=time, chunks=chunks) if isinstance(path, ClimateLayer) else \
+                _read(path, time=time, chunks=chunks)
+            if parts:
+                check_same_grid(parts[0], part, ref_name=str(items[0]), other_name=str(path))
+        except InputError as exc:
+            if not isinstance(path, ClimateLayer) or isinstance(exc, LayerError):
+                raise
+            detail = str(exc).removeprefix(f"{path}: ").removeprefix(f"{path.path}: ")
+            raise _layer_error(path, detail, grid=isinstance(exc, GridMismatchError)) from None
         parts.append(part)
     per_file = [[str(v) for v in part["variable"].values] for part in parts]
     names = [n for file_names in per_file for n in file_names]
@@ -506,6 +512,11 @@ def open_climate(paths, *, variables=None, rename=None, time=None, chunks="auto"
     return stack.rio.write_crs(parts[0].rio.crs)
 
 
+def _layer_error(layer: ClimateLayer, detail: str, grid: bool = False) -> LayerError:
+    kind = LayerGridMismatchError if grid else LayerError
+    return kind(f"{layer}: {detail}", layer=layer, detail=detail)
+
+
 def _read_named(layer: ClimateLayer, *, time, chunks) -> xr.DataArray:
     """One band of a file as a one-variable stack named ``layer.name``; only that band is ever read."""
     part = _read(layer.path, time=time, chunks=chunks)
@@ -513,18 +524,17 @@ def _read_named(layer: ClimateLayer, *, time, chunks) -> xr.DataArray:
     band = layer.band
     if band is None:
         if len(names) != 1:
-            raise InputError(f"{layer}: {layer.path} holds {len(names)} layers ({', '.join(names)}); "
-                             f"name one with {layer.name}={layer.path}:BAND (a band number or name)")
+            raise _layer_error(layer, f"holds {len(names)} layers ({', '.join(names)}); "
+                                      f"name one with {layer.name}={layer.path}:BAND (a band number or name)")
         index = 0
     elif isinstance(band, int):
         if not 1 <= band <= len(names):
-            raise InputError(f"{layer}: band {band} does not exist (the file has bands 1..{len(names)})")
+            raise _layer_error(layer, f"band {band} does not exist (the file has bands 1..{len(names)})")
         index = band - 1
     elif band in names:
         index = names.index(band)
     else:
-        raise InputError(f"{layer}: {layer.path} has no band or variable {band!r} "
-                         f"(it holds {', '.join(names)})")
+        raise _layer_error(layer, f"has no band or variable {band!r} (it holds {', '.join(names)})")
     if len(names) > 1:
         part = (part.isel(variable=[index]) if raster_format(layer.path) == "NetCDF"
                 else _read(layer.path, time=time, chunks=chunks, bands=[index]))

@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from envelope.errors import GridMismatchError, InputError
+from envelope.errors import GridMismatchError, InputError, LayerError
 
 __all__ = ["check_run_folder", "check_study_grids", "study_inputs"]
 
@@ -71,10 +71,10 @@ def check_study_grids(study) -> None:
     baseline_key = "climate.baseline"
     try:
         baseline = open_climate(list(study.climate.baseline))
+    except LayerError as exc:  # a [climate.layers] entry's fault names its own key
+        kind = GridMismatchError if isinstance(exc, GridMismatchError) else InputError
+        fail(kind(exc.detail), f"climate.layers.{exc.layer.name}", exc.layer.path)
     except (InputError, GridMismatchError) as exc:
-        for layer in study.climate.baseline:  # a [climate.layers] entry's fault names its own key
-            if hasattr(layer, "name") and str(exc).startswith(f"{layer}: "):
-                fail(InputError(str(exc).removeprefix(f"{layer}: ")), f"climate.layers.{layer.name}", layer.path)
         fail(exc, baseline_key, ", ".join(map(str, study.climate.baseline)))
     have = [str(v) for v in baseline["variable"].values]
     wanted = list(study.climate.variables) if study.climate.variables else have

@@ -107,6 +107,8 @@ def data(tmp_path_factory):
     (d / "step_past_horizon.toml").write_text(study.replace("step_years = 5", "step_years = 1e300", 1))
     (d / "layer_band_missing.toml").write_text(study.replace("now_year = 2020\n", "now_year = 2020\n[climate.layers]\n"
                                                              f"bio5 = \"{demo}/baseline.tif:9\"\n", 1))
+    (d / "layer_other_grid.toml").write_text(study.replace("now_year = 2020\n", "now_year = 2020\n[climate.layers]\n"
+                                                           f"bio5 = \"{d}/climate.tif:1\"\n", 1))
     (d / "tiny_study.toml").write_text(f"""[study]
 name = "hostile corpus"
 

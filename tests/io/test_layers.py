@@ -5,7 +5,7 @@ import pytest
 import xarray as xr
 import rioxarray  # noqa: F401
 
-from envelope.errors import GridMismatchError, InputError
+from envelope.errors import GridMismatchError, InputError, LayerError
 from envelope.grids import match_variables
 from envelope.io.layers import ClimateLayer, parse_layer, read_layer_table
 from envelope.io.rasters import open_climate
@@ -69,6 +69,22 @@ def test_layer_on_another_grid_names_both_files_and_the_difference(files):
     shifted = _write(folder / "shifted.tif", np.full((3, 4), 2.0), lon0=-149.0)
     with pytest.raises(GridMismatchError, match=r"bio6=.*shifted.tif: origin/transform .* differs from bio5=.*tmax"):
         open_climate([ClimateLayer("bio5", a), ClimateLayer("bio6", shifted)])
+
+
+def test_layer_faults_carry_their_layer(files):
+    # Our own contract: a caller (the study preflight) names the layer by its key from
+    # exc.layer and exc.detail, not by parsing the message.
+    folder, a, stack = files
+    shifted = _write(folder / "shifted2.tif", np.full((3, 4), 2.0), lon0=-149.0)
+    cases = [(ClimateLayer("bio12", stack, 3), "band 3 does not exist"),
+             (ClimateLayer("bio6", shifted), "origin/transform"),
+             (ClimateLayer("bio7", folder / "gone.tif"), "file not found")]
+    for layer, detail in cases:
+        with pytest.raises(LayerError) as info:
+            open_climate([ClimateLayer("bio5", a), layer])
+        assert info.value.layer == layer
+        assert detail in info.value.detail and not info.value.detail.startswith(str(layer))
+        assert str(info.value).startswith(f"{layer}: ")
 
 
 def test_model_variable_missing_names_both_sides_and_the_fix(files):

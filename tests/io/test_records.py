@@ -240,6 +240,12 @@ def test_decimal_comma_degrees(tmp_path):
     mixed = read_occurrences(write(tmp_path, "mixed.csv", "decimalLongitude;decimalLatitude\n-149.95;44.95\n"
                                                           "-149,85;44,85\n"))
     assert mixed["malformed"].tolist() == [False, True] and "decimal_comma" not in mixed.attrs["read"]
+    # an empty coordinate field beside decimal-comma rows marks only its own row malformed
+    gaps = read_occurrences(write(tmp_path, "gaps.csv", "decimalLongitude;decimalLatitude\n-149,95;44,95\n"
+                                                         ";44,90\n-149,85;\n-149,80;44,80\n"))
+    assert gaps.attrs["read"]["decimal_comma"] is True
+    assert gaps["malformed"].tolist() == [False, True, True, False]
+    np.testing.assert_array_equal(gaps["x_record"][[0, 3]], [-149.95, -149.80])
 
 
 def test_swapped_coordinate_columns_are_named_in_the_error(tmp_path):
