@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import warnings
 
 import numpy as np
@@ -15,8 +16,16 @@ from envelope.projection import KERNEL_CELLS, map_cells
 
 __all__ = ["bioclim", "check_monthly", "check_monthly_grids"]
 
+log = logging.getLogger(__name__)
+
 # Plausible monthly temperatures in °C; beyond this the stack is probably kelvin or °C x 10.
 _MAX_ABS_CELSIUS = 100.0
+# Plausible monthly precipitation totals in mm. The wettest calendar month on record is about
+# 9,300 mm (from memory: Cherrapunji, July 1861), so more than 10,000 mm in one cell-month means
+# scaled integers (mm x 10, x 100) read without their scale. A stack whose wettest cell-month
+# holds under 1 mm is kept but warned about: a rate in kg m-2 s-1 labelled mm/day or mm looks so.
+_MAX_MONTHLY_MM = 10_000.0
+_MIN_WETTEST_MM = 1.0
 
 
 def _check_monthly_dims(da, name):
@@ -53,6 +62,9 @@ def check_monthly(tmin, tmax, prec, tmean=None, *, names=None) -> None:
       files are the usual cause, and BIO2/BIO3/BIO7 would be meaningless.
     - negative precipitation is an error, with the count.
     - |temperature| above 100 is an error: the stack is probably kelvin or °C x 10.
+    - a monthly total above 10,000 mm is an error (scaled integers read without their
+      scale); a stack whose wettest cell-month holds under 1 mm is logged as a warning
+      (a per-second rate labelled mm/day or mm).
 
     Parameters
     ----------
@@ -71,12 +83,22 @@ def check_monthly(tmin, tmax, prec, tmean=None, *, names=None) -> None:
     lazy = {
         "swapped": (tmin > tmax).sum(),
         "negative": (prec < 0).sum(),
+        "wettest": prec.max(),
         **{f"abs_{k}": abs(v).max() for k, v in temps.items()},
     }
     values = dict(zip(lazy, dask.compute(*[v.data for v in lazy.values()])))
     if int(values["negative"]):
         raise InputError(f"{names['prec']}: {int(values['negative'])} cell-months of negative precipitation; "
                          "expected monthly totals >= 0 mm")
+    wettest = float(values["wettest"])
+    if np.isfinite(wettest) and wettest > _MAX_MONTHLY_MM:
+        raise InputError(f"{names['prec']}: precipitation up to {wettest:g} mm in one month; expected monthly "
+                         f"totals in mm, at most {_MAX_MONTHLY_MM:g} (the wettest month on record is about "
+                         "9,300 mm): is the stack stored as scaled integers (mm x 10 or x 100)?")
+    if np.isfinite(wettest) and wettest < _MIN_WETTEST_MM:
+        log.warning("%s: the wettest cell-month holds %.3g mm; expected monthly totals in mm -- check the units "
+                    "(a rate in kg m-2 s-1 labelled mm/day or mm reads 86,400 times too small)", names["prec"],
+                    wettest)
     for role in temps:
         big = float(values[f"abs_{role}"])
         if np.isfinite(big) and big > _MAX_ABS_CELSIUS:

@@ -107,6 +107,19 @@ def test_value_checks_name_the_file():
     check_monthly(monthly(TMIN, chunks=True), monthly(TMAX, chunks=True), monthly(PREC, chunks=True))
 
 
+def test_precipitation_plausibility(caplog):
+    # From memory: the wettest calendar month on record is about 9,300 mm (Cherrapunji, July
+    # 1861), so 10,000 mm in one month is scaled integers; kg m-2 s-1 read as mm is 86,400x small.
+    tenfold = monthly(PREC) * 10 + 10_001.0
+    with pytest.raises(InputError, match=r"p\.tif: precipitation up to .* mm in one month; .*scaled integers"):
+        check_monthly(monthly(TMIN), monthly(TMAX), tenfold, names={"prec": "p.tif"})
+    with caplog.at_level("WARNING", logger="envelope.bioclim"):
+        check_monthly(monthly(TMIN), monthly(TMAX), monthly(PREC), names={"prec": "p.tif"})
+        assert not caplog.records
+        check_monthly(monthly(TMIN), monthly(TMAX), monthly(PREC) / 86_400 / 30, names={"prec": "p.tif"})
+    assert len(caplog.records) == 1 and "p.tif: the wettest cell-month holds" in caplog.records[0].getMessage()
+
+
 def _numpy_reference(tmin, tmax, prec, tmean=None, *, wrap=True, ddof=0, cv_plus_one=False, gdd_base=5.0):
     """The DS 691 definitions (REFERENCES item 5) in plain NumPy on cell-major float64 copies
     (y, x, month), the layout xarray.apply_ufunc hands a kernel: float64 (variable, y, x).
