@@ -604,11 +604,15 @@ def clean_occurrences(
         with np.errstate(invalid="ignore"):
             out_of_range = (np.abs(x_record) > 180) | (np.abs(y_record) > 90)
             swapped_fits = out_of_range & (np.abs(y_record) <= 180) & (np.abs(x_record) <= 90)
+            east = out_of_range & (x_record > 180) & (x_record <= 360) & (np.abs(y_record) <= 90) & (code == 0)
         bad |= out_of_range
         swapped_fits &= code == 0
         if swapped_fits.any():
             range_hint = (f"; {int(swapped_fits.sum())} records have a latitude beyond ±90 that would be a valid "
                           "longitude: are the longitude and latitude columns swapped?")
+        elif east.any():
+            range_hint = (f"; {int(east.sum())} records have a longitude in 180..360 (degrees east from 0 to 360?): "
+                          "longitudes are read from -180 to 180, so subtract 360 from those above 180")
     drop(bad, "malformed")
 
     if max_uncertainty_m is not None:
@@ -683,6 +687,8 @@ def clean_occurrences(
     dropped = OrderedDict((reason, int(np.count_nonzero(code == k + 1))) for k, reason in enumerate(DROP_REASONS))
     kept = code == 0
     log.info("%s: read %d, kept %d; dropped %s", source, n, int(kept.sum()), _format_counts(dropped))
+    if kept.any() and range_hint:
+        log.warning("%s: %d records dropped as malformed%s", source, dropped["malformed"], range_hint)
     if not kept.any():
         hint = hint or (range_hint if dropped["malformed"] * 2 > n else "")
         raise InputError(f"{source}: no records left after cleaning (read {n}; dropped {_format_counts(dropped)}){hint}")

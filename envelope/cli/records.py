@@ -30,8 +30,9 @@ def records(records_path, climate, x_column, y_column, crs, max_uncertainty_m, r
             absences, out, overwrite, as_json):
     """Clean occurrence records against a climate grid and report what was dropped.
 
-    Reads occurrence records: a CSV/TSV (Darwin Core decimalLongitude/decimalLatitude, or
-    named columns with a stated CRS; UTF-8 with or without a byte-order mark, UTF-16
+    Reads occurrence records: a CSV/TSV (Darwin Core decimalLongitude/decimalLatitude,
+    else degrees under plain names such as longitude/latitude or lon/lat, or named columns
+    with a stated CRS; UTF-8 with or without a byte-order mark, UTF-16
     with one, else Windows-1252; degrees with decimal commas are read) or a Darwin Core
     Archive zip as occurrence portals deliver it (its meta.xml names the core file and columns).
     Places each record on the grid, and drops records of other taxa (--species), absences
@@ -100,5 +101,6 @@ def _read_line(info: dict) -> str:
     if info:
         return (f"Read delimited text: {info.get('rows')} rows, delimiter {info.get('delimiter')!r}, "
                 f"{info.get('encoding')}" + (" with a byte-order mark" if info.get("byte_order_mark") else "")
-                + (", decimal commas" if info.get("decimal_comma") else ""))
+                + (", decimal commas" if info.get("decimal_comma") else "")
+                + (", degrees from columns {}/{}".format(*info["degree_columns"]) if info.get("degree_columns") else ""))
     return ""

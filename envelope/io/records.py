@@ -43,7 +43,10 @@ def read_occurrences(
 
     Coordinates come from the Darwin Core columns ``decimalLongitude``/``decimalLatitude``
     (EPSG:4326 implied; names matched regardless of case), or from ``x_column``/``y_column``
-    with a stated ``crs``. Other Darwin Core terms are kept and read by the cleaning
+    with a stated ``crs``. A table without the Darwin Core columns whose coordinates sit under
+    a plain name (``longitude``/``latitude``, ``lon``/``lat``, ``long``/``lat``, ``lng``/``lat``,
+    any case) is read from those, in degrees of ``crs`` (EPSG:4326 by default), and says so
+    in the log and in ``attrs["read"]["degree_columns"]``. Other Darwin Core terms are kept and read by the cleaning
     (``coordinateUncertaintyInMeters``, ``eventDate``, ``year``, ``occurrenceStatus``,
     ``basisOfRecord``, ``occurrenceID``); every other column is kept as text.
 
@@ -120,6 +123,12 @@ def read_occurrences(
 
     if x_column is None:
         x_column, y_column = DWC_LONGITUDE, DWC_LATITUDE
+        plain = _plain_degree_columns(table) if record_crs.is_geographic else None
+        if plain is not None and not {DWC_LONGITUDE, DWC_LATITUDE} & set(table.columns):
+            x_column, y_column = plain
+            log.info("%s: no %s/%s columns; reading %r/%r as longitude/latitude in %s", path, DWC_LONGITUDE,
+                     DWC_LATITUDE, x_column, y_column, crs_label(record_crs))
+            read_info = {**read_info, "degree_columns": [x_column, y_column]}
     for name in (x_column, y_column):
         if name not in table.columns:
             found = ", ".join(map(str, header))
@@ -150,6 +159,22 @@ def read_occurrences(
     table.attrs = {"source": str(path), "crs": crs_label(record_crs), "x_column": x_column, "y_column": y_column,
                    "read": {**read_info, "rows": len(table)}}
     return table
+
+
+# Column pairs that hold degrees under a plain name (matched regardless of case), most explicit first.
+_PLAIN_DEGREE_COLUMNS = (("longitude", "latitude"), ("lon", "lat"), ("long", "lat"), ("lng", "lat"))
+
+
+def _plain_degree_columns(table: pd.DataFrame) -> tuple[str, str] | None:
+    """The first pair of :data:`_PLAIN_DEGREE_COLUMNS` in ``table``, as the table spells it; None if none
+    (or if a name is ambiguous, two columns differing only in case)."""
+    by_lower = {}
+    for column in table.columns:
+        by_lower.setdefault(str(column).lower(), []).append(str(column))
+    for lon, lat in _PLAIN_DEGREE_COLUMNS:
+        if len(by_lower.get(lon, ())) == 1 and len(by_lower.get(lat, ())) == 1:
+            return by_lower[lon][0], by_lower[lat][0]
+    return None
 
 
 def _has_decimal_commas(column: pd.Series) -> bool:

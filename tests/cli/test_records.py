@@ -83,7 +83,7 @@ def test_refuses_to_overwrite(tmp_path, grid_tif):
 
 
 @pytest.mark.parametrize("text, phrase", [
-    ("id,lon,lat\n1,-149.5,44.5\n", "columns found: id, lon, lat"),
+    ("id,xcoord,ycoord\n1,-149.5,44.5\n", "columns found: id, xcoord, ycoord"),
     ("decimalLongitude,decimalLatitude\neast,north\nwest,south\n", "none of the 2 records has usable coordinates"),
     ("", "file is empty"),
     (HEADER, "holds a header but no records"),

@@ -113,12 +113,31 @@ def test_no_header(tmp_path):
 
 def test_missing_coordinate_columns_lists_what_exists(tmp_path):
     # Common practice, no source: the message lists the columns found so the user can name them.
-    path = write(tmp_path, "cols.csv", "id,lon,lat\n1,-149.5,44.5\n")
-    with pytest.raises(InputError, match=r"no column 'decimalLongitude'; columns found: id, lon, lat") as info:
+    path = write(tmp_path, "cols.csv", "id,xcoord,ycoord\n1,-149.5,44.5\n")
+    with pytest.raises(InputError, match=r"no column 'decimalLongitude'; columns found: id, xcoord, ycoord") as info:
         read_occurrences(path)
     assert "cols.csv" in one_line_error(info)
     with pytest.raises(InputError, match="no column 'northing'"):
-        read_occurrences(path, x_column="lon", y_column="northing", crs="EPSG:4326")
+        read_occurrences(path, x_column="xcoord", y_column="northing", crs="EPSG:4326")
+
+
+@pytest.mark.parametrize("names", [("Longitude", "Latitude"), ("lon", "lat"), ("LONG", "LAT"), ("lng", "lat")])
+def test_plain_degree_column_names(tmp_path, names):
+    # Common practice, no source: museum and field spreadsheets name degree columns plainly
+    path = write(tmp_path, "plain.csv", f"id,{names[0]},{names[1]}\n1,-149.5,44.5\n2,-149.4,44.4\n")
+    table = read_occurrences(path)
+    assert (table.attrs["x_column"], table.attrs["y_column"]) == names
+    assert table.attrs["read"]["degree_columns"] == list(names) and table.attrs["crs"] == "EPSG:4326"
+    np.testing.assert_array_equal(table["x_record"], [-149.5, -149.4])
+    # Darwin Core columns win over plain names; a projected CRS never takes plain names as degrees
+    both = read_occurrences(write(tmp_path, "both.csv", f"decimalLongitude,decimalLatitude,{names[0]},{names[1]}\n"
+                                                         "-149.5,44.5,0,0\n"))
+    assert both.attrs["x_column"] == "decimalLongitude" and "degree_columns" not in both.attrs["read"]
+    with pytest.raises(InputError, match="no column 'decimalLongitude'"):
+        read_occurrences(path, crs="EPSG:32606")
+    # two columns differing only in case are ambiguous: nothing is guessed
+    with pytest.raises(InputError, match="no column 'decimalLongitude'"):
+        read_occurrences(write(tmp_path, "twice.csv", "lon,LON,lat\n-149.5,-149.5,44.5\n"))
 
 
 @pytest.mark.parametrize("crs", ["EPSG:999999", "not a crs", "+proj=nonsense"])
@@ -246,6 +265,22 @@ def test_decimal_comma_degrees(tmp_path):
     assert gaps.attrs["read"]["decimal_comma"] is True
     assert gaps["malformed"].tolist() == [False, True, True, False]
     np.testing.assert_array_equal(gaps["x_record"][[0, 3]], [-149.95, -149.80])
+
+
+def test_longitudes_0_to_360_are_named(tmp_path, caplog):
+    # Source: Darwin Core decimalLongitude is -180..180 (TDWG term definition); longitudes
+    # counted 0..360 east are a frequent slip from climate-model grids (common practice).
+    grid = make_stack()
+    east = write(tmp_path, "east.csv", "decimalLongitude,decimalLatitude\n210.05,44.95\n210.15,44.85\n")
+    with pytest.raises(InputError, match=r"2 records have a longitude in 180\.\.360 .*subtract 360") as info:
+        clean_occurrences(read_occurrences(east), grid)
+    one_line_error(info)
+    some = write(tmp_path, "some.csv", "decimalLongitude,decimalLatitude\n-149.95,44.95\n210.15,44.85\n")
+    with caplog.at_level("WARNING", logger="envelope.records"):
+        kept = clean_occurrences(read_occurrences(some), grid)
+    assert len(kept.table) == 1 and kept.dropped["malformed"] == 1
+    assert any("1 records dropped as malformed; 1 records have a longitude in 180..360" in r.getMessage()
+               for r in caplog.records)
 
 
 def test_swapped_coordinate_columns_are_named_in_the_error(tmp_path):
