@@ -161,7 +161,10 @@ def interpolate_factors(factors: xr.DataArray, target: xr.DataArray, *, model_na
     outside = ~((ry >= edges[0]) & (ry <= edges[1]) & (rx >= edges[2]) & (rx <= edges[3]))
     if outside.any():
         i = int(np.argmax(outside))
-        raise InputError(f"{model_name}: does not cover the baseline grid (e.g. point x={rx[i]:.4g}, y={ry[i]:.4g} "
+        px = float(rx[i])
+        if geographic:  # the point's longitude as near the model's as it can be written (not a turn away)
+            px -= 360.0 * np.round((px - 0.5 * (edges[2] + edges[3])) / 360.0)
+        raise InputError(f"{model_name}: does not cover the baseline grid (e.g. point x={px:.4g}, y={ry[i]:.4g} "
                          f"in the model CRS; model covers x {edges[2]:.4g}..{edges[3]:.4g}, "
                          f"y {edges[0]:.4g}..{edges[1]:.4g})")
 

@@ -148,3 +148,8 @@ def test_bad_model_grids_are_named():
     small_h, small_f = model_pair(rng, np.arange(30, 36, 2.0), np.arange(-130, -124, 2.0), 1.0)
     with pytest.raises(InputError, match="hist.nc: does not cover the baseline grid"):
         delta(base, small_h, small_f, method="additive", names={"historical": "hist.nc"})
+    # the point is written as near the model's longitudes as it can be (-119.9, not 240.1 a turn away)
+    east_h, east_f = model_pair(rng, np.arange(30, 50, 2.0), np.arange(250, 260, 2.0), 1.0)
+    with pytest.raises(InputError, match=r"does not cover the baseline grid \(e\.g\. point x=-119\.9, .*"
+                                         r"model covers x -111\.\.-101"):
+        delta(base, east_h, east_f, method="additive", names={"historical": "hist.nc"})

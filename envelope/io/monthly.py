@@ -12,6 +12,7 @@ import xarray as xr
 
 from envelope.errors import InputError
 from envelope.grids import continuous_longitudes
+from envelope.io.cf_coords import axes_from_2d_latlon, degree_axes
 
 __all__ = ["gridded_variables", "open_monthly", "write_monthly", "TEMPERATURE", "PRECIPITATION", "MONTH_VARIABLES",
            "kind_of_units"]
@@ -169,7 +170,7 @@ def _open_month_variables(path, chunks):
 
 
 def _open_netcdf(path, chunks, name, variable):
-    ds = _open_dataset(path, chunks)
+    ds = axes_from_2d_latlon(_open_dataset(path, chunks), path)
     if (variable is None and not any(ds[v].ndim >= 3 for v in ds.data_vars)
             and all(m in ds.data_vars for m in MONTH_VARIABLES)):
         ds.close()
@@ -177,7 +178,7 @@ def _open_netcdf(path, chunks, name, variable):
     da = _pick_variable(ds, path, name, variable)
     xdim = find_dim(da, X_NAMES, "x", path)
     ydim = find_dim(da, Y_NAMES, "y", path)
-    geographic = str(xdim).lower() in ("lon", "longitude") or str(ydim).lower() in ("lat", "latitude")
+    geographic = degree_axes(da, xdim, ydim)
     mdim = "month" if "month" in da.dims else ("time" if "time" in da.dims else None)
     if mdim is None or ydim not in da.dims or xdim not in da.dims:
         raise InputError(f"{path}: dims {da.dims}; expected a month or time dim and y/x or lat/lon")

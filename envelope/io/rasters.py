@@ -12,6 +12,7 @@ import xarray as xr
 import rioxarray  # noqa: F401  (registers .rio)
 
 from envelope.errors import GridMismatchError, InputError, LayerError, LayerGridMismatchError
+from envelope.io.cf_coords import axes_from_2d_latlon
 from envelope.io.layers import ClimateLayer
 
 log = logging.getLogger(__name__)
@@ -321,7 +322,7 @@ def _read_netcdf(path: Path, *, time, chunks, categorical: bool) -> xr.DataArray
         ds = xr.open_dataset(path, chunks=chunks, mask_and_scale=True, decode_coords=True)
     except Exception as exc:  # noqa: BLE001 - netCDF4/h5 raise OSError, ValueError...
         raise InputError(f"{path}: not a readable NetCDF file ({type(exc).__name__}; {_EXPECTED})") from None
-    ds = _axes_from_2d_latlon(ds, path)
+    ds = axes_from_2d_latlon(ds, path)
     layers, names, units = [], [], []
     xname = yname = crs = None
     for name, var in ds.data_vars.items():
@@ -360,45 +361,6 @@ def _read_netcdf(path: Path, *, time, chunks, categorical: bool) -> xr.DataArray
     out.attrs = {k: v if isinstance(v, str) else json.dumps(v, default=str)
                  for k, v in ds.attrs.items() if isinstance(v, (str, int, float))}
     return out
-
-
-def _axes_from_2d_latlon(ds: xr.Dataset, path) -> xr.Dataset:
-    """Give 1-D lon/lat axes to a grid whose only coordinates are 2-D latitude and longitude.
-
-    Some deliveries write a regular latitude-longitude grid as 2-D ``lat(y, x)`` and
-    ``lon(y, x)`` on dimensions without coordinate values (CF auxiliary coordinates). When
-    latitude is constant along each row and longitude along each column, the grid is regular
-    and its axes are the first column and row. A curvilinear grid (a rotated pole or a
-    model's native mesh written only as 2-D lat/lon) cannot be read as cells of one CRS and
-    is refused with what to do instead.
-    """
-    def two_d(kind):
-        for name, var in ds.coords.items():
-            if var.ndim == 2 and (var.attrs.get("standard_name") == kind
-                                  or str(name).lower() in {"latitude": ("lat", "latitude"),
-                                                           "longitude": ("lon", "longitude")}[kind]):
-                return var
-        return None
-
-    lat, lon = two_d("latitude"), two_d("longitude")
-    if lat is None or lon is None or lat.dims != lon.dims:
-        return ds
-    ydim, xdim = lat.dims
-    if ydim in ds.variables or xdim in ds.variables:
-        return ds  # the dims have their own axes (projected x/y); lat/lon are only auxiliary
-    la, lo = np.asarray(lat.values, dtype=np.float64), np.asarray(lon.values, dtype=np.float64)
-    tol = 1e-6 * max(1.0, float(np.nanmax(np.abs(np.diff(la[:, 0])), initial=0.0)),
-                     float(np.nanmax(np.abs(np.diff(lo[0, :])), initial=0.0)))
-    if not (np.all(np.isfinite(la)) and np.all(np.isfinite(lo))
-            and np.nanmax(np.abs(la - la[:, :1])) <= tol and np.nanmax(np.abs(lo - lo[:1, :])) <= tol):
-        raise InputError(f"{path}: a curvilinear grid ({lat.name}({ydim}, {xdim}) and {lon.name}({ydim}, {xdim}) "
-                         "vary along both axes); expected a regular grid: regrid it first (for example "
-                         "bilinearly onto a regular latitude-longitude grid)")
-    ds = ds.drop_vars([lat.name, lon.name])
-    return ds.assign_coords({
-        xdim: xr.DataArray(lo[0, :], dims=xdim, attrs={"units": "degrees_east", "standard_name": "longitude"}),
-        ydim: xr.DataArray(la[:, 0], dims=ydim, attrs={"units": "degrees_north", "standard_name": "latitude"}),
-    })
 
 
 def _bounds_step(ds: xr.Dataset, dim: str):

@@ -11,6 +11,7 @@ import numpy as np
 import xarray as xr
 
 from envelope.errors import InputError
+from envelope.io.cf_coords import axes_from_2d_latlon, degree_axes
 from envelope.io.monthly import (CELSIUS_UNITS, KELVIN_UNITS, MM_UNITS, PRECIPITATION, TEMPERATURE, X_NAMES, Y_NAMES,
                                  find_dim, normalise_axes, open_monthly)
 
@@ -238,7 +239,7 @@ def _open_series(files, name, chunks):
     keep = {name}
 
     def only(ds):
-        return ds[[v for v in ds.data_vars if v in keep]]
+        return axes_from_2d_latlon(ds[[v for v in ds.data_vars if v in keep]], ds.encoding.get("source", files[0]))
 
     try:
         return xr.open_mfdataset([str(f) for f in files], combine="by_coords", preprocess=only, chunks=chunks,
@@ -423,7 +424,7 @@ def _series_crs(ds, var_name, xdim, ydim, where):
         crs = None
     if crs is not None:
         return crs
-    if str(xdim).lower() in ("lon", "longitude") or str(ydim).lower() in ("lat", "latitude"):
+    if degree_axes(ds, xdim, ydim):
         return "EPSG:4326"
     raise InputError(f"{where}: projected x/y but no grid mapping; expected a CF grid_mapping")
 

@@ -124,9 +124,20 @@ def _future(baseline, baseline_path, hist_path, fut_path, method, ratio_floor, m
                                period=periods.get("historical"), role=role)
     fut = open_monthly_series(fut_path, name="future", variable=variables.get("future"),
                               period=periods.get("future"), role=role)
+    _check_same_kind(baseline, baseline_path, hist, hist_path)
     return delta_method(baseline, hist, fut, method=method, ratio_floor=ratio_floor, max_ratio=max_ratio,
                         names={"baseline": str(baseline_path), "historical": _label(hist_path),
                                "future": _label(fut_path)})
+
+
+def _check_same_kind(baseline, baseline_path, model, model_path):
+    """Refuse a model variable that is not what the baseline holds (a temperature applied to precipitation)."""
+    kinds = {role: kind_of_units(da.attrs.get("units", "")) for role, da in (("baseline", baseline), ("model", model))}
+    if None not in kinds.values() and kinds["baseline"] != kinds["model"]:
+        raise InputError(f"{_label(model_path)}: the model variable holds {kinds['model']} "
+                         f"({model.attrs.get('units')!r}) but the baseline {baseline_path} holds {kinds['baseline']} "
+                         f"({baseline.attrs.get('units')!r}); expected the same quantity (pick the model variable "
+                         "with --variable NAME, or a model_variable column in the table)")
 
 
 def _tags(future, baseline_path, hist_path, fut_path):

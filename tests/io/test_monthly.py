@@ -140,6 +140,23 @@ def test_netcdf_rows_north_up_either_way(tmp_path, lat):
         np.testing.assert_array_equal(da.sel(y=phi).values, data[:, i, :])
 
 
+def test_netcdf_with_only_2d_lat_lon(tmp_path):
+    # CF conventions 1.11 section 5.2: 2-D auxiliary lat(y, x)/lon(y, x) of a regular grid
+    # (ascending latitude, 0..360 longitudes, as models write them) read as the 1-D grid
+    data = _values()
+    la, lo = np.meshgrid(LAT_DESC[::-1], LON + 360.0, indexing="ij")
+    coords = {"month": np.arange(1, 13), "lat": (("y", "x"), la, {"standard_name": "latitude"}),
+              "lon": (("y", "x"), lo, {"standard_name": "longitude"})}
+    da = open_monthly(_nc(tmp_path / "aux.nc", data[:, ::-1], dims=("month", "y", "x"), coords=coords), name="tas")
+    np.testing.assert_array_equal(da["y"].values, LAT_DESC)
+    np.testing.assert_array_equal(da["x"].values, LON)
+    np.testing.assert_array_equal(da.values, data)
+    assert da.rio.crs.to_epsg() == 4326
+    curvy = {**coords, "lon": (("y", "x"), lo + la / 10.0, {"standard_name": "longitude"})}
+    with pytest.raises(InputError, match=r"curvy\.nc: a curvilinear grid .*regrid it first"):
+        open_monthly(_nc(tmp_path / "curvy.nc", data, dims=("month", "y", "x"), coords=curvy), name="tas")
+
+
 def test_netcdf_size_one_extra_dim_is_dropped_and_named_variable_is_picked(tmp_path):
     # Common practice, no source: a size-1 level dim (e.g. 2 m height) is squeezed; name= picks a variable
     data = _values()[:, None]

@@ -19,10 +19,10 @@ LON = np.array([200.25, 200.75, 201.25, 201.75])    # 0-360 longitudes, as clima
 
 
 def write_series(path, years, fn, *, var="tas", units="K", calendar="noleap", standard_name=None,
-                 cell_methods=None, extra_vars=None, dtype="float64"):
-    """A CF series of monthly means stamped mid-month; value of each step = fn(year, month) (+ row/col)."""
+                 cell_methods=None, extra_vars=None, dtype="float64", pattern=1.0):
+    """A CF series of monthly means stamped mid-month; value of each step = fn(year, month) (+ row/col x pattern)."""
     times = [cftime.datetime(y, m, 15, calendar=calendar) for y in years for m in range(1, 13)]
-    rows = np.arange(NY)[:, None] * 0.25 + np.arange(NX)[None, :] * 0.0625   # a cell pattern, binary fractions
+    rows = (np.arange(NY)[:, None] * 0.25 + np.arange(NX)[None, :] * 0.0625) * pattern  # a cell pattern
     data = np.stack([fn(t.year, t.month) + rows for t in times]).astype(dtype)
     attrs = {} if units is None else {"units": units}
     if standard_name:
@@ -207,7 +207,7 @@ def _bio_series(tmp_path):
             tmp_path / f"tasmax_{decade}.nc", years, _alternating(lambda m: 283.15 + m), var="tasmax"))
         files.setdefault("prec", []).append(write_series(
             tmp_path / f"pr_{decade}.nc", years, lambda y, m: 10.0 * m / (86400.0 * days[m - 1]) * (1.5 if y % 2 else 0.5),
-            var="pr", units="kg m-2 s-1"))
+            var="pr", units="kg m-2 s-1", pattern=2.0 ** -20))   # a plausible rate (~1e-6 kg m-2 s-1) per cell
     # the earlier years the period leaves out
     write_series(tmp_path / "tasmin_1981.nc", range(1981, 1991), lambda y, m: 400.0, var="tasmin")
     return files
@@ -293,3 +293,47 @@ def test_delta_single_form_from_model_series(tmp_path):
                                        "--future-period", "2061-2090", "--out", str(tmp_path / "x.tif")])
     assert missing.exit_code == 2 and "period 2061-2090 is not covered" in missing.output
     json.dumps(tags)
+
+
+def _as_2d_latlon(src, dst):
+    """The same file with its 1-D lat/lon replaced by CF auxiliary 2-D lat(y, x) / lon(y, x)."""
+    with xr.open_dataset(src, decode_times=False) as ds:
+        ds = ds.load()
+    la, lo = np.meshgrid(ds["lat"].values, ds["lon"].values, indexing="ij")
+    out = ds.rename({"lat": "y", "lon": "x"}).drop_vars(["y", "x"]).assign_coords(
+        lat=(("y", "x"), la, {"standard_name": "latitude", "units": "degrees_north"}),
+        lon=(("y", "x"), lo, {"standard_name": "longitude", "units": "degrees_east"}))
+    out.to_netcdf(dst)
+    return dst
+
+
+def test_series_with_only_2d_lat_lon_reads_as_its_1d_twin(tmp_path):
+    # CF conventions 1.11 section 5.2 (auxiliary coordinate variables): a regular grid written
+    # as 2-D lat/lon is the same grid; the 1-D twin is the reference
+    for decade in (1991, 2001):
+        write_series(tmp_path / f"tas_{decade}.nc", range(decade, decade + 10), _alternating(lambda m: 280.0 + m))
+        _as_2d_latlon(tmp_path / f"tas_{decade}.nc", tmp_path / f"aux_{decade}.nc")
+    ref = open_monthly_series(str(tmp_path / "tas_*.nc"), name="tmin")
+    aux = open_monthly_series(str(tmp_path / "aux_*.nc"), name="tmin")
+    np.testing.assert_array_equal(aux.values, ref.values)
+    np.testing.assert_array_equal(aux["x"].values, ref["x"].values)
+    np.testing.assert_array_equal(aux["y"].values, ref["y"].values)
+    assert aux.rio.crs == ref.rio.crs
+
+
+def test_delta_refuses_a_model_variable_of_another_quantity(tmp_path):
+    # Common practice, no source: a ratio of temperatures applied to precipitation is meaningless
+    with rasterio.open(tmp_path / "prec.tif", "w", driver="GTiff", height=NY, width=NX, count=12, dtype="float32",
+                       crs="EPSG:4326", transform=rasterio.transform.from_origin(-160.0, 46.0, 0.5, 0.5)) as dst:
+        dst.write(np.full((12, NY, NX), 50.0, "float32"))
+        for b in range(1, 13):
+            dst.update_tags(b, units="mm")
+    for name in ("hist", "fut"):
+        write_series(tmp_path / f"{name}.nc", range(1991, 1993), lambda y, m: 280.0, var="tasmin")
+    out = tmp_path / "prec_2050.tif"
+    result = CliRunner().invoke(cli, ["delta", "--baseline", str(tmp_path / "prec.tif"), "--model-historical",
+                                      str(tmp_path / "hist.nc"), "--model-future", str(tmp_path / "fut.nc"),
+                                      "--out", str(out)])
+    assert result.exit_code == 2 and not out.exists()
+    assert "hist.nc: the model variable holds temperature ('degC') but the baseline" in result.output
+    assert "holds precipitation ('mm')" in result.output and len(result.output.strip().splitlines()) == 1
