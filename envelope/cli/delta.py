@@ -48,7 +48,7 @@ def _parse_baselines(values):
 @click.option("--max-ratio", type=float, default=None, callback=positive_float, help="Cap on the ratio.")
 @click.option("--table", type=click.Path(dir_okay=False), default=None,
               help="Batch form: CSV of name,pathway,climate_model,horizon,variable,historical,future.")
-@click.option("--out-dir", type=click.Path(file_okay=False), default=None, help="Batch form: output folder.")
+@click.option("--out-dir", type=click.Path(file_okay=False), default=None, help="Batch form: output folder (created, with missing parents, when new).")
 @click.option("--bioclim", "with_bioclim", is_flag=True,
               help="Batch form: also write BIO layers per scenario and a scenario table pointing at them.")
 @convention_options

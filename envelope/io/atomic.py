@@ -13,7 +13,7 @@ from pathlib import Path
 
 from envelope.errors import EnvelopeError, FileSystemError, InputError, OutputExistsError, os_error_message
 
-__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_writable", "file_mode",
+__all__ = ["atomic_output", "atomic_outputs", "check_distinct", "check_out_dir", "check_writable", "file_mode",
            "remove_empty_folder", "remove_stale_temporaries", "temporary_name_pattern"]
 
 log = logging.getLogger(__name__)
@@ -76,6 +76,23 @@ def check_writable(path: str | os.PathLike, overwrite: bool = False) -> Path:
         raise InputError(f"{path}: folder {parent} does not exist")
     if not os.access(parent, os.W_OK | os.X_OK):
         raise FileSystemError(f"{path}: folder {parent} is not writable; check its permissions or write elsewhere")
+    return path
+
+
+def check_out_dir(path: str | os.PathLike, option: str = "--out-dir") -> Path:
+    """An output folder the command may create (with its missing parents): a folder, or a new
+    path below an existing folder, with no file on the way.
+
+    The single wording of these refusals for every command with an output folder.
+    """
+    path = Path(path)
+    if path.exists() and not path.is_dir():
+        raise InputError(f"{option} {path}: exists and is not a folder")
+    for above in path.absolute().parents:
+        if above.exists():
+            if not above.is_dir():
+                raise InputError(f"{option} {path}: {above} is a file, not a folder")
+            break
     return path
 
 

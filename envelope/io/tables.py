@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import glob
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -276,7 +277,10 @@ def read_class_table(path) -> dict:
 def read_model_table(path) -> dict[str, dict]:
     """Read MODELS.csv: one row per scenario and monthly variable; paths relative to the table.
 
-    Returns scenario name -> {"pathway", "climate_model", "horizon", "files": {variable: (hist, fut)},
+    A path may be a glob pattern (``mA/tasmin_hist_*.nc``): the files of one monthly series.
+
+    Returns scenario name -> {"pathway", "climate_model", "horizon", "files": {variable: (hist, fut)}
+    (each a Path, or a sorted list of Paths for a pattern),
     "model_variables": {variable: NetCDF variable name from the optional ``model_variable`` column, or None}}.
     """
     path = Path(path)
@@ -284,17 +288,24 @@ def read_model_table(path) -> dict[str, dict]:
         with open(path, newline="", encoding="utf-8-sig") as fh:
             reader = csv.DictReader(fh)
             header = [h.strip() for h in reader.fieldnames or []]
-            rows = [{(k or "").strip(): (v or "").strip() for k, v in row.items()} for row in reader]
+            raw = [(reader.line_num, row) for row in reader]
     except (OSError, UnicodeDecodeError, csv.Error) as exc:
         raise InputError(f"{path}: cannot read the model table ({exc})") from None
     missing = [c for c in MODEL_TABLE_COLUMNS if c not in header]
     if missing:
         raise InputError(f"{path}: column {missing[0]!r} missing (found {', '.join(header) or 'none'}; "
                          f"expected {', '.join(MODEL_TABLE_COLUMNS)})")
+    rows, lines = [], []
+    for i, row in raw:  # the line a row ends on
+        fields = len(header) + len(row.get(None) or []) - sum(v is None for k, v in row.items() if k is not None)
+        if fields != len(header):
+            raise InputError(f"{path}: line {i} has {fields} fields; expected {len(header)} ({', '.join(header)})")
+        rows.append({(k or "").strip(): (v or "").strip() for k, v in row.items() if k is not None})
+        lines.append(i)
     if not rows:
         raise InputError(f"{path}: no rows; expected one row per scenario and variable")
     scenarios: dict[str, dict] = {}
-    for i, row in enumerate(rows, start=2):  # line numbers, header is line 1
+    for i, row in zip(lines, rows):
         name = row["name"]
         if not name or any(c in name for c in "/\\"):
             raise InputError(f"{path}: line {i} name {name!r}; expected a non-empty name without slashes")
@@ -311,12 +322,27 @@ def read_model_table(path) -> dict[str, dict]:
         if var in entry["files"]:
             raise InputError(f"{path}: line {i}: scenario {name!r} lists variable {var!r} twice")
         files = []
+        if not var:
+            raise InputError(f"{path}: line {i} column 'variable' is empty; expected a monthly variable "
+                             "(tmin, tmax, prec or tmean)")
         for col in ("historical", "future"):
-            p = Path(row[col])
-            p = p if p.is_absolute() else path.parent / p
-            if not p.is_file():
-                raise InputError(f"{path}: line {i} {col} file {p} not found")
-            files.append(p)
+            files.append(_model_files(path, i, col, row[col]))
         entry["files"][var] = tuple(files)
         entry["model_variables"][var] = row.get("model_variable") or None
     return scenarios
+
+
+def _model_files(table: Path, line: int, column: str, text: str):
+    """A model-table cell: one file, or a glob pattern of a series' files (a sorted list), relative to the table."""
+    if not text:
+        raise InputError(f"{table}: line {line} column {column!r} is empty; expected a file path or a glob pattern")
+    p = Path(text)
+    p = p if p.is_absolute() else table.parent / p
+    if glob.has_magic(text):
+        found = sorted(Path(f) for f in glob.glob(str(p)))
+        if not found:
+            raise InputError(f"{table}: line {line} {column} pattern {text!r} matches no file (looked in {p.parent})")
+        return found
+    if not p.is_file():
+        raise InputError(f"{table}: line {line} {column} file {p} not found")
+    return p

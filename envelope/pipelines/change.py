@@ -9,7 +9,7 @@ from envelope.change import (CHANGE_CLASSES, CHANGE_NODATA, LABEL_COLUMNS, Windo
                               classify_range_change, summarise_change)
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
-from envelope.io.atomic import atomic_output, atomic_outputs, check_distinct, check_writable
+from envelope.io.atomic import atomic_output, atomic_outputs, check_distinct, check_out_dir, check_writable
 from envelope.io.rasters import open_layer, raster_format, read_tags
 from envelope.io.tables import read_scenarios
 from envelope.io.writing import RasterOutput, write_rasters
@@ -224,11 +224,7 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
     :func:`range_change`.
     """
     rows = read_scenarios(scenarios, what="future suitability raster")
-    out_dir = Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"{out_dir}: exists and is not a folder")
-    if not out_dir.exists() and not out_dir.absolute().parent.is_dir():
-        raise InputError(f"{out_dir}: its parent folder does not exist")
+    out_dir = check_out_dir(out_dir)
     outputs = []
     for row in rows:
         outputs += [out_dir / f"{row.name}.tif", out_dir / f"{row.name}.json"]
@@ -256,7 +252,7 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
     if windowed is None:
         windowed = _windowed(now_da, now, elevation, *[p for row in rows for p in (row.path, row.mess_path)])
     if windowed:
-        out_dir.mkdir(exist_ok=True)
+        out_dir.mkdir(parents=True, exist_ok=True)
         with atomic_outputs(outputs + [table], overwrite) as tmps:
             summaries = []
             for k, (row, (_, value, rule)) in enumerate(zip(rows, prepared)):
@@ -277,7 +273,7 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
         result["inputs"] = inputs(row)
         summaries.append(result)
     frame = change_table(summaries, labels)
-    out_dir.mkdir(exist_ok=True)
+    out_dir.mkdir(parents=True, exist_ok=True)
     with atomic_outputs(outputs + [table], overwrite) as tmps:
         for k, (classes, _, _) in enumerate(prepared):
             _write_pair(classes, summaries[k], tmps[2 * k], tmps[2 * k + 1], progress)

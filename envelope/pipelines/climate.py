@@ -9,7 +9,7 @@ from envelope.bioclim import bioclim as compute_bioclim
 from envelope.bioclim import check_monthly, check_monthly_grids
 from envelope.delta import delta as delta_method
 from envelope.errors import InputError
-from envelope.io.atomic import atomic_outputs, check_writable
+from envelope.io.atomic import atomic_outputs, check_out_dir, check_writable, remove_empty_folder
 from envelope.io.monthly import PRECIPITATION, TEMPERATURE, kind_of_units, open_monthly, write_monthly
 from envelope.io.series import expand_paths, open_monthly_series, parse_period, variable_for_role
 from envelope.io.tables import SCENARIO_COLUMNS, read_model_table
@@ -159,9 +159,7 @@ def delta_batch(table, baseline_paths: dict, out_dir, *, ratio_floor=1.0, max_ra
     """
     conventions = conventions or {}
 
-    out_dir = Path(out_dir)
-    if not out_dir.is_dir():
-        raise InputError(f"--out-dir {out_dir}: folder does not exist")
+    out_dir = check_out_dir(out_dir)
     scenarios = read_model_table(table)
     years = parse_period(period)
     baselines = {var: open_monthly(p, name=var, units=_UNITS.get(var)) for var, p in baseline_paths.items()}
@@ -198,12 +196,24 @@ def delta_batch(table, baseline_paths: dict, out_dir, *, ratio_floor=1.0, max_ra
             rel = Path(name) / "bioclim.tif"
             jobs.append(("bioclim", stack, rel, {k: str(v) for k, v in stack.attrs.items()}))
             scenario_rows.append([name, sc["pathway"], sc["climate_model"], sc["horizon"], rel.as_posix()])
-    for name in scenarios:
-        (out_dir / name).mkdir(exist_ok=True)
-
     targets = [out_dir / rel for _, _, rel, _ in jobs] + [out_dir / "monthly.csv"]
     if with_bioclim:
         targets.append(out_dir / "scenarios.csv")
+    new_folders = [f for f in [*reversed(out_dir.absolute().parents), out_dir.absolute()]
+                   + [out_dir.absolute() / name for name in scenarios] if not f.exists()]
+    for folder in new_folders:
+        folder.mkdir(exist_ok=True)
+    try:
+        _write_batch(jobs, targets, monthly_rows, scenario_rows, with_bioclim, overwrite)
+    except BaseException:
+        for folder in reversed(new_folders):  # a batch that failed leaves no empty folder behind
+            remove_empty_folder(folder)
+        raise
+    return {"n_scenarios": len(scenarios), "out_dir": str(out_dir),
+            "scenario_table": str(out_dir / "scenarios.csv") if with_bioclim else None}
+
+
+def _write_batch(jobs, targets, monthly_rows, scenario_rows, with_bioclim, overwrite):
     # all outputs appear together or not at all (temporary siblings renamed at the end)
     with atomic_outputs(targets, overwrite) as tmps:
         for (kind, da, _, tags), tmp in zip(jobs, tmps):
@@ -214,8 +224,6 @@ def delta_batch(table, baseline_paths: dict, out_dir, *, ratio_floor=1.0, max_ra
         _write_csv(tmps[len(jobs)], MONTHLY_TABLE_COLUMNS, monthly_rows)
         if with_bioclim:
             _write_csv(tmps[len(jobs) + 1], SCENARIO_COLUMNS, scenario_rows)
-    return {"n_scenarios": len(scenarios), "out_dir": str(out_dir),
-            "scenario_table": str(out_dir / "scenarios.csv") if with_bioclim else None}
 
 
 def _check_bioclim_baselines(arrays, paths):

@@ -7,7 +7,7 @@ from pathlib import Path
 
 
 from envelope.errors import InputError
-from envelope.io.atomic import atomic_outputs, check_writable, remove_empty_folder
+from envelope.io.atomic import atomic_outputs, check_out_dir, check_writable, remove_empty_folder
 from envelope.provenance import file_sha256, json_text
 
 __all__ = ["HindcastOptions", "HINDCAST_FILES", "hindcast_files"]
@@ -73,8 +73,7 @@ def hindcast_files(records_path, climate_1, climate_2, out_dir, *, options: Hind
     """
     out_dir = Path(out_dir)
     targets = {key: out_dir / name for key, name in HINDCAST_FILES.items()}
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"--out {out_dir}: exists and is not a folder; expected a folder for the hindcast files")
+    check_out_dir(out_dir, "--out")
     created = not out_dir.exists()
     out_dir.mkdir(parents=True, exist_ok=True)
     try:

@@ -15,7 +15,7 @@ from envelope.errors import InputError
 from envelope.grids import cell_area_km2, check_same_grid, match_variables
 from envelope import __version__
 from envelope.io.modelfile import open_model
-from envelope.io.atomic import atomic_outputs, check_distinct, check_writable
+from envelope.io.atomic import atomic_outputs, check_distinct, check_out_dir, check_writable
 from envelope.io.rasters import open_climate, open_layer
 from envelope.io.tables import SUITABILITY_TABLE_NAME, group_scenarios, read_scenarios, write_suitability_table
 from envelope.io.writing import PLATEAU_PREDICTOR, RasterOutput, write_rasters
@@ -300,9 +300,7 @@ def project_scenarios(model_file, table, out_dir, *, mess: bool = False, agreeme
 
     scenarios = read_scenarios(table)
     groups = group_scenarios(scenarios)
-    out_dir = Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"--out-dir {out_dir}: exists and is not a folder")
+    out_dir = check_out_dir(out_dir)
     if not agreement or not 0.0 < agreement <= 1.0:
         raise InputError(f"agreement: got {agreement!r}; expected a share of models in (0, 1]")
     estimator, metadata, variables, method, sha = load_projection_model(model_file)

@@ -115,6 +115,42 @@ def test_batch_with_bioclim_writes_a_scenario_table_project_can_read(tmp_path):
     assert len(monthly) == 6 and (out_dir / monthly[0]["path"]).is_file()
 
 
+def test_batch_creates_its_out_dir_and_reads_table_patterns(tmp_path):
+    # Common practice, no source: an output folder (and its missing parents) is created; a
+    # table cell may be a glob pattern naming one series' files
+    args = _batch_setup(tmp_path)
+    table = tmp_path / "models.csv"
+    lines = table.read_text().splitlines()
+    lines[1] = lines[1].replace("models/p1-mA-2050_tmin_hist.nc", "models/p1-mA-2050_tmin_h*.nc")
+    table.write_text("\n".join(lines) + "\n")
+    out_dir = tmp_path / "new" / "scen"
+    result = CliRunner().invoke(cli, args + ["--out-dir", str(out_dir), "--bioclim"])
+    assert result.exit_code == 0, result.output
+    assert (out_dir / "scenarios.csv").is_file() and (out_dir / "p1-mA-2050" / "tmin.tif").is_file()
+    with rasterio.open(out_dir / "p1-mA-2050" / "tmin.tif") as src:
+        assert src.tags()["model_historical"].endswith("p1-mA-2050_tmin_hist.nc")
+    blocked = tmp_path / "a_file"
+    blocked.write_text("x")
+    result = CliRunner().invoke(cli, args + ["--out-dir", str(blocked / "scen")])
+    assert result.exit_code == 2 and f"{blocked} is a file, not a folder" in result.output
+
+
+@pytest.mark.parametrize("row, message", [
+    ("p1-mA-2050,p1,mA,2050,tmin,models/p1-mA-2050_tmin_hist.nc", "line 2 has 6 fields; expected 7"),
+    ("p1-mA-2050,p1,mA,2050,tmin,,models/p1-mA-2050_tmin_fut.nc", "line 2 column 'historical' is empty"),
+    ("p1-mA-2050,p1,mA,2050,,models/a.nc,models/b.nc", "line 2 column 'variable' is empty"),
+    ("p1-mA-2050,p1,mA,2050,tmin,models/none_*.nc,models/b.nc", "historical pattern 'models/none_*.nc' matches no"),
+])
+def test_batch_table_rows_broken_one_line_nothing_written(tmp_path, row, message):
+    args = _batch_setup(tmp_path)
+    table = tmp_path / "models.csv"
+    table.write_text(table.read_text().splitlines()[0] + "\n" + row + "\n")
+    out_dir = tmp_path / "scen"
+    result = CliRunner().invoke(cli, args + ["--out-dir", str(out_dir)])
+    assert result.exit_code == 2 and message in result.output, result.output
+    assert len(result.output.strip().splitlines()) == 1 and not out_dir.exists()
+
+
 def test_batch_stops_before_writing_on_swapped_baselines(tmp_path):
     out_dir = tmp_path / "scen"
     out_dir.mkdir()
