@@ -24,7 +24,7 @@ from envelope.cli.options import overwrite_opt, seed_opt
               help="A cell is recorded well in a period with at least this many records of all taxa "
                    "(or this effort-raster value); only cells recorded well in both periods are used.")
 @click.option("--bootstrap", type=click.IntRange(min=0), default=1000, show_default=True,
-              help="Bootstrap replicates of the 95 %% intervals (0: none).")
+              help="Bootstrap replicates of the 95 % intervals (0: none).")
 @click.option("--elevation", type=click.Path(exists=True, dir_okay=False), default=None,
               help="Elevation raster (m) on the grid: adds the shift in mean elevation.")
 @click.option("--no-effort-correction", is_flag=True, help="Use every occupied cell (the uncorrected figure).")
@@ -38,7 +38,7 @@ def margins(records, grid, periods, species, summary, n_cells, effort, min_recor
     period (Thomas & Lennon 1999; Hickling et al. 2006), also given as the area-weighted 95th
     (5th) percentile; shifts are km along the meridian, positive = poleward in the
     species' hemisphere. Only cells recorded well in both periods are used, judged by the
-    records of all taxa in the file or by an effort raster; bootstrap 95 %% intervals.
+    records of all taxa in the file or by an effort raster; bootstrap 95 % intervals.
 
     \b
     Examples:
