@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import importlib
 import logging
+import signal
+import threading
+
 import click
 
 from envelope import __version__
@@ -96,6 +99,13 @@ class LazyGroup(click.Group):
                 raise
             click.echo("Error: out of memory; give smaller inputs or run on a machine with more memory", err=True)
             ctx.exit(2)
+        except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM (a batch scheduler's time limit) via _stop
+            if debug():
+                raise
+            name = exc.args[0] if isinstance(exc, Stopped) else "SIGINT"
+            click.echo(f"Stopped by {name}: no half-written file is left; a study run resumes from its finished "
+                       "steps when the same command is run again", err=True)
+            ctx.exit(128 + int(getattr(signal, name)))
 
     def format_commands(self, ctx, formatter):
         rows = [(name, SUMMARIES.get(name, "")) for name in self.list_commands(ctx)]
@@ -143,8 +153,19 @@ def _one_line(exc: Exception) -> str:
     return " ".join(str(exc).split())
 
 
+class Stopped(KeyboardInterrupt):
+    """A stop signal other than Ctrl-C (SIGTERM), raised in the main thread like Ctrl-C's
+    KeyboardInterrupt so every atomic output removes its temporary file on the way out."""
+
+
+def _stop(signum, frame):
+    raise Stopped(signal.Signals(signum).name)
+
+
 def main(argv=None):
     """Console entry point (``envelope``)."""
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGTERM, _stop)
     cli.main(args=argv, prog_name="envelope")
 
 
