@@ -27,6 +27,7 @@ from envelope.kernels.change import (
 )
 
 __all__ = [
+    "check_suitability_values",
     "CHANGE_CLASSES",
     "CHANGE_NODATA",
     "classify_range_change",
@@ -43,6 +44,30 @@ _N = len(CHANGE_CLASSES)
 
 
 # --------------------------------------------------------------------------- classes
+
+def check_suitability_values(values, name: str, *, require_valid: bool = True) -> None:
+    """Refuse a suitability map that is not in 0..1, or (``require_valid``) holds no valid cell.
+
+    ``values`` is an array (NumPy, dask or xarray, any shape); a lazy one is reduced in one
+    pass. A percentage (0..100) or scaled integers (0..255, 0..1000) would be classified
+    against a 0..1 threshold without complaint, so nearly every cell would count as suitable.
+    """
+    import warnings
+
+    data = values.data if isinstance(values, xr.DataArray) else values
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # an all-NaN map: reported below
+        lo, hi = (float(v) for v in dask.compute(np.nanmin(data), np.nanmax(data))) if data.size else (
+            np.nan, np.nan)
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        if require_valid:
+            raise InputError(f"{name}: the suitability map holds no valid cell (all nodata); expected values 0..1")
+        return
+    if lo < -1e-6 or hi > 1.0 + 1e-6:
+        hint = (" (a percentage? divide by 100)" if 1.0 < hi <= 100.0 and lo >= 0 else
+                " (scaled integers? divide by their scale)" if hi > 100.0 and lo >= 0 else "")
+        raise InputError(f"{name}: suitability values from {lo:g} to {hi:g}; expected 0..1{hint}")
+
 
 def classify_range_change(now: xr.DataArray, future: xr.DataArray, threshold: float, *,
                           mess: xr.DataArray | None = None) -> xr.DataArray:

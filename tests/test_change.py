@@ -275,3 +275,20 @@ def test_stable_novel_counts_in_both_ranges(maps):
     assert s["area_km2"]["stable_total"] == pytest.approx(plain["area_km2"]["stable_total"])
     assert s["range_km2"] == pytest.approx(plain["range_km2"])
     assert s["classes"]["5"] == "stable_novel"
+
+
+@pytest.mark.parametrize("values, message", [
+    ([0.0, 0.5, 98.0], r"m: suitability values from 0 to 98; expected 0\.\.1 \(a percentage\? divide by 100\)"),
+    ([0.0, 255.0], r"m: suitability values from 0 to 255; expected 0\.\.1 \(scaled integers\?"),
+    ([-0.5, 0.5], r"m: suitability values from -0\.5 to 0\.5; expected 0\.\.1$"),
+    ([np.nan, np.nan], r"m: the suitability map holds no valid cell"),
+])
+def test_suitability_outside_0_1_is_refused(values, message):
+    # Our own contract: suitability and its threshold are in 0..1 (docs/change.md)
+    from envelope.change import check_suitability_values
+
+    for array in (np.array(values), xr.DataArray(np.array(values)).chunk(1)):
+        with pytest.raises(InputError, match=message):
+            check_suitability_values(array, "m")
+    check_suitability_values(np.array([0.0, np.nan, 1.0]), "m")
+    check_suitability_values(np.array([np.nan]), "m", require_valid=False)

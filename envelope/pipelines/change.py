@@ -6,7 +6,7 @@ import os
 from pathlib import Path
 
 from envelope.change import (CHANGE_CLASSES, CHANGE_NODATA, LABEL_COLUMNS, WindowedChange, change_table,
-                              classify_range_change, summarise_change)
+                             check_suitability_values, classify_range_change, summarise_change)
 from envelope.errors import InputError
 from envelope.grids import check_same_grid
 from envelope.io.atomic import atomic_output, atomic_outputs, check_distinct, check_out_dir, check_writable
@@ -34,10 +34,14 @@ def _open(path, *, what, band=None):
     return open_layer(path, band=band)
 
 
-def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, elevation):
-    """Open and check one future map (and its MESS) against NOW; return classes and threshold."""
+def _prepare(now_path, now, future_path, threshold, mess_path, elevation_path, elevation, check_values=True):
+    """Open and check one future map (and its MESS) against NOW; return classes and threshold.
+
+    ``check_values``: check the map's values are 0..1 here (a windowed run checks each window)."""
     future = _open(future_path, what="future suitability")
     future = check_same_grid(now, future, ref_name=str(now_path), other_name=str(future_path))
+    if check_values:
+        check_suitability_values(future, str(future_path))
     value, rule = resolve_threshold({str(now_path): read_tags(now_path), str(future_path): read_tags(future_path)},
                                     threshold)
     mess = None
@@ -126,6 +130,8 @@ def _range_change_windowed(now, now_da, future, mess, elevation, value, rule, *,
 
     def window(ys, xs):
         blocks = [None if r is None else r[0:1, ys, xs][0] for r in readers]
+        for path, block in ((now, blocks[0]), (future, blocks[1])):
+            check_suitability_values(block, str(path), require_valid=False)
         return measure.measure(ys, xs, *blocks)
 
     windows = _windows_with_data(now, future)
@@ -168,12 +174,15 @@ def range_change(now, future, out, summary, *, threshold=None, mess=None, elevat
     if Path(out).resolve() == Path(summary).resolve():
         raise InputError(f"{out}: the change map and the summary must be different files")
     now_da = _open(now, what="current suitability")
-    elevation_da = _open_elevation(now_da, now, elevation)
-    classes, value, rule = _prepare(now, now_da, future, threshold, mess, elevation, elevation_da)
-    inputs = {"now": str(now), "future": str(future), "mess": None if mess is None else str(mess),
-              "elevation": None if elevation is None else str(elevation)}
     if windowed is None:
         windowed = _windowed(now_da, now, future, mess, elevation)
+    if not windowed:
+        check_suitability_values(now_da, str(now))
+    elevation_da = _open_elevation(now_da, now, elevation)
+    classes, value, rule = _prepare(now, now_da, future, threshold, mess, elevation, elevation_da,
+                                    check_values=not windowed)
+    inputs = {"now": str(now), "future": str(future), "mess": None if mess is None else str(mess),
+              "elevation": None if elevation is None else str(elevation)}
     if windowed:
         if polygons:
             raise InputError(f"--polygons {polygons}: a grid of {now_da.sizes['y']} x {now_da.sizes['x']} cells is "
@@ -238,10 +247,15 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
     check_writable(table, overwrite)
 
     now_da = _open(now, what="current suitability")
+    if windowed is None:
+        windowed = _windowed(now_da, now, elevation, *[p for row in rows for p in (row.path, row.mess_path)])
+    if not windowed:
+        check_suitability_values(now_da, str(now))
     elevation_da = _open_elevation(now_da, now, elevation)
     prepared = []
     for row in rows:  # check every scenario before the first byte is written
-        classes, value, rule = _prepare(now, now_da, row.path, threshold, row.mess_path, elevation, elevation_da)
+        classes, value, rule = _prepare(now, now_da, row.path, threshold, row.mess_path, elevation, elevation_da,
+                                        check_values=not windowed)
         prepared.append((classes, value, rule))
     labels = [{c: getattr(row, c) for c in LABEL_COLUMNS} for row in rows]
 
@@ -249,8 +263,6 @@ def range_change_batch(now, scenarios, out_dir, table, *, threshold=None, elevat
         return {"now": str(now), "future": str(row.path), "mess": None if row.mess_path is None else str(row.mess_path),
                 "elevation": None if elevation is None else str(elevation)}
 
-    if windowed is None:
-        windowed = _windowed(now_da, now, elevation, *[p for row in rows for p in (row.path, row.mess_path)])
     if windowed:
         out_dir.mkdir(parents=True, exist_ok=True)
         with atomic_outputs(outputs + [table], overwrite) as tmps:

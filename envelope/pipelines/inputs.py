@@ -200,6 +200,7 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
         Study region (:func:`envelope.io.vectors.region_mask`): habitat is set to 0 outside
         it, so the spread colonises cells inside the region only.
     """
+    from envelope.change import check_suitability_values
     from envelope.grids import check_same_grid
     from envelope.io.rasters import open_layer, read_tags
 
@@ -212,6 +213,7 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
     now_name = now_name or f"--now {now}"
     label = path_names or (lambda _name, p: f"--future {p}")
     now_layer = open_layer(now) if now_layer is None else now_layer
+    check_suitability_values(now_layer, now_name)
     layers, tags = {}, {str(now): read_tags(now)}
     for name, horizons in paths.items():
         if not horizons:
@@ -219,6 +221,7 @@ def build_reach_inputs(now, paths: dict, habitat, start, *, settings, classes=No
         layers[name] = []
         for year, p in horizons:
             layer = check_same_grid(now_layer, open_layer(p), ref_name=now_name, other_name=label(name, p))
+            check_suitability_values(layer, label(name, p))
             layers[name].append((float(year), layer))
             tags[str(p)] = read_tags(p)
     value, rule = resolve_threshold(tags, threshold)

@@ -26,6 +26,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import rasterio
 import pytest
 from click.testing import CliRunner
 
@@ -71,6 +72,10 @@ def data(tmp_path_factory):
     _invoke(["project", d / "model.envm", "--climate", d / "climate.tif", "--out", d / "now.tif",
              "--mess", d / "mess.tif"])
     _invoke(["project", d / "model.envm", "--climate", d / "future_climate.tif", "--out", d / "future.tif"])
+    with rasterio.open(d / "future.tif") as src:  # the same map as a percentage, as some tools write it
+        profile, values = src.profile, src.read()
+    with rasterio.open(d / "future_percent.tif", "w", **profile) as dst:
+        dst.write(values * 100)
     habitat = make_stack(nx=20, ny=15, variables=("habitat",), seed=2).isel(variable=0, drop=True)
     _write(((habitat - habitat.min()) / (habitat.max() - habitat.min())).rename("habitat"), d / "habitat.tif")
     candidates = (habitat > 0.5).astype("uint8").rename("candidates")

@@ -224,6 +224,20 @@ def test_windowed_refuses_polygons_and_leaves_nothing(tmp_path):
     assert not list(tmp_path.glob("c.*"))
 
 
+@pytest.mark.parametrize("windowed", [False, True])
+def test_percent_suitability_is_refused_either_way_and_leaves_nothing(tmp_path, windowed):
+    # Our own contract (thresholds are in 0..1): a percentage map would make nearly every
+    # cell suitable; both the whole-grid and the window-by-window path refuse it
+    rng = np.random.default_rng(3)
+    paths = pair(tmp_path, mess=False, elevation=False)
+    write_sparse(tmp_path / "pct.tif", 100 * sparse_values(rng, (80, 96), [(0, 0), (4, 4)]))
+    with pytest.raises(InputError, match=r"pct\.tif: suitability values from .* to 9\d\.\d+; expected 0\.\.1 "
+                                         r"\(a percentage\? divide by 100\)"):
+        range_change(paths["now"], tmp_path / "pct.tif", tmp_path / "c.tif", tmp_path / "c.json", threshold=0.5,
+                     windowed=windowed)
+    assert not list(tmp_path.glob("c.*")) and not list(tmp_path.glob(".c.*"))
+
+
 # ----------------------------------------------------------------------------- kernels
 
 
