@@ -319,15 +319,12 @@ def read_model_table(path) -> dict[str, dict]:
             raise InputError(f"{path}: line {i}: scenario {name!r} has a different pathway, climate model "
                              "or horizon than on its earlier lines")
         var = row["variable"]
-        if var in entry["files"]:
-            raise InputError(f"{path}: line {i}: scenario {name!r} lists variable {var!r} twice")
-        files = []
         if not var:
             raise InputError(f"{path}: line {i} column 'variable' is empty; expected a monthly variable "
                              "(tmin, tmax, prec or tmean)")
-        for col in ("historical", "future"):
-            files.append(_model_files(path, i, col, row[col]))
-        entry["files"][var] = tuple(files)
+        if var in entry["files"]:
+            raise InputError(f"{path}: line {i}: scenario {name!r} lists variable {var!r} twice")
+        entry["files"][var] = tuple(_model_files(path, i, col, row[col]) for col in ("historical", "future"))
         entry["model_variables"][var] = row.get("model_variable") or None
     return scenarios
 
